@@ -1,0 +1,266 @@
+"""Model descriptions: the catalog of named special cases and the frozen `Spec`.
+
+A model is described declaratively in a TOML file (``models/*.toml``, shipped inside
+the package). The file says which growth factors the model has, how the lag acts, which
+restrictions identify it, and which option values it allows; no code branches on a
+model's name. A user may load a file of their own with :func:`load_model`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import tomllib
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from bayeslong.errors import SpecError
+
+#: Option values every model understands (a file narrows them with ``[allowed]``).
+OPTION_VALUES: dict[str, tuple[str, ...]] = {
+    "initial": ("predetermined", "endogenous"),
+    "lag": ("none", "constant", "time-varying"),
+    "residuals": ("equal", "free"),
+    "effects": ("constant", "time-varying"),
+    "intercepts": ("equal", "free"),
+}
+
+#: Keys of a model file and what each may hold.
+_FORMS = ("latent", "within")
+_SCORES = ("linear", "quadratic", "basis", "constant")
+_FACTOR_NAMES = ("level", "slope", "curve")
+_LEVEL_COVARIATES = ("none", "every-wave")
+_RESIDUALS_AT = ("latent", "indicator")
+_FILE_KEYS = {
+    "description", "processes", "form", "factors", "scores", "lag_name", "lag_offset",
+    "level_covariates", "residuals_at", "initial_is_level", "options", "allowed", "use",
+}
+
+
+def _nearest(word: str, choices) -> str:
+    close = difflib.get_close_matches(str(word), list(choices), n=1)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+def _choice(what: str, value: Any, choices, where: str = "") -> str:
+    if value not in choices:
+        listed = ", ".join(str(c) for c in choices)
+        raise SpecError(
+            f"`{what}`{where} must be one of {listed}; got {value!r}{_nearest(value, choices)}"
+        )
+    return value
+
+
+@dataclass(frozen=True, kw_only=True)
+class Spec:
+    """A frozen model description with its resolved options.
+
+    Parameters
+    ----------
+    name : str
+        Catalog name or file stem.
+    description : str
+        One line for tables and reports.
+    processes : int
+        Number of outcome processes K (1 or 2).
+    form : {"latent", "within"}
+        ``latent``: growth factors and the lag act on the latent outcome (ALT family).
+        ``within``: factors load on the observed outcome and the lag acts on the
+        wave-specific deviations (RI-CLPM).
+    factors : tuple of str
+        Growth factors in order, from ``level``, ``slope``, ``curve``.
+    scores : {"linear", "quadratic", "basis", "constant"}
+        Time scores of the slope (and curve): ``linear`` 0..T-1, ``quadratic`` adds
+        (t-1)^2, ``basis`` fixes the first two at 0, 1 and frees the rest (latent basis),
+        ``constant`` gives the slope loading 1 at every change (latent change score).
+    lag_name : str
+        Parameter name of the lag (``lag``; ``proportional_change`` for dual change).
+    lag_offset : float
+        Fixed value added to the lag parameter in the structural matrix (1 for
+        proportional change: eta_t = (1 + beta) eta_(t-1) + ...).
+    level_covariates : {"none", "every-wave"}
+        ``every-wave``: the level factor is regressed on x at every wave (the
+        correlated-effects projection of the fixed-effects model); no z may enter.
+    residuals_at : {"latent", "indicator"}
+        Where the wave-specific variance sits: the latent disturbance, or a measurement
+        error on the observed outcome with a disturbance-free latent (dual change).
+    initial_is_level : bool
+        The first wave's latent is the level factor itself (latent change score).
+    options : dict
+        Resolved options: initial, lag, residuals, effects, intercepts.
+    allowed : dict
+        Option values this model's identification allows.
+    """
+
+    name: str
+    description: str = ""
+    processes: int = 1
+    form: str = "latent"
+    factors: tuple[str, ...] = ()
+    scores: str = "linear"
+    lag_name: str = "lag"
+    lag_offset: float = 0.0
+    level_covariates: str = "none"
+    residuals_at: str = "latent"
+    initial_is_level: bool = False
+    options: dict = field(default_factory=dict)
+    allowed: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        where = f" in model '{self.name}'"
+        if self.processes not in (1, 2):
+            raise SpecError(f"`processes`{where} must be 1 or 2; got {self.processes!r}")
+        _choice("form", self.form, _FORMS, where)
+        _choice("scores", self.scores, _SCORES, where)
+        _choice("level_covariates", self.level_covariates, _LEVEL_COVARIATES, where)
+        _choice("residuals_at", self.residuals_at, _RESIDUALS_AT, where)
+        factors = tuple(self.factors)
+        for f in factors:
+            _choice("factors", f, _FACTOR_NAMES, where)
+        if factors and factors != _FACTOR_NAMES[: len(factors)]:
+            raise SpecError(
+                f"`factors`{where} must be a leading part of level, slope, curve; got {list(factors)}"
+            )
+        object.__setattr__(self, "factors", factors)
+        allowed = {k: tuple(v) for k, v in OPTION_VALUES.items()}
+        for key, values in dict(self.allowed).items():
+            _choice("allowed", key, OPTION_VALUES, where)
+            for v in values:
+                _choice(f"allowed.{key}", v, OPTION_VALUES[key], where)
+            allowed[key] = tuple(values)
+        object.__setattr__(self, "allowed", allowed)
+        options = dict(self.options)
+        for key in options:
+            _choice("option", key, OPTION_VALUES, where)
+        for key, values in allowed.items():
+            value = options.setdefault(key, values[0])
+            if value not in values:
+                listed = ", ".join(values)
+                raise SpecError(
+                    f"`{key}` must be one of {listed} for model '{self.name}'; got {value!r}"
+                    f"{_nearest(value, values)}"
+                )
+        object.__setattr__(self, "options", options)
+
+    # --- conveniences -----------------------------------------------------------------
+    @property
+    def has_lag(self) -> bool:
+        return self.options["lag"] != "none"
+
+    def replace(self, **changes) -> "Spec":
+        """Return a copy with fields or options changed, validated again.
+
+        Option names (``initial``, ``lag``, ``residuals``, ``effects``, ``intercepts``) may
+        be given directly: ``spec.replace(initial="endogenous")``.
+        """
+        opts = {k: changes.pop(k) for k in list(changes) if k in OPTION_VALUES}
+        if opts:
+            changes["options"] = {**self.options, **changes.get("options", {}), **opts}
+        unknown = [k for k in changes if k not in {f.name for f in dataclasses.fields(self)}]
+        if unknown:
+            raise SpecError(
+                f"Spec has no field {unknown[0]!r}; fields are "
+                + ", ".join(f.name for f in dataclasses.fields(self))
+                + ", and the options " + ", ".join(OPTION_VALUES)
+            )
+        return dataclasses.replace(self, **changes)
+
+    def to_dict(self) -> dict:
+        """Plain-data form (JSON/TOML safe) that :meth:`from_dict` reads back."""
+        d = dataclasses.asdict(self)
+        d["factors"] = list(self.factors)
+        d["allowed"] = {k: list(v) for k, v in self.allowed.items()}
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "Spec":
+        """Rebuild a spec from :meth:`to_dict` output."""
+        return cls(**data)
+
+    def __str__(self) -> str:
+        opts = ", ".join(f"{k}={v}" for k, v in self.options.items())
+        return f"{self.name} ({opts})"
+
+
+# --- the catalog ----------------------------------------------------------------------
+def _catalog_files() -> dict[str, Any]:
+    root = resources.files("bayeslong.models")
+    return {p.name[:-5]: p for p in root.iterdir() if p.name.endswith(".toml")}
+
+
+def catalog() -> list[str]:
+    """Return the names of the models in the catalog (the ``models/*.toml`` stems)."""
+    return sorted(_catalog_files())
+
+
+def _spec_from_text(name: str, text: str, source: str, options: dict) -> Spec:
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise SpecError(f"model file {source} is not valid TOML: {err}") from err
+    unknown = sorted(set(data) - _FILE_KEYS)
+    if unknown:
+        raise SpecError(
+            f"model file {source} has an unknown key '{unknown[0]}'{_nearest(unknown[0], _FILE_KEYS)} "
+            f"(valid keys: {', '.join(sorted(_FILE_KEYS))})"
+        )
+    data.pop("use", None)
+    file_options = dict(data.pop("options", {}))
+    for key in options:
+        _choice("option", key, OPTION_VALUES)
+    return Spec(name=name, **data, options={**file_options, **options})
+
+
+def model(name: str, **options) -> Spec:
+    """Return the catalog model ``name`` with options resolved.
+
+    Parameters
+    ----------
+    name : str
+        A catalog name (see :func:`catalog`) or a path to a model TOML file.
+    **options
+        ``initial`` (predetermined | endogenous), ``lag`` (none | constant |
+        time-varying), ``residuals`` (equal | free), ``effects`` (constant |
+        time-varying), ``intercepts`` (equal | free); the model file narrows them.
+
+    Raises
+    ------
+    SpecError
+        Unknown model name or option value; the message lists the valid ones.
+
+    Examples
+    --------
+    >>> spec = model("alt", initial="endogenous")
+    >>> spec.options["initial"]
+    'endogenous'
+    """
+    if str(name).endswith(".toml"):
+        return load_model(name, **options)
+    files = _catalog_files()
+    if name not in files:
+        raise SpecError(
+            f"no model named {name!r}{_nearest(name, files)} "
+            f"(the catalog has: {', '.join(sorted(files))}; a path ending in .toml loads your own file)"
+        )
+    return _spec_from_text(name, files[name].read_text(), f"'{name}.toml'", options)
+
+
+def load_model(path, **options) -> Spec:
+    """Load a model file of the user's own, in the catalog's TOML format."""
+    path = Path(path)
+    if not path.is_file():
+        raise SpecError(f"model file {str(path)!r} does not exist")
+    return _spec_from_text(path.stem, path.read_text(), repr(str(path)), options)
+
+
+def describe_catalog() -> list[dict]:
+    """One row per catalog model: name, description, default options, allowed values."""
+    rows = []
+    for name in catalog():
+        s = model(name)
+        rows.append({"model": name, "description": s.description, "processes": s.processes,
+                     **{k: s.options[k] for k in OPTION_VALUES},
+                     "allowed": {k: list(v) for k, v in s.allowed.items() if len(v) > 1}})
+    return rows

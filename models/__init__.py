@@ -1,0 +1,1 @@
+"""The model catalog: one declarative TOML file per named special case."""
