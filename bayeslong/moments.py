@@ -8,7 +8,9 @@ With latents eta = a + B eta + G w + zeta (Psi) and outcomes y = nu + Lam eta + 
     E[y | w]   = c + D w,   c = nu + Lam (I - B)^-1 a,   D = Lam (I - B)^-1 G
     Cov[y | w] = Sigma      = Lam (I - B)^-1 Psi (I - B)^-T Lam' + Theta
 
-This is the only place these formulas are written. Numeric values (start values,
+The latents' own moments given w, E[eta | w] = (I - B)^-1 (a + G w),
+Cov[eta | w] = Phi = (I - B)^-1 Psi (I - B)^-T and Cov[eta, y | w] = Phi Lam', come from
+:func:`latent_moments`, built on the same helper. This is the only place these formulas are written. Numeric values (start values,
 identification, simulation checks, per-unit terms) come from compiling this graph.
 
 References
@@ -39,6 +41,13 @@ def model_matrices(structure: Structure, theta) -> dict[str, pt.TensorVariable]:
     return {name: _filled(m, theta_ext) for name, m in structure.matrices.items()}
 
 
+def _latent_part(m: dict, n_latent: int):
+    # the reduced form of the latents, shared by the outcome and the latent moments:
+    # eta = (I - B)^-1 (a + G w + zeta), so E = (I-B)^-1 a + (I-B)^-1 G w, Cov = (I-B)^-1 Psi (I-B)^-T
+    total = pt.linalg.inv(pt.eye(n_latent) - m["B"])  # (I - B)^-1, recursive systems: always exists
+    return total @ m["a"], total @ m["G"], total @ m["Psi"] @ total.T
+
+
 def implied_moments(structure: Structure, theta):
     """Return ``(c, D, Sigma)``: intercepts, covariate slopes and covariance of y given w.
 
@@ -56,13 +65,44 @@ def implied_moments(structure: Structure, theta):
     Sigma : (Y, Y) tensor
     """
     m = model_matrices(structure, theta)
-    n_latent = len(structure.latents)
-    total = pt.linalg.inv(pt.eye(n_latent) - m["B"])  # (I - B)^-1, recursive systems: always exists
-    lam_total = m["Lam"] @ total
-    c = m["nu"] + lam_total @ m["a"]
-    D = lam_total @ m["G"]
-    Sigma = lam_total @ m["Psi"] @ lam_total.T + m["Theta"]
+    alpha, Gamma, Phi = _latent_part(m, len(structure.latents))
+    c = m["nu"] + m["Lam"] @ alpha
+    D = m["Lam"] @ Gamma
+    Sigma = m["Lam"] @ Phi @ m["Lam"].T + m["Theta"]
     return c, D, 0.5 * (Sigma + Sigma.T)
+
+
+def latent_moments(structure: Structure, theta):
+    """Return the latents' moments given w and their covariance with the outcomes.
+
+    Parameters
+    ----------
+    structure : Structure
+    theta : pytensor vector
+        Free parameters in ``structure.names`` order.
+
+    Returns
+    -------
+    alpha : (L,) tensor
+        Latent intercepts, ``E[eta | w] = alpha + Gamma w``.
+    Gamma : (L, W) tensor
+        Latent covariate slopes.
+    Phi : (L, L) tensor
+        ``Cov[eta | w] = (I - B)^-1 Psi (I - B)^-T``.
+    cross : (L, Y) tensor
+        ``Cov[eta, y | w] = Phi Lam'`` (the measurement errors are uncorrelated with eta).
+
+    Notes
+    -----
+    Latents are in ``structure.latents`` order. These are the same reduced-form matrices
+    :func:`implied_moments` maps to the outcomes (one helper serves both), so the
+    conditional distribution of a unit's latent trajectory given its outcomes (Gaussian
+    conditioning on the joint of (eta, y)) can never disagree with the likelihood.
+    """
+    m = model_matrices(structure, theta)
+    alpha, Gamma, Phi = _latent_part(m, len(structure.latents))
+    Phi = 0.5 * (Phi + Phi.T)
+    return alpha, Gamma, Phi, Phi @ m["Lam"].T
 
 
 @lru_cache(maxsize=64)

@@ -1,0 +1,96 @@
+"""A quick normal approximation of the posterior around the ML fit (a test stand-in).
+
+Used by the tests of :mod:`bayeslong.compare` and :mod:`bayeslong.check` to get a
+:class:`bayeslong.fit.Fit`-shaped object in seconds: draws theta ~ N(theta_ML, I(theta_ML)^-1)
+(the Laplace approximation under a flat prior; Gelman et al. 2013, BDA3 section 4.1),
+rejecting draws whose covariance blocks are not positive definite, and stores one
+log-likelihood term per unit computed with the engine's own :func:`pattern_loglik` on
+:func:`unit_cross`. It is not a sampler and carries no priors; use :func:`bayeslong.fit`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import pytensor
+import pytensor.tensor as pt
+
+from bayeslong._dims import UNIT
+from bayeslong.likelihood import loglik_function, pattern_arrays, pattern_loglik, unit_cross
+from bayeslong.ml import _hessian, fit_ml
+from bayeslong.moments import implied_moments
+from bayeslong.spec import Spec
+from bayeslong.structure import Structure, structure_for
+
+_UNIT_LOGLIK: dict = {}
+
+
+def unit_loglik_function(structure: Structure):
+    """Compiled ``f(theta, counts, cross, masks) -> (N,)`` per-unit log-likelihood terms."""
+    if structure not in _UNIT_LOGLIK:
+        theta = pt.dvector("theta")
+        counts, cross, masks = pt.dvector("counts"), pt.dtensor3("cross"), pt.dmatrix("masks")
+        c, D, Sigma = implied_moments(structure, theta)
+        out = pattern_loglik(c, D, Sigma, counts, cross, masks)
+        _UNIT_LOGLIK[structure] = pytensor.function([theta, counts, cross, masks], out,
+                                                    mode="FAST_COMPILE", on_unused_input="ignore")
+    return _UNIT_LOGLIK[structure]
+
+
+def unit_loglik(structure: Structure, panel, thetas: np.ndarray) -> np.ndarray:
+    """Per-unit log-likelihood at each row of ``thetas``, shape (S, N)."""
+    f = unit_loglik_function(structure)
+    data = unit_cross(panel.outcome_matrix(), panel.covariate_matrix())
+    return np.stack([f(np.asarray(t, dtype=float), *data) for t in np.atleast_2d(thetas)])
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class ApproxFit:
+    """A Fit-shaped object holding normal-approximation draws (see module docstring)."""
+
+    spec: Spec
+    panel: object
+    structure: Structure
+    seed: int
+    idata: object
+    ml: object = field(repr=False)
+
+    def theta_draws(self) -> np.ndarray:
+        post = self.idata.posterior
+        return np.stack([post[n].values.reshape(-1) for n in self.structure.names], axis=1)
+
+    def summary(self) -> pd.DataFrame:
+        t = self.theta_draws()
+        return pd.DataFrame({"mean": t.mean(0), "sd": t.std(0, ddof=1)}, index=list(self.structure.names))
+
+
+def approximate_fit(spec: Spec, panel, *, draws: int = 500, chains: int = 2, seed: int = 1) -> ApproxFit:
+    """Fit ``spec`` by ML and draw from the normal approximation of the posterior."""
+    import arviz as az
+
+    structure = structure_for(spec, panel)
+    ml = fit_ml(spec, panel, starts=2, seed=seed)
+    mode = ml.params.to_numpy()
+    f = loglik_function(structure)
+    H = _hessian(f, mode, pattern_arrays(panel.patterns()))
+    cov = np.linalg.inv(-H)
+    cov = 0.5 * (cov + cov.T)
+    rng = np.random.default_rng(seed)
+    need = draws * chains
+    kept: list[np.ndarray] = []
+    while len(kept) < need:
+        cand = rng.multivariate_normal(mode, cov, size=need)
+        ok = [all(np.linalg.eigvalsh(t[b.index]).min() > 0 for b in structure.blocks) for t in cand]
+        kept.extend(cand[np.array(ok, dtype=bool)])
+    thetas = np.array(kept[:need])
+    ll = unit_loglik(structure, panel, thetas)
+    posterior = {n: thetas[:, j].reshape(chains, draws) for j, n in enumerate(structure.names)}
+    idata = az.from_dict(
+        posterior=posterior,
+        log_likelihood={"y": ll.reshape(chains, draws, -1)},
+        coords={UNIT: list(panel.units)},
+        dims={"y": [UNIT]},
+    )
+    return ApproxFit(spec=spec, panel=panel, structure=structure, seed=seed, idata=idata, ml=ml)

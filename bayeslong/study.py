@@ -1,0 +1,1208 @@
+"""The study file: one TOML file that says what data to read and which models to fit.
+
+A study file lets a researcher go from a CSV (or Parquet) file of panel data to a report
+without writing Python: ``bayeslong run study.toml``. :func:`load_study` reads and checks it
+and returns a frozen :class:`Study`; :func:`run_study` carries it out (intake,
+identification, fits, comparison, checks, sensitivity), saving every finished fit under the
+output folder so that a second run reuses it while the study and the data are unchanged.
+
+Layout
+------
+Paths are relative to the folder of the study file. Keys marked *required* must be given;
+every other key has the default shown. An unknown key is an error that names the key and
+the nearest valid one.
+
+Top level
+
+``title`` (text, required)
+    The study's title, printed at the head of the report.
+``output`` (text, default ``"bayeslong-output"``)
+    Folder for saved fits, tables and the report.
+
+``[data]``
+
+``path`` (text, required)
+    The data file: ``.csv`` or ``.parquet``.
+``layout`` (``"long"`` or ``"wide"``, default ``"long"``)
+    ``long``: one row per unit and wave. ``wide``: one row per unit, one column per
+    variable and wave.
+``unit`` (text, required)
+    Column holding the unit id.
+``wave`` (text, required when long)
+    Column holding the wave label (long layout only).
+``outcomes`` (required)
+    Long: a list of outcome columns, ``["quality"]``. Wide: a table from each outcome
+    to its columns in wave order, ``outcomes = { quality = ["q1", "q2", "q3"] }``.
+``time_varying`` (default none)
+    Time-varying covariates: a list of columns (long) or a table like ``outcomes`` (wide).
+``time_invariant`` (list of text, default none)
+    Time-invariant covariate columns.
+``waves`` (list, wide layout only, default 1..T)
+    Wave labels for the per-wave column lists.
+``drop_incomplete_covariates`` (true/false, default false)
+    Drop units with a missing covariate (with a warning naming them) instead of stopping.
+
+``[[models]]`` (one table per candidate model; at least one, required)
+
+``model`` (text, required)
+    A catalog name (``bayeslong models`` lists them) or a path to a model TOML file of
+    your own, in the catalog's format.
+``label`` (text, default the model name, plus the options when two candidates share it)
+    The name used in tables, plots and file names; labels must be unique.
+``options`` (table, default the model's own)
+    ``initial``, ``lag``, ``residuals``, ``effects``, ``intercepts``, as in
+    ``bayeslong.model(name, **options)``.
+
+``[priors]`` (default: the documented weakly informative defaults)
+
+``<parameter> = ["<family>", number, ...]``
+    A prior override by parameter name, e.g. ``lag = ["normal", 0.3, 0.1]``. It applies to
+    every candidate that has the parameter; a name no candidate has is an error.
+
+``[sampling]``
+
+``method`` (``"bayes"`` or ``"ml"``, default ``"bayes"``)
+    ``bayes``: NUTS posterior sampling. ``ml``: maximum likelihood only, a quick look
+    without posteriors, LOO or predictive checks.
+``draws`` (whole number, default 1000), ``tune`` (default 1000), ``chains`` (default 4),
+``seed`` (default 1)
+    Posterior draws kept per chain, warm-up draws per chain, chains, and the random seed.
+``sampler`` (text, default ``"auto"``)
+    Passed to :func:`bayeslong.fit` (``"auto"`` lets it choose).
+
+``[checks]``
+
+``ppc`` (true/false, default true), ``ppc_draws`` (whole number, default 200)
+    Posterior predictive checks and the number of posterior draws they use.
+
+``[comparison]``
+
+``future`` (true/false, default false)
+    Also compare by leave-future-out: fit on all but the last wave, score the last.
+
+``[sensitivity]`` (each true/false; all default false)
+
+``prior_grid``
+    Refit with the lag's prior on a grid of locations and widths.
+``initial``
+    Refit with the other treatment of the first wave (predetermined / endogenous).
+``specification``
+    The lag across every candidate that has one.
+``power_scaling``
+    Power-scaling sensitivity of the prior and the likelihood.
+
+Example
+-------
+.. code-block:: toml
+
+    title = "Sleep quality of shift workers (invented data)"
+    output = "results"
+
+    [data]
+    path = "sleep.csv"
+    layout = "long"
+    unit = "worker"
+    wave = "week"
+    outcomes = ["quality"]
+    time_varying = ["night_shifts"]
+    time_invariant = ["age"]
+
+    [[models]]
+    model = "alt"
+
+    [[models]]
+    model = "alt"
+    label = "alt, first wave endogenous"
+    options = { initial = "endogenous" }
+
+    [[models]]
+    model = "linear-growth"
+
+    [priors]
+    lag = ["normal", 0.0, 0.5]
+
+    [sampling]
+    draws = 500
+    tune = 500
+    chains = 2
+    seed = 7
+
+    [comparison]
+    future = true
+
+    [sensitivity]
+    specification = true
+    initial = true
+
+Resuming
+--------
+Each candidate's fit is identified by a content hash of the data settings, the bytes of the
+data file, the sampling settings, the prior overrides, the model's full spec (catalog or
+user file, after options) and the package version. Changing the title, the checks or
+another candidate does not invalidate a saved fit; changing anything the fit depends on does.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import hashlib
+import json
+import numbers
+import sys
+import time
+import tomllib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from bayeslong.errors import BayeslongError, DataError, SpecError
+
+__all__ = ["Study", "Candidate", "load_study", "run_study", "StudyResults", "ModelResult"]
+
+#: Default output folder (relative to the study file).
+DEFAULT_OUTPUT = "bayeslong-output"
+
+_TOP = ("title", "output", "data", "models", "priors", "sampling", "checks", "comparison",
+        "sensitivity")
+_DATA = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_invariant",
+         "waves", "drop_incomplete_covariates")
+_MODEL = ("model", "label", "options")
+_SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
+             "sampler": "auto"}
+_CHECKS = {"ppc": True, "ppc_draws": 200}
+_COMPARISON = {"future": False}
+_SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
+                "power_scaling": False}
+_LAYOUTS = ("long", "wide")
+_METHODS = ("bayes", "ml")
+_DATA_SUFFIXES = (".csv", ".parquet")
+
+
+# --------------------------------------------------------------------------------------------
+# checking helpers (each raises a SpecError that names the key and the fix)
+# --------------------------------------------------------------------------------------------
+
+
+def _nearest(word: str, choices) -> str:
+    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+class _Reader:
+    """Check one parsed study file, naming the file in every message."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, message: str, cls=SpecError) -> None:
+        raise cls(f"study file {self.source}: {message}")
+
+    def keys(self, table: dict, valid, where: str) -> None:
+        for key in table:
+            if key not in valid:
+                place = f"`{where}.{key}`" if where else f"`{key}`"
+                self.fail(f"unknown key {place}{_nearest(key, valid)} "
+                          f"(valid keys{' in [' + where + ']' if where else ''}: "
+                          f"{', '.join(valid)})")
+
+    def required(self, table: dict, key: str, where: str) -> Any:
+        if key not in table:
+            place = f"{where}.{key}" if where else key
+            section = f" in [{where}]" if where and "[" not in where else ""
+            self.fail(f"the required key `{place}` is missing; add it{section}"
+                      + (f" (see `{_EXAMPLES.get(key)}`)" if key in _EXAMPLES else ""))
+        return table[key]
+
+    def text(self, value: Any, where: str) -> str:
+        if not isinstance(value, str) or not value.strip():
+            self.fail(f"`{where}` must be text in quotes; got {value!r}")
+        return value
+
+    def texts(self, value: Any, where: str) -> tuple[str, ...]:
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            self.fail(f"`{where}` must be a list of column names, e.g. [\"a\", \"b\"]; got {value!r}")
+        return tuple(value)
+
+    def whole(self, value: Any, where: str, least: int) -> int:
+        if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+            self.fail(f"`{where}` must be a whole number; got {value!r}")
+        if value < least:
+            self.fail(f"`{where}` must be at least {least}; got {value}")
+        return int(value)
+
+    def flag(self, value: Any, where: str) -> bool:
+        if not isinstance(value, bool):
+            self.fail(f"`{where}` must be true or false (no quotes); got {value!r}")
+        return value
+
+    def choice(self, value: Any, choices, where: str) -> str:
+        if value not in choices:
+            self.fail(f"`{where}` must be one of {', '.join(repr(c) for c in choices)}; "
+                      f"got {value!r}{_nearest(value, choices)}")
+        return value
+
+    def table(self, value: Any, where: str) -> dict:
+        if not isinstance(value, dict):
+            self.fail(f"`{where}` must be a table ([{where}] or {{ key = value }}); got {value!r}")
+        return value
+
+    def settings(self, raw: dict, name: str, defaults: dict) -> dict:
+        """Fill a flat settings table from its defaults, checking each value's type."""
+        table = self.table(raw.get(name, {}), name)
+        self.keys(table, tuple(defaults), name)
+        out = dict(defaults)
+        for key, value in table.items():
+            where = f"{name}.{key}"
+            default = defaults[key]
+            if isinstance(default, bool):
+                out[key] = self.flag(value, where)
+            elif isinstance(default, int):
+                out[key] = self.whole(value, where, 0 if key in ("tune", "seed") else 1)
+            else:
+                out[key] = self.text(value, where)
+        return out
+
+
+_EXAMPLES = {
+    "title": 'title = "My study"',
+    "data": '[data] path = "panel.csv"',
+    "models": '[[models]] model = "alt"',
+    "path": 'path = "panel.csv"',
+    "unit": 'unit = "id"',
+    "wave": 'wave = "time"',
+    "outcomes": 'outcomes = ["y"]',
+    "model": 'model = "alt"',
+}
+
+
+# --------------------------------------------------------------------------------------------
+# value objects
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class DataSource:
+    """Where the panel data are and how to read them (the ``[data]`` table)."""
+
+    path: Path
+    layout: str = "long"
+    unit: str
+    wave: str | None = None
+    outcomes: Any
+    time_varying: Any = ()
+    time_invariant: tuple[str, ...] = ()
+    waves: tuple | None = None
+    drop_incomplete_covariates: bool = False
+
+    def settings(self) -> dict:
+        """Plain-data form without the absolute path (used in the content hash and report)."""
+        d = dataclasses.asdict(self)
+        d["path"] = self.path.name
+        for key in ("outcomes", "time_varying"):
+            value = getattr(self, key)
+            d[key] = {k: list(v) for k, v in value.items()} if isinstance(value, dict) else list(value)
+        d["time_invariant"] = list(self.time_invariant)
+        d["waves"] = None if self.waves is None else list(self.waves)
+        return d
+
+    def columns(self) -> list[tuple[str, str]]:
+        """Every column the study names, with the key that names it."""
+        cols = [(self.unit, "data.unit")]
+        if self.layout == "long":
+            cols.append((self.wave, "data.wave"))
+            cols += [(c, "data.outcomes") for c in self.outcomes]
+            cols += [(c, "data.time_varying") for c in self.time_varying]
+        else:
+            cols += [(c, f"data.outcomes.{k}") for k, v in self.outcomes.items() for c in v]
+            cols += [(c, f"data.time_varying.{k}") for k, v in self.time_varying.items() for c in v]
+        cols += [(c, "data.time_invariant") for c in self.time_invariant]
+        return cols
+
+
+@dataclass(frozen=True, kw_only=True)
+class Candidate:
+    """One candidate model of a study: the resolved spec and the label it is shown under."""
+
+    label: str
+    model: str
+    options: dict = field(default_factory=dict)
+    spec: Any = None  # bayeslong.spec.Spec, resolved at load time
+
+
+@dataclass(frozen=True, kw_only=True)
+class Study:
+    """A checked study file (see the module docstring for the layout).
+
+    Attributes
+    ----------
+    title : str
+    source : pathlib.Path
+        The study file.
+    output : pathlib.Path
+        The output folder (absolute).
+    data : DataSource
+    models : tuple of Candidate
+    priors : dict
+        Parameter name -> tuple (family, *numbers).
+    sampling, checks, comparison, sensitivity : dict
+        Settings with defaults filled in.
+    """
+
+    title: str
+    source: Path
+    output: Path
+    data: DataSource
+    models: tuple[Candidate, ...]
+    priors: dict = field(default_factory=dict)
+    sampling: dict = field(default_factory=lambda: dict(_SAMPLING))
+    checks: dict = field(default_factory=lambda: dict(_CHECKS))
+    comparison: dict = field(default_factory=lambda: dict(_COMPARISON))
+    sensitivity: dict = field(default_factory=lambda: dict(_SENSITIVITY))
+
+    # ---------------------------------------------------------------- data
+
+    def read_data(self):
+        """Read the data file into a pandas DataFrame and check the named columns exist."""
+        import pandas as pd
+
+        path = self.data.path
+        try:
+            if path.suffix.lower() == ".csv":
+                df = pd.read_csv(path)
+            else:
+                df = pd.read_parquet(path)
+        except (OSError, ValueError, ImportError) as err:
+            raise DataError(f"could not read the data file {str(path)!r} "
+                            f"(named in `data.path`): {err}") from err
+        columns = [str(c) for c in df.columns]
+        for name, key in self.data.columns():
+            if name not in df.columns:
+                close = difflib.get_close_matches(str(name), columns, n=1, cutoff=0.5)
+                hint = (f"did you mean {close[0]!r}?" if close
+                        else "its columns are " + ", ".join(repr(c) for c in columns[:20]))
+                raise DataError(f"`{key}` names the column {name!r}, which is not in "
+                                f"{path.name}; {hint}")
+        return df
+
+    def panel(self, *, record: list | None = None):
+        """Build the :class:`~bayeslong.Panel` the study describes.
+
+        Parameters
+        ----------
+        record : list, optional
+            Intake warnings (as text) are appended here as well as shown.
+        """
+        from bayeslong.data import Panel
+
+        df = self.read_data()
+        d = self.data
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            if d.layout == "long":
+                panel = Panel.from_long(
+                    df, unit=d.unit, wave=d.wave, outcomes=list(d.outcomes),
+                    time_varying=list(d.time_varying), time_invariant=list(d.time_invariant),
+                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+            else:
+                panel = Panel.from_wide(
+                    df, unit=d.unit, outcomes={k: list(v) for k, v in d.outcomes.items()},
+                    time_varying={k: list(v) for k, v in d.time_varying.items()},
+                    time_invariant=list(d.time_invariant),
+                    waves=None if d.waves is None else list(d.waves),
+                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+        for w in caught:
+            if record is not None:
+                record.append(str(w.message))
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        return panel
+
+    # ---------------------------------------------------------------- identity of fits
+
+    def data_digest(self) -> str:
+        """SHA-256 of the data file's bytes."""
+        h = hashlib.sha256()
+        with open(self.data.path, "rb") as fh:
+            for chunk in iter(lambda: fh.read(1 << 20), b""):
+                h.update(chunk)
+        return h.hexdigest()
+
+    def fit_key(self, candidate: Candidate, *, extra: dict | None = None) -> str:
+        """Content hash identifying ``candidate``'s fit (see "Resuming" in the module notes).
+
+        Parameters
+        ----------
+        candidate : Candidate
+        extra : dict, optional
+            More settings the result depends on (e.g. ``{"kind": "ml"}``).
+        """
+        content = {
+            "data": self.data.settings(),
+            "data_sha256": self._digest(),
+            "sampling": self.sampling,
+            "priors": {k: list(v) for k, v in sorted(self.priors.items())},
+            "spec": candidate.spec.to_dict(),
+            "version": package_version(),
+            "extra": extra or {},
+        }
+        text = json.dumps(content, sort_keys=True, default=str)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+    def _digest(self) -> str:
+        # hashing a large file once per candidate would be wasteful; the study is frozen,
+        # but the file is not, so the digest is cached by (size, mtime).
+        st = self.data.path.stat()
+        key = (str(self.data.path), st.st_size, st.st_mtime_ns)
+        if key not in _DIGESTS:
+            _DIGESTS[key] = self.data_digest()
+        return _DIGESTS[key]
+
+    def to_dict(self) -> dict:
+        """Plain-data form of the settings (for the report and ``--json``)."""
+        return {
+            "title": self.title,
+            "source": str(self.source),
+            "output": str(self.output),
+            "data": self.data.settings(),
+            "models": [{"label": c.label, "model": c.model, "options": dict(c.spec.options)}
+                       for c in self.models],
+            "priors": {k: list(v) for k, v in self.priors.items()},
+            "sampling": dict(self.sampling),
+            "checks": dict(self.checks),
+            "comparison": dict(self.comparison),
+            "sensitivity": dict(self.sensitivity),
+        }
+
+
+_DIGESTS: dict = {}
+
+
+# --------------------------------------------------------------------------------------------
+# loading
+# --------------------------------------------------------------------------------------------
+
+
+def load_study(path) -> Study:
+    """Read and check a study file.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The study TOML file.
+
+    Returns
+    -------
+    Study
+
+    Raises
+    ------
+    SpecError
+        The file is missing or not valid TOML; a key is unknown (the nearest valid key is
+        suggested), missing, or of the wrong type; a model name is not in the catalog; a
+        label repeats; a prior is malformed.
+    DataError
+        The data file does not exist or is not CSV/Parquet.
+
+    Examples
+    --------
+    >>> study = load_study("examples/shift_sleep.toml")  # doctest: +SKIP
+    >>> [c.label for c in study.models]  # doctest: +SKIP
+    ['alt', 'alt, first wave endogenous', 'linear-growth', 'ar']
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise SpecError(f"study file {str(path)!r} does not exist; check the path "
+                        "(`bayeslong demo` writes an example study to start from)")
+    source = path.name
+    r = _Reader(source)
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as err:
+        r.fail(f"is not valid TOML: {err}")
+    except UnicodeDecodeError as err:
+        r.fail(f"is not UTF-8 text: {err}")
+    r.keys(raw, _TOP, "")
+    base = path.resolve().parent
+
+    title = r.text(r.required(raw, "title", ""), "title")
+    output = base / r.text(raw.get("output", DEFAULT_OUTPUT), "output")
+    data = _read_data(r, r.table(r.required(raw, "data", ""), "data"), base)
+    models = _read_models(r, r.required(raw, "models", ""), base)
+    priors = _read_priors(r, r.table(raw.get("priors", {}), "priors"))
+    sampling = r.settings(raw, "sampling", _SAMPLING)
+    r.choice(sampling["method"], _METHODS, "sampling.method")
+    checks = r.settings(raw, "checks", _CHECKS)
+    comparison = r.settings(raw, "comparison", _COMPARISON)
+    sensitivity = r.settings(raw, "sensitivity", _SENSITIVITY)
+    return Study(title=title, source=path.resolve(), output=output, data=data, models=models,
+                 priors=priors, sampling=sampling, checks=checks, comparison=comparison,
+                 sensitivity=sensitivity)
+
+
+def _read_data(r: _Reader, raw: dict, base: Path) -> DataSource:
+    r.keys(raw, _DATA, "data")
+    rel = r.text(r.required(raw, "path", "data"), "data.path")
+    path = (base / rel).resolve()
+    if path.suffix.lower() not in _DATA_SUFFIXES:
+        r.fail(f"`data.path` must name a .csv or .parquet file; got {rel!r}", DataError)
+    if not path.is_file():
+        r.fail(f"the data file {rel!r} (`data.path`) does not exist; looked for {str(path)!r}. "
+               "Paths are relative to the study file's folder.", DataError)
+    layout = r.choice(raw.get("layout", "long"), _LAYOUTS, "data.layout")
+    unit = r.text(r.required(raw, "unit", "data"), "data.unit")
+    invariant = r.texts(raw.get("time_invariant", []), "data.time_invariant")
+    drop = r.flag(raw.get("drop_incomplete_covariates", False), "data.drop_incomplete_covariates")
+    if layout == "long":
+        if "waves" in raw:
+            r.fail("`data.waves` is for the wide layout only; in the long layout the wave "
+                   "labels come from the `data.wave` column: remove `data.waves`")
+        wave = r.text(r.required(raw, "wave", "data"), "data.wave")
+        outcomes = r.texts(r.required(raw, "outcomes", "data"), "data.outcomes")
+        varying = r.texts(raw.get("time_varying", []), "data.time_varying")
+        waves = None
+    else:
+        if "wave" in raw:
+            r.fail("`data.wave` is for the long layout only; in the wide layout give the "
+                   "columns per wave in `data.outcomes` (and optional labels in `data.waves`)")
+        wave = None
+
+        def per_wave(value, where):
+            value = r.table(value, where)
+            return {name: r.texts(cols, f"{where}.{name}") for name, cols in value.items()}
+
+        outcomes = per_wave(r.required(raw, "outcomes", "data"), "data.outcomes")
+        varying = per_wave(raw.get("time_varying", {}), "data.time_varying")
+        waves = raw.get("waves")
+        if waves is not None:
+            if not isinstance(waves, list):
+                r.fail(f"`data.waves` must be a list of wave labels; got {waves!r}")
+            waves = tuple(waves)
+    if not outcomes:
+        r.fail("`data.outcomes` is empty; name at least one outcome column")
+    return DataSource(path=path, layout=layout, unit=unit, wave=wave, outcomes=outcomes,
+                      time_varying=varying, time_invariant=invariant, waves=waves,
+                      drop_incomplete_covariates=drop)
+
+
+def _read_models(r: _Reader, raw: Any, base: Path) -> tuple[Candidate, ...]:
+    from bayeslong.spec import OPTION_VALUES, catalog, model
+
+    if isinstance(raw, dict):
+        raw = [raw]
+    if not isinstance(raw, list) or not raw or not all(isinstance(m, dict) for m in raw):
+        r.fail("`models` must be one or more [[models]] tables, each with a `model` key, e.g. "
+               '[[models]] model = "alt"')
+    found = []
+    for i, entry in enumerate(raw, start=1):
+        where = f"models[{i}]"
+        r.keys(entry, _MODEL, where)
+        if "model" not in entry:
+            r.fail(f"the required key `model` is missing from the {_ordinal(i)} [[models]] "
+                   f"table; add e.g. model = \"alt\" (the catalog: {', '.join(catalog())})")
+        name = r.text(entry["model"], f"{where}.model")
+        options = r.table(entry.get("options", {}), f"{where}.options")
+        r.keys(options, tuple(OPTION_VALUES), f"{where}.options")
+        for key, value in options.items():
+            r.text(value, f"{where}.options.{key}")
+        if name.endswith(".toml"):
+            file = (base / name).resolve()
+            if not file.is_file():
+                r.fail(f"`{where}.model` names the model file {name!r}, which does not exist "
+                       f"(looked for {str(file)!r}; paths are relative to the study file)")
+            target = str(file)
+        else:
+            if name not in catalog():
+                r.fail(f"`{where}.model` is {name!r}, which is not in the catalog"
+                       f"{_nearest(name, catalog())} (the catalog has: {', '.join(catalog())}; "
+                       "or give a path ending in .toml to a model file of your own)")
+            target = name
+        try:
+            spec = model(target, **options)
+        except SpecError as err:
+            r.fail(f"`{where}`: {err}")
+        label = entry.get("label")
+        if label is not None:
+            label = r.text(label, f"{where}.label")
+        found.append((label, name, options, spec))
+    names = [spec.name for _, _, _, spec in found]
+    candidates = []
+    for label, name, options, spec in found:
+        if label is None:
+            label = spec.name
+            if names.count(spec.name) > 1 and options:
+                label += " (" + ", ".join(f"{k}={v}" for k, v in options.items()) + ")"
+        candidates.append(Candidate(label=label, model=name, options=dict(options), spec=spec))
+    labels = [c.label for c in candidates]
+    for label in labels:
+        if labels.count(label) > 1:
+            r.fail(f"two candidates are labelled {label!r}; give each [[models]] table its own "
+                   "`label`")
+    return tuple(candidates)
+
+
+def _read_priors(r: _Reader, raw: dict) -> dict:
+    priors = {}
+    for name, value in raw.items():
+        where = f"priors.{name}"
+        if (not isinstance(value, list) or not value or not isinstance(value[0], str)
+                or not all(isinstance(v, numbers.Real) and not isinstance(v, bool)
+                           for v in value[1:])):
+            r.fail(f"`{where}` must be a list of a distribution name and its numbers, e.g. "
+                   f'{name} = ["normal", 0.0, 0.5]; got {value!r}')
+        priors[name] = (value[0], *[float(v) for v in value[1:]])
+    return priors
+
+
+def _ordinal(i: int) -> str:
+    return {1: "first", 2: "second", 3: "third", 4: "fourth", 5: "fifth"}.get(i, f"{i}th")
+
+
+# --------------------------------------------------------------------------------------------
+# running a study
+# --------------------------------------------------------------------------------------------
+
+
+def package_version(name: str = "bayeslong") -> str:
+    """Installed version of a distribution, or ``"not installed"`` (no import needed)."""
+    from importlib import metadata
+
+    try:
+        return metadata.version(name)
+    except metadata.PackageNotFoundError:
+        return "not installed"
+
+
+def software_versions() -> dict[str, str]:
+    """Versions of Python and of the packages a result depends on (for reproducibility)."""
+    import platform
+
+    out = {"python": platform.python_version()}
+    for name in ("bayeslong", "pymc", "pytensor", "arviz", "numpy", "pandas", "scipy", "nutpie"):
+        out[name] = package_version(name)
+    return out
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class Step:
+    """The outcome of one optional step of a run (comparison, checks, sensitivity ...).
+
+    Attributes
+    ----------
+    ran : bool
+    reason : str
+        Why the step did not run or failed (empty when it ran).
+    value : object
+        The step's result (a table, a result object) when it ran.
+    seconds : float
+    """
+
+    ran: bool
+    reason: str = ""
+    value: Any = None
+    seconds: float = 0.0
+
+    @classmethod
+    def skipped(cls, reason: str) -> "Step":
+        return cls(ran=False, reason=reason)
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class ModelResult:
+    """Everything a run learned about one candidate.
+
+    Attributes
+    ----------
+    candidate : Candidate
+    key : str
+        Content hash of the fit (file names under ``<output>/fits``).
+    identification : bayeslong.Identification or None
+    ml : dict or None
+        ``loglik``, ``aic``, ``bic``, ``n_params``, ``converged``, ``boundary`` and the
+        ``table`` (DataFrame of estimate and se) of the maximum-likelihood fit.
+    fit : bayeslong.fit.Fit or None
+        The Bayesian fit (None for ``method = "ml"``, or when it could not run).
+    reused : bool
+        The Bayesian fit was loaded from a saved file instead of sampled.
+    notes : tuple of str
+        What went wrong or was skipped, in words.
+    problems : tuple of str
+        Convergence problems, each naming the parameter and the threshold.
+    check : Step
+        Posterior predictive checks.
+    seconds : float
+    """
+
+    candidate: Candidate
+    key: str
+    identification: Any = None
+    ml: dict | None = None
+    fit: Any = None
+    reused: bool = False
+    notes: tuple[str, ...] = ()
+    problems: tuple[str, ...] = ()
+    check: Step = field(default_factory=lambda: Step.skipped("not requested"))
+    seconds: float = 0.0
+
+    @property
+    def label(self) -> str:
+        return self.candidate.label
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class StudyResults:
+    """The outcome of :func:`run_study`, which :func:`bayeslong.report.write_report` renders.
+
+    Attributes
+    ----------
+    study : Study
+    panel : Panel
+    intake_warnings : tuple of str
+    models : tuple of ModelResult
+    comparison, future, sensitivity : Step
+    method : str
+        ``"bayes"``, ``"ml"`` (asked for), or ``"ml-fallback"`` (the Bayesian fit module
+        is absent).
+    fitted, reused : int
+        Bayesian fits sampled in this run and loaded from saved files.
+    versions : dict
+    seconds : float
+    started : str
+        UTC time stamp of the run.
+    """
+
+    study: Study
+    panel: Any
+    intake_warnings: tuple[str, ...] = ()
+    models: tuple[ModelResult, ...] = ()
+    comparison: Step = field(default_factory=lambda: Step.skipped("not requested"))
+    future: Step = field(default_factory=lambda: Step.skipped("not requested"))
+    sensitivity: Step = field(default_factory=lambda: Step.skipped("not requested"))
+    method: str = "bayes"
+    fitted: int = 0
+    reused: int = 0
+    versions: dict = field(default_factory=dict)
+    seconds: float = 0.0
+    started: str = ""
+
+    def to_dict(self) -> dict:
+        """Machine-readable summary (JSON safe) of the run."""
+        models = []
+        for m in self.models:
+            ident = m.identification
+            models.append({
+                "label": m.label,
+                "model": m.candidate.spec.name,
+                "options": dict(m.candidate.spec.options),
+                "key": m.key,
+                "identified": None if ident is None else bool(ident.identified),
+                "deficient": [] if ident is None else list(ident.deficient),
+                "ml": None if m.ml is None else {k: m.ml[k] for k in
+                                                 ("loglik", "aic", "bic", "n_params", "converged")},
+                "bayes": m.fit is not None,
+                "reused": m.reused,
+                "problems": list(m.problems),
+                "notes": list(m.notes),
+            })
+
+        def step(s: Step):
+            out = {"ran": s.ran, "reason": s.reason}
+            table = _table_of(s.value)
+            if table is not None:
+                out["table"] = json.loads(table.to_json(orient="index", default_handler=str))
+            return out
+
+        return {
+            "title": self.study.title,
+            "method": self.method,
+            "n_units": self.panel.n_units,
+            "n_waves": self.panel.n_waves,
+            "fitted": self.fitted,
+            "reused": self.reused,
+            "models": models,
+            "comparison": step(self.comparison),
+            "future": step(self.future),
+            "sensitivity": step(self.sensitivity),
+            "output": str(self.study.output),
+            "seconds": round(self.seconds, 1),
+            "versions": self.versions,
+        }
+
+
+def _table_of(value):
+    """The DataFrame inside a step's value, if any (a DataFrame or an object with .table)."""
+    import pandas as pd
+
+    if isinstance(value, pd.DataFrame):
+        return value
+    table = getattr(value, "table", None)
+    return table if isinstance(table, pd.DataFrame) else None
+
+
+def optional_module(name: str):
+    """Import ``bayeslong.<name>`` if it exists; return (module, reason it is absent)."""
+    import importlib
+
+    try:
+        return importlib.import_module(f"bayeslong.{name}"), ""
+    except ModuleNotFoundError as err:
+        if err.name in (f"bayeslong.{name}",):
+            return None, f"this installation has no bayeslong.{name} module"
+        raise
+
+
+def _slug(text: str) -> str:
+    import re
+
+    return re.sub(r"[^A-Za-z0-9]+", "-", text).strip("-").lower()[:40] or "model"
+
+
+def _stderr(message: str) -> None:
+    print(f"[bayeslong] {message}", file=sys.stderr, flush=True)
+
+
+def check_priors(study: Study, panel) -> None:
+    """Check every prior override against the candidates' parameters and prior rules.
+
+    Raises
+    ------
+    SpecError
+        A prior names a parameter no candidate has (nearest name suggested), or a prior
+        is malformed for a model that has the parameter (the model is named).
+    """
+    from bayeslong.priors import resolve_priors
+    from bayeslong.structure import structure_for
+
+    if not study.priors:
+        return
+    structures = {c.label: structure_for(c.spec, panel) for c in study.models}
+    every = sorted({n for s in structures.values() for n in s.names})
+    for name in study.priors:
+        if not any(name in s.names for s in structures.values()):
+            raise SpecError(
+                f"study file {study.source.name}: `priors.{name}` names no parameter of any "
+                f"candidate{_nearest(name, every)} (the candidates' parameters: {', '.join(every)})")
+    for label, structure in structures.items():
+        mine = {k: v for k, v in study.priors.items() if k in structure.names}
+        try:
+            resolve_priors(structure, panel, mine)
+        except SpecError as err:
+            raise SpecError(f"study file {study.source.name}, candidate {label!r}: {err}") from err
+
+
+def _priors_for(study: Study, spec, panel) -> dict:
+    from bayeslong.structure import structure_for
+
+    names = structure_for(spec, panel).names
+    return {k: v for k, v in study.priors.items() if k in names}
+
+
+def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None] | None = _stderr,
+              quiet_sampler: bool = False) -> StudyResults:
+    """Carry out a study: intake, identification, fits, comparison, checks, sensitivity.
+
+    Parameters
+    ----------
+    study : Study
+        From :func:`load_study`.
+    fit : bool, default True
+        Sample fits that have no saved copy. ``False`` only loads saved fits (for
+        re-rendering a report) and raises if one is missing.
+    progress : callable, optional
+        Receives one line of text per step (default: printed on stderr); ``None`` is silent.
+    quiet_sampler : bool
+        Hide the sampler's progress bar.
+
+    Returns
+    -------
+    StudyResults
+
+    Raises
+    ------
+    DataError, SpecError
+        The data or a prior override cannot be used (before anything is fitted).
+
+    Notes
+    -----
+    Every finished fit is saved under ``<output>/fits`` with its content hash in the file
+    name (see "Resuming" in the module notes) and reused by later runs while the hash is
+    unchanged. Steps whose module is not installed, or that fail, are recorded as "not run"
+    with the reason instead of stopping the run; convergence problems are recorded per model.
+    """
+    import datetime
+
+    say = progress or (lambda message: None)
+    t0 = time.perf_counter()
+    started = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    record: list[str] = []
+    panel = study.panel(record=record)
+    say(f"data: {panel.n_units} units, {panel.n_waves} waves, "
+        f"{panel.patterns().n_patterns} missing-data pattern(s)")
+    check_priors(study, panel)
+    fits_dir = study.output / "fits"
+    fits_dir.mkdir(parents=True, exist_ok=True)
+
+    method = study.sampling["method"]
+    fit_module = None
+    if method == "bayes":
+        fit_module, absent = optional_module("fit")
+        if fit_module is None:
+            method = "ml-fallback"
+            say("NOTE: " + absent + "; falling back to MAXIMUM LIKELIHOOD ONLY "
+                "(no posteriors, no LOO/WAIC, no predictive checks)")
+
+    models = []
+    fitted = reused = 0
+    for i, cand in enumerate(study.models, start=1):
+        result, did_fit = _run_candidate(study, panel, cand, fit_module, fits_dir, fit=fit,
+                                         say=lambda m, i=i: say(f"[{i}/{len(study.models)}] {m}"),
+                                         quiet_sampler=quiet_sampler)
+        fitted += did_fit == "fitted"
+        reused += did_fit == "reused"
+        models.append(result)
+    if reused:
+        say(f"reused {reused} saved fit{'s' if reused != 1 else ''}")
+
+    comparison, future = _compare(study, panel, models, method, say)
+    models = [_check(study, panel, m, say) for m in models]
+    sensitivity = _sensitivity(study, panel, models, method, say)
+    return StudyResults(
+        study=study, panel=panel, intake_warnings=tuple(record), models=tuple(models),
+        comparison=comparison, future=future, sensitivity=sensitivity, method=method,
+        fitted=fitted, reused=reused, versions=software_versions(),
+        seconds=time.perf_counter() - t0, started=started)
+
+
+def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler):
+    """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened)."""
+    import pandas as pd
+
+    from bayeslong.identify import identify
+
+    t0 = time.perf_counter()
+    key = study.fit_key(cand)
+    notes: list[str] = []
+    stem = f"{_slug(cand.label)}-{key}"
+    try:
+        ident = identify(cand.spec, panel)
+    except BayeslongError as err:
+        notes.append(f"identification check failed: {err}")
+        ident = None
+    if ident is not None and not ident.identified:
+        notes.append("not identified on this panel (" + ", ".join(ident.deficient)
+                     + "); not fitted. " + ident.advice)
+        say(f"{cand.label}: NOT IDENTIFIED, skipped")
+        return ModelResult(candidate=cand, key=key, identification=ident, notes=tuple(notes),
+                           seconds=time.perf_counter() - t0), "skipped"
+
+    ml = _ml(study, panel, cand, fits_dir / f"{stem}.ml.json", notes, say)
+    what, bayes, problems = "none", None, ()
+    if fit_module is not None:
+        path = fits_dir / f"{stem}.fit"
+        if path.exists():
+            try:
+                bayes = fit_module.load_fit(path)
+                what = "reused"
+                say(f"{cand.label}: reused the saved fit {path.name}")
+            except Exception as err:  # a damaged or outdated file: refit rather than stop
+                notes.append(f"the saved fit {path.name} could not be read ({err}); refitted")
+        if bayes is None:
+            if not fit:
+                raise SpecError(
+                    f"candidate {cand.label!r} has no saved fit for the current study and data "
+                    f"(looked for {path.name} in {fits_dir}); run `bayeslong run "
+                    f"{study.source.name}` first")
+            s = study.sampling
+            say(f"{cand.label}: sampling {s['chains']} chains x {s['draws']} draws "
+                f"(+{s['tune']} tuning)")
+            try:
+                kwargs = dict(draws=s["draws"], tune=s["tune"], chains=s["chains"], seed=s["seed"],
+                              priors=_priors_for(study, cand.spec, panel) or None,
+                              progressbar=not quiet_sampler)
+                if s["sampler"] != "auto":
+                    kwargs["sampler"] = s["sampler"]
+                bayes = fit_module.fit(cand.spec, panel, **kwargs)
+                bayes.save(path)
+                what = "fitted"
+            except BayeslongError as err:
+                notes.append(f"Bayesian fit failed: {err}")
+                say(f"{cand.label}: Bayesian fit failed: {err}")
+        if bayes is not None:
+            problems = tuple(convergence_problems(bayes))
+            if problems:
+                say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+    return ModelResult(candidate=cand, key=key, identification=ident, ml=ml, fit=bayes,
+                       reused=what == "reused", notes=tuple(notes), problems=problems,
+                       seconds=time.perf_counter() - t0), what
+
+
+def _ml(study, panel, cand, path: Path, notes: list, say) -> dict | None:
+    """Maximum-likelihood fit of one candidate, saved as JSON and reused when present."""
+    import pandas as pd
+
+    from bayeslong.ml import fit_ml
+
+    if path.exists():
+        try:
+            saved = json.loads(path.read_text())
+            saved["table"] = pd.DataFrame(saved["table"]).set_index("parameter")
+            return saved
+        except (ValueError, KeyError):
+            pass
+    say(f"{cand.label}: maximum likelihood")
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            res = fit_ml(cand.spec, panel, check=False)
+    except BayeslongError as err:
+        notes.append(f"maximum likelihood failed: {err}")
+        return None
+    for w in caught:
+        notes.append(f"maximum likelihood: {w.message}")
+    table = pd.DataFrame({"estimate": res.params, "se": res.se})
+    table.index.name = "parameter"
+    out = {"loglik": float(res.loglik), "aic": float(res.aic), "bic": float(res.bic),
+           "n_params": int(res.n_params), "converged": bool(res.converged),
+           "boundary": list(res.boundary)}
+    path.write_text(json.dumps({**out, "table": json.loads(
+        table.reset_index().to_json(orient="records"))}, indent=1))
+    return {**out, "table": table}
+
+
+#: Convergence thresholds (Vehtari, Gelman, Simpson, Carpenter & Buerkner 2021,
+#: doi:10.1214/20-BA1221: R-hat below 1.01 and bulk/tail ESS above 100 per chain).
+RHAT_MAX = 1.01
+ESS_PER_CHAIN_MIN = 100
+
+
+def convergence_problems(bayes) -> list[str]:
+    """Name each parameter whose R-hat, bulk or tail ESS, or divergences fail the thresholds.
+
+    Uses ArviZ on ``bayes.idata`` (the thresholds are :data:`RHAT_MAX` and
+    :data:`ESS_PER_CHAIN_MIN` per chain; any divergent transition is reported).
+    """
+    import arviz as az
+    import numpy as np
+
+    idata = bayes.idata
+    post = idata.posterior
+    chains = int(post.sizes.get("chain", 1))
+    draws = int(post.sizes.get("draw", 0))
+    out = []
+    try:
+        table = az.summary(idata, kind="diagnostics")
+    except Exception as err:  # ArviZ cannot summarise: say so rather than hide it
+        return [f"diagnostics could not be computed ({err})"]
+    ess_min = ESS_PER_CHAIN_MIN * chains
+    if chains > 1:
+        bad = table.index[table["r_hat"] > RHAT_MAX].tolist()
+        if bad:
+            worst = table["r_hat"].max()
+            out.append(f"R-hat above {RHAT_MAX} for {', '.join(map(str, bad))} "
+                       f"(largest {worst:.3f})")
+    for column, what in (("ess_bulk", "bulk ESS"), ("ess_tail", "tail ESS")):
+        if ess_min <= chains * draws:  # otherwise the threshold cannot be met by design
+            bad = table.index[table[column] < ess_min].tolist()
+            if bad:
+                out.append(f"{what} below {ess_min} ({ESS_PER_CHAIN_MIN} per chain) for "
+                           f"{', '.join(map(str, bad))} (smallest {table[column].min():.0f})")
+    stats = getattr(idata, "sample_stats", None)
+    if stats is not None and "diverging" in stats:
+        n_div = int(np.asarray(stats["diverging"]).sum())
+        if n_div:
+            out.append(f"{n_div} divergent transition{'s' if n_div != 1 else ''} after tuning "
+                       "(the posterior geometry is hard for the sampler; results may be biased)")
+    return out
+
+
+def _ml_comparison(models) -> Step:
+    """Rank ML fits by AIC (BIC beside it): the comparison available without posteriors."""
+    import pandas as pd
+
+    rows = {m.label: {"loglik": m.ml["loglik"], "n_params": m.ml["n_params"],
+                      "aic": m.ml["aic"], "bic": m.ml["bic"]}
+            for m in models if m.ml is not None}
+    if len(rows) < 2:
+        return Step.skipped("fewer than two candidates have a maximum-likelihood fit")
+    table = pd.DataFrame.from_dict(rows, orient="index").sort_values("aic")
+    table["d_aic"] = table["aic"] - table["aic"].min()
+    table["d_bic"] = table["bic"] - table["bic"].min()
+    table.index.name = "model"
+    return Step(ran=True, value=table)
+
+
+def _timed(step: Callable[[], Any], what: str, say) -> Step:
+    """Run one optional step; a failure becomes a 'not run' record with the reason."""
+    t0 = time.perf_counter()
+    try:
+        value = step()
+    except BayeslongError as err:
+        say(f"{what}: not run: {err}")
+        return Step(ran=False, reason=str(err), seconds=time.perf_counter() - t0)
+    except Exception as err:  # an unexpected failure in one step must not lose the others
+        say(f"{what}: FAILED ({type(err).__name__}: {err})")
+        return Step(ran=False, reason=f"failed with {type(err).__name__}: {err}",
+                    seconds=time.perf_counter() - t0)
+    return Step(ran=True, value=value, seconds=time.perf_counter() - t0)
+
+
+def _compare(study, panel, models, method, say) -> tuple[Step, Step]:
+    """Compare the candidates by LOO/WAIC (and leave-future-out when asked)."""
+    want_future = study.comparison["future"]
+    if method != "bayes":
+        ml = _ml_comparison(models)
+        reason = ("leave-future-out needs posterior fits, which this run "
+                  + ("did not make (sampling.method = \"ml\")" if method == "ml"
+                     else "could not make (no Bayesian fit module)"))
+        return ml, (Step.skipped(reason) if want_future else Step.skipped("not requested"))
+    fits = {m.label: m.fit for m in models if m.fit is not None}
+    if len(fits) < 2:
+        skipped = Step.skipped(f"needs two or more fitted candidates; {len(fits)} fitted")
+        return skipped, (skipped if want_future else Step.skipped("not requested"))
+    module, absent = optional_module("compare")
+    if module is None:
+        skipped = Step.skipped(absent)
+        return skipped, (skipped if want_future else Step.skipped("not requested"))
+    say("comparing candidates by PSIS-LOO and WAIC")
+    comparison = _timed(lambda: module.compare(fits), "comparison", say)
+    future = Step.skipped("not requested (set `comparison.future = true`)")
+    if want_future:
+        say("comparing candidates by leave-future-out (refits on all but the last wave)")
+        future = _timed(lambda: module.compare(fits, future=True), "leave-future-out", say)
+    return comparison, future
+
+
+def _check(study, panel, m: ModelResult, say) -> ModelResult:
+    """Posterior predictive checks of one fitted candidate."""
+    if not study.checks["ppc"]:
+        return dataclasses.replace(m, check=Step.skipped("not requested (`checks.ppc = false`)"))
+    if m.fit is None:
+        return dataclasses.replace(m, check=Step.skipped("no posterior fit"))
+    module, absent = optional_module("check")
+    if module is None:
+        return dataclasses.replace(m, check=Step.skipped(absent))
+    say(f"{m.label}: posterior predictive checks")
+    step = _timed(lambda: module.check(m.fit, draws=study.checks["ppc_draws"],
+                                       seed=study.sampling["seed"]), f"{m.label}: checks", say)
+    return dataclasses.replace(m, check=step)
+
+
+def _sensitivity(study, panel, models, method, say) -> Step:
+    """Lag sensitivity along the axes the study turns on."""
+    axes = [k for k, on in study.sensitivity.items() if on]
+    if not axes:
+        return Step.skipped("not requested (turn axes on in [sensitivity])")
+    if method != "bayes":
+        return Step.skipped("lag sensitivity needs posterior fits, which this run did not make")
+    module, absent = optional_module("sensitivity")
+    if module is None:
+        return Step.skipped(absent)
+    fits = {m.label: m.fit for m in models if m.fit is not None}
+    say("lag sensitivity: " + ", ".join(axes))
+    s = study.sampling
+    return _timed(lambda: module.lag_sensitivity(
+        panel, fits=fits, axes=tuple(axes), priors=dict(study.priors),
+        draws=s["draws"], tune=s["tune"], chains=s["chains"], seed=s["seed"]),
+        "lag sensitivity", say)
