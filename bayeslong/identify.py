@@ -22,6 +22,7 @@ import numpy as np
 import pytensor
 import pytensor.tensor as pt
 
+from bayeslong._threads import single_thread
 from bayeslong._transform import Unconstrained
 from bayeslong.moments import implied_moments
 from bayeslong.spec import Spec
@@ -84,6 +85,13 @@ def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 
     -------
     Identification
     """
+    from bayeslong.ml import start_values
+
+    with single_thread():
+        return _identify(spec, panel, points=points, seed=seed, tol=tol)
+
+
+def _identify(spec, panel, *, points, seed, tol) -> Identification:
     from bayeslong.ml import start_values
 
     structure = structure_for(spec, panel)

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize
 
+from bayeslong._threads import single_thread
 from bayeslong._transform import Unconstrained
 from bayeslong.errors import BoundaryWarning, IdentificationError
 from bayeslong.likelihood import loglik_function, pattern_arrays
@@ -157,6 +158,11 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
         A variance sits at zero (the optimum is on the boundary; standard errors and the
         usual likelihood-ratio reference distributions do not apply there).
     """
+    with single_thread():
+        return _fit_ml(spec, panel, starts=starts, seed=seed, check=check)
+
+
+def _fit_ml(spec: Spec, panel, *, starts: int, seed: int, check: bool) -> MLResult:
     structure = structure_for(spec, panel)
     if check:
         _check_identified(spec, panel, structure)
@@ -203,7 +209,7 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
             f"model '{spec.name}': the optimum is on the boundary, {', '.join(boundary)} "
             "estimated at zero (or a covariance block is singular). Standard errors for these "
             "are not valid; consider a model without that variance, or more data.",
-            BoundaryWarning, stacklevel=2)
+            BoundaryWarning, stacklevel=4)
     se = _standard_errors(hessian)
     starts_table = pd.DataFrame({"start": range(len(runs)),
                                  "loglik": [-r.fun * n for r in runs],

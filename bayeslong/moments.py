@@ -44,8 +44,26 @@ def model_matrices(structure: Structure, theta) -> dict[str, pt.TensorVariable]:
 def _latent_part(m: dict, n_latent: int):
     # the reduced form of the latents, shared by the outcome and the latent moments:
     # eta = (I - B)^-1 (a + G w + zeta), so E = (I-B)^-1 a + (I-B)^-1 G w, Cov = (I-B)^-1 Psi (I-B)^-T
-    total = pt.linalg.inv(pt.eye(n_latent) - m["B"])  # (I - B)^-1, recursive systems: always exists
+    total = _total_effects(m["B"], n_latent)
     return total @ m["a"], total @ m["G"], total @ m["Psi"] @ total.T
+
+
+def _total_effects(B, n_latent: int):
+    """(I - B)^-1 for a recursive system, as a finite product of matrix products.
+
+    Every model here is recursive (no loops among the latents), so B is nilpotent with
+    B^L = 0 for L latents and (I - B)^-1 = I + B + ... + B^(L-1)
+    = (I + B)(I + B^2)(I + B^4)... with 2^m >= L factors' worth of powers. Only matrix
+    products: cheap to differentiate and free of per-call LAPACK look-ups.
+    """
+    eye = pt.eye(n_latent)
+    total, power = eye + B, B
+    reach = 2
+    while reach < n_latent:
+        power = power @ power
+        total = total @ (eye + power)
+        reach *= 2
+    return total
 
 
 def implied_moments(structure: Structure, theta):

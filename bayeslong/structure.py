@@ -356,11 +356,13 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         else:
             tab.block("Psi", [eta(k, t) for k in range(K)], names)
 
-    return Structure(
+    structure = Structure(
         spec=spec, names=tuple(tab.names), kinds=tuple(tab.kinds), latents=tuple(latents),
         observed=tuple(observed), covariates=tuple(covariates), matrices=tab.m,
         blocks=tuple(tab.blocks.values()), n_waves=T, outcomes=outcomes,
     )
+    _check_recursive(structure)
+    return structure
 
 
 def structure_key(spec: Spec, *, outcomes, n_waves, time_varying=(), time_invariant=()) -> str:
@@ -386,3 +388,15 @@ def structure_for(spec: Spec, panel) -> Structure:
     if key not in _CACHE:
         _CACHE[key] = build_structure(spec, **design)
     return _CACHE[key]
+
+
+def _check_recursive(structure: Structure) -> None:
+    """The engine assumes no loops among the latents (B nilpotent); a user file could break it."""
+    pattern = (structure.matrices["B"].index >= 0) | (structure.matrices["B"].fixed != 0)
+    reach = pattern.astype(float)
+    for _ in range(len(structure.latents)):
+        reach = reach @ pattern
+    if reach.any():
+        raise SpecError(
+            f"model '{structure.spec.name}' has a loop among its latent variables; the engine "
+            "needs a recursive model (every lag points to an earlier wave)")
