@@ -29,6 +29,7 @@ from bayeslong.spec import Spec
 from bayeslong.structure import Structure, structure_for
 
 _JACOBIAN: dict = {}
+_RESULTS: dict = {}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -87,8 +88,12 @@ def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 
     """
     from bayeslong.ml import start_values
 
-    with single_thread():
-        return _identify(spec, panel, points=points, seed=seed, tol=tol)
+    structure = structure_for(spec, panel)
+    key = (structure, points, seed, tol)
+    if key not in _RESULTS:  # the answer depends on the design only, so it is kept
+        with single_thread():
+            _RESULTS[key] = _identify(spec, panel, points=points, seed=seed, tol=tol)
+    return _RESULTS[key]
 
 
 def _identify(spec, panel, *, points, seed, tol) -> Identification:

@@ -73,7 +73,8 @@ class Spec:
         Growth factors in order, from ``level``, ``slope``, ``curve``.
     scores : {"linear", "quadratic", "basis", "constant"}
         Time scores of the slope (and curve): ``linear`` 0..T-1, ``quadratic`` adds
-        (t-1)^2, ``basis`` fixes the first two at 0, 1 and frees the rest (latent basis),
+        (t-1)^2, ``basis`` fixes the scores of the first two waves whose equation holds
+        the growth factors at their linear values and frees the rest (latent basis),
         ``constant`` gives the slope loading 1 at every change (latent change score).
     lag_name : str
         Parameter name of the lag (``lag``; ``proportional_change`` for dual change).

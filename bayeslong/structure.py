@@ -207,7 +207,11 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         if spec.scores == "constant":
             return 1.0 if t >= 2 else 0.0
         if spec.scores == "basis":
-            if t <= 2:
+            # the scores of the first two waves whose equation holds the growth factors are
+            # fixed at their linear values (they set the slope's origin and unit); the rest
+            # are free. With a predetermined first wave those are waves 2 and 3, since
+            # anchoring on wave 1, which does not load, would leave the slope's unit free.
+            if t < first_eq + 2:
                 return float(t - 1)
             return _label("slope_score", pk(k), t)
         return float(t - 1) ** f  # linear: t-1; quadratic adds (t-1)^2
