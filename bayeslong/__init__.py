@@ -17,11 +17,29 @@ from bayeslong.data import Panel, Patterns
 from bayeslong.spec import Spec
 from bayeslong.ml import MLResult
 from bayeslong.identify import Identification
+from bayeslong.fit import Fit
+from bayeslong.priors import Prior, PriorSet
+from bayeslong.study import Study, StudyResults
+from bayeslong.compare import ForecastScore
+from bayeslong.simulate import Simulation
+from bayeslong.batch import Task, TaskResult, BatchResult
+from bayeslong.sensitivity import LagSensitivity
 
 # --- functions -------------------------------------------------------------------------
 from bayeslong.spec import catalog, model, load_model
 from bayeslong.ml import fit_ml
 from bayeslong.identify import identify
+from bayeslong.fit import fit, load_fit
+from bayeslong.build import build_model
+from bayeslong.priors import prior_predictive
+from bayeslong.study import load_study, run_study
+from bayeslong.report import write_report
+from bayeslong.compare import compare, explain_comparison, forecast_score, pareto_k
+from bayeslong.check import ppc, replicate, trajectories
+from bayeslong.plots import plot_compare, plot_ppc, plot_trajectories
+from bayeslong.simulate import simulate
+from bayeslong.batch import run_many
+from bayeslong.sensitivity import lag_sensitivity, plan, power_scaling
 
 # --- errors ----------------------------------------------------------------------------
 from bayeslong.errors import (
@@ -42,12 +60,45 @@ __all__ = [
     "Spec",
     "MLResult",
     "Identification",
+    "Fit",
+    "Prior",
+    "PriorSet",
+    "Study",
+    "StudyResults",
+    "ForecastScore",
+    "Simulation",
+    "Task",
+    "TaskResult",
+    "BatchResult",
+    "LagSensitivity",
     # functions
     "catalog",
     "model",
     "load_model",
     "fit_ml",
     "identify",
+    "fit",
+    "load_fit",
+    "build_model",
+    "prior_predictive",
+    "load_study",
+    "run_study",
+    "write_report",
+    "compare",
+    "explain_comparison",
+    "forecast_score",
+    "pareto_k",
+    "ppc",
+    "replicate",
+    "trajectories",
+    "plot_compare",
+    "plot_ppc",
+    "plot_trajectories",
+    "simulate",
+    "run_many",
+    "lag_sensitivity",
+    "plan",
+    "power_scaling",
     # errors
     "BayeslongError",
     "BoundaryWarning",

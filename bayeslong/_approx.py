@@ -4,8 +4,8 @@ Used by the tests of :mod:`bayeslong.compare` and :mod:`bayeslong.check` to get 
 :class:`bayeslong.fit.Fit`-shaped object in seconds: draws theta ~ N(theta_ML, I(theta_ML)^-1)
 (the Laplace approximation under a flat prior; Gelman et al. 2013, BDA3 section 4.1),
 rejecting draws whose covariance blocks are not positive definite, and stores one
-log-likelihood term per unit computed with the engine's own :func:`pattern_loglik` on
-:func:`unit_cross`. It is not a sampler and carries no priors; use :func:`bayeslong.fit`.
+log-likelihood term per unit (the normal density of the unit's observed entries under the
+implied moments). It is not a sampler and carries no priors; use :func:`bayeslong.fit`.
 """
 
 from __future__ import annotations
@@ -14,36 +14,35 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-import pytensor
-import pytensor.tensor as pt
 
 from bayeslong._dims import UNIT
-from bayeslong.likelihood import loglik_function, pattern_arrays, pattern_loglik, unit_cross
+from bayeslong.check import moment_draws, mvn_logpdf, unit_means
+from bayeslong.likelihood import loglik_function, pattern_arrays
 from bayeslong.ml import _hessian, fit_ml
-from bayeslong.moments import implied_moments
 from bayeslong.spec import Spec
 from bayeslong.structure import Structure, structure_for
 
-_UNIT_LOGLIK: dict = {}
-
-
-def unit_loglik_function(structure: Structure):
-    """Compiled ``f(theta, counts, cross, masks) -> (N,)`` per-unit log-likelihood terms."""
-    if structure not in _UNIT_LOGLIK:
-        theta = pt.dvector("theta")
-        counts, cross, masks = pt.dvector("counts"), pt.dtensor3("cross"), pt.dmatrix("masks")
-        c, D, Sigma = implied_moments(structure, theta)
-        out = pattern_loglik(c, D, Sigma, counts, cross, masks)
-        _UNIT_LOGLIK[structure] = pytensor.function([theta, counts, cross, masks], out,
-                                                    mode="FAST_COMPILE", on_unused_input="ignore")
-    return _UNIT_LOGLIK[structure]
-
 
 def unit_loglik(structure: Structure, panel, thetas: np.ndarray) -> np.ndarray:
-    """Per-unit log-likelihood at each row of ``thetas``, shape (S, N)."""
-    f = unit_loglik_function(structure)
-    data = unit_cross(panel.outcome_matrix(), panel.covariate_matrix())
-    return np.stack([f(np.asarray(t, dtype=float), *data) for t in np.atleast_2d(thetas)])
+    """Per-unit log-likelihood at each row of ``thetas``, shape (S, N).
+
+    Each unit's observed entries are scored by the normal density of the implied moments,
+    vectorised over draws and grouped by missing-data pattern (the tests check it against
+    :func:`bayeslong.likelihood.pattern_loglik` on :func:`unit_cross`).
+    """
+    mom = moment_draws(structure, np.atleast_2d(thetas))
+    ys = panel.outcome_matrix()
+    mean = unit_means(mom, panel.covariate_matrix())
+    seen = ~np.isnan(ys)
+    out = np.empty((len(mean), len(ys)))
+    groups: dict = {}
+    for i in range(len(ys)):
+        groups.setdefault(seen[i].tobytes(), []).append(i)
+    for idx in groups.values():
+        obs = seen[idx[0]]
+        out[:, idx] = mvn_logpdf(ys[idx][:, obs][None], mean[:, idx][:, :, obs],
+                                 mom["Sigma"][:, None][:, :, obs][:, :, :, obs])
+    return out
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -71,7 +70,7 @@ def approximate_fit(spec: Spec, panel, *, draws: int = 500, chains: int = 2, see
     import arviz as az
 
     structure = structure_for(spec, panel)
-    ml = fit_ml(spec, panel, starts=2, seed=seed)
+    ml = fit_ml(spec, panel, starts=2, seed=seed, check=False)  # speed: tests fit identified models
     mode = ml.params.to_numpy()
     f = loglik_function(structure)
     H = _hessian(f, mode, pattern_arrays(panel.patterns()))

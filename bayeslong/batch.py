@@ -26,6 +26,7 @@ import inspect
 import os
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -58,7 +59,8 @@ class Task:
     kind : str, default "fit"
         ``"fit"`` (:func:`bayeslong.fit`), ``"fit_ml"`` (:func:`bayeslong.fit_ml`) or a
         ``"package.module:function"`` path to a function called as
-        ``function(spec, panel, **kwargs)``; if it returns a dict, that dict is the summary.
+        ``function(spec, panel, **kwargs)``; if it returns a dict, that dict is the
+        result's ``info``, or ``{"summary": DataFrame, "info": dict}`` gives both.
     kwargs : dict
         Keyword arguments of the fitting function (``draws``, ``priors`` ...).
     seed : int, optional
@@ -105,7 +107,10 @@ class TaskResult:
         Maximum likelihood: estimate, se.
     info : dict
         Fit-level numbers: divergences, max R-hat, min bulk ESS (Bayes); loglik, converged
-        (maximum likelihood).
+        (maximum likelihood); ``warnings``, the number of warnings the task raised.
+    warnings : tuple of str
+        ``"WarningClass: message"`` of each distinct warning raised by the task (collected
+        here, since a worker process's warnings would not reach the caller).
     value : object or None
         The whole fit object when ``keep=True``.
     """
@@ -116,6 +121,7 @@ class TaskResult:
     seconds: float = float("nan")
     summary: pd.DataFrame = field(default_factory=pd.DataFrame)
     info: dict = field(default_factory=dict)
+    warnings: tuple = ()
     value: object = None
 
     @property
@@ -231,8 +237,27 @@ def _summarise(kind: str, value, params):
     if kind == "fit" or hasattr(value, "idata"):
         return summarise_draws(value.idata, params)
     if isinstance(value, dict):
+        if isinstance(value.get("summary"), pd.DataFrame):  # {"summary": table, "info": {...}}
+            return value["summary"], dict(value.get("info", {}))
         return pd.DataFrame(), dict(value)
     return pd.DataFrame(), {}
+
+
+def fit_defaults(fn, kwargs: dict) -> dict:
+    """Fill in ``cores=1`` inside a worker process and ``progressbar=False`` (in place).
+
+    In a pool worker the pool is the parallelism: chains run one after another there
+    instead of starting processes of their own. In the calling process (a serial run) the
+    fit keeps its own default.
+    """
+    import multiprocessing as mp
+
+    accepted = inspect.signature(fn).parameters
+    if "cores" in accepted and mp.parent_process() is not None:
+        kwargs.setdefault("cores", 1)
+    if "progressbar" in accepted:
+        kwargs.setdefault("progressbar", False)
+    return kwargs
 
 
 def run_task(task: Task, keep: bool = False) -> TaskResult:
@@ -244,33 +269,55 @@ def run_task(task: Task, keep: bool = False) -> TaskResult:
         limiter = threadpool_limits(limits=1)
     except ImportError:  # pragma: no cover - threadpoolctl is a dependency
         limiter = None
+    caught: list = []
     try:
-        panel = task.panel.panel() if hasattr(task.panel, "panel") and callable(task.panel.panel) \
-            else task.panel
-        fn = _function(task.kind)
-        kwargs = dict(task.kwargs)
-        if task.seed is not None:
-            kwargs.setdefault("seed", task.seed)
-        if task.kind == "fit":
-            # chains inside a pool worker run in this process: the pool is the parallelism
-            accepted = inspect.signature(fn).parameters
-            if "cores" in accepted:
-                kwargs.setdefault("cores", 1)
-            if "progressbar" in accepted:
-                kwargs.setdefault("progressbar", False)
-        value = fn(task.spec, panel, **kwargs)
-        summary, info = _summarise(task.kind, value, task.params)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            panel = task.panel.panel() if hasattr(task.panel, "panel") and \
+                callable(task.panel.panel) else task.panel
+            fn = _function(task.kind)
+            kwargs = dict(task.kwargs)
+            if task.seed is not None:
+                kwargs.setdefault("seed", task.seed)
+            if task.kind == "fit":
+                fit_defaults(fn, kwargs)
+            value = fn(task.spec, panel, **kwargs)
+            summary, info = _summarise(task.kind, value, task.params)
+        seen = _warning_texts(caught)
         return TaskResult(name=task.name, status="ok", seconds=time.perf_counter() - start,
-                          summary=summary, info=info, value=value if keep else None)
+                          summary=summary, info={**info, "warnings": len(seen)}, warnings=seen,
+                          value=value if keep else None)
     except Exception as err:  # noqa: BLE001 - one failed task must not lose the others
         return TaskResult(name=task.name, status="error", error=f"{type(err).__name__}: {err}",
-                          seconds=time.perf_counter() - start)
+                          seconds=time.perf_counter() - start, warnings=_warning_texts(caught))
     finally:
         if limiter is not None:
             limiter.restore_original_limits()
 
 
+def _warning_texts(caught) -> tuple[str, ...]:
+    return tuple(dict.fromkeys(f"{w.category.__name__}: {w.message}" for w in caught
+                               if not issubclass(w.category, (DeprecationWarning,
+                                                              PendingDeprecationWarning))))
+
+
 # --- the caller's side -------------------------------------------------------------------
+class SerialExecutor(cf.Executor):
+    """Run each submitted call at once in this process (no pool, no pickling).
+
+    Useful when the fits should reuse this process's compiled models, e.g. a prior grid
+    on one dataset: ``run_many(tasks, SerialExecutor())``.
+    """
+
+    def submit(self, fn, /, *args, **kwargs) -> cf.Future:
+        future: cf.Future = cf.Future()
+        try:
+            future.set_result(fn(*args, **kwargs))
+        except BaseException as err:  # noqa: BLE001 - handed to the caller through the future
+            future.set_exception(err)
+        return future
+
+
 def default_workers() -> int:
     """CPU cores this process may use."""
     try:
@@ -300,8 +347,8 @@ def run_many(tasks, executor: cf.Executor | None = None, *, progress: bool = Tru
     executor : concurrent.futures.Executor, optional
         Where to run. Default: a local process pool with one worker per core, each
         limited to one BLAS/OpenMP thread, shut down at the end. A Dask cluster:
-        ``client.get_executor()`` (the caller owns and closes it). A
-        ``ThreadPoolExecutor`` runs in this process.
+        ``client.get_executor()`` (the caller owns and closes it).
+        :class:`SerialExecutor` runs the tasks one after another in this process.
     progress : bool, default True
         Print one line per finished task to stderr (name, status, seconds).
     keep : bool, default False
@@ -321,9 +368,14 @@ def run_many(tasks, executor: cf.Executor | None = None, *, progress: bool = Tru
 
     Examples
     --------
-    >>> tasks = [Task(name=f"seed{s}", spec=model("ar"), panel=panel, kind="fit_ml", seed=s)
-    ...          for s in range(4)]                                      # doctest: +SKIP
-    >>> run_many(tasks).table                                            # doctest: +SKIP
+    >>> import bayeslong as bl
+    >>> sims = [bl.Simulation(spec=bl.model("ar"), n_units=100, n_waves=4, seed=s,
+    ...                       params={"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0,
+    ...                               "initial_var": 1.0, "resid_var": 1.0}) for s in range(4)]
+    >>> tasks = [bl.Task(name=f"rep{s}", spec=bl.model("ar"), panel=sim, kind="fit_ml")
+    ...          for s, sim in enumerate(sims)]
+    >>> if __name__ == "__main__":                                       # doctest: +SKIP
+    ...     print(bl.run_many(tasks).summaries())
     """
     tasks = list(tasks)
     for t in tasks:
@@ -341,19 +393,26 @@ def run_many(tasks, executor: cf.Executor | None = None, *, progress: bool = Tru
     if own:
         executor = _default_executor(len(tasks))
     results: dict[str, TaskResult] = {}
+
+    def collect(name: str, fut: cf.Future) -> None:
+        try:
+            res = fut.result()
+        except Exception as err:  # noqa: BLE001 - a worker that died, a pickling failure
+            res = TaskResult(name=name, status="error", error=f"{type(err).__name__}: {err}")
+        results[name] = res
+        if progress:
+            what = "ok" if res.ok else res.error.splitlines()[0][:120]
+            print(f"[{len(results)}/{len(tasks)}] {name}: {what} ({res.seconds:.1f} s)",
+                  file=sys.stderr, flush=True)
+
     try:
-        futures = {executor.submit(run_task, t, keep): t.name for t in tasks}
-        for done, fut in enumerate(cf.as_completed(futures), start=1):
-            name = futures[fut]
-            try:
-                res = fut.result()
-            except Exception as err:  # noqa: BLE001 - a worker that died, a pickling failure
-                res = TaskResult(name=name, status="error", error=f"{type(err).__name__}: {err}")
-            results[name] = res
-            if progress:
-                what = "ok" if res.ok else res.error.splitlines()[0][:120]
-                print(f"[{done}/{len(tasks)}] {name}: {what} ({res.seconds:.1f} s)",
-                      file=sys.stderr, flush=True)
+        if isinstance(executor, SerialExecutor):  # runs on submit: report each as it ends
+            for t in tasks:
+                collect(t.name, executor.submit(run_task, t, keep))
+        else:
+            futures = {executor.submit(run_task, t, keep): t.name for t in tasks}
+            for fut in cf.as_completed(futures):
+                collect(futures[fut], fut)
     finally:
         if own:
             executor.shutdown(wait=True, cancel_futures=True)

@@ -39,7 +39,8 @@ def model_inputs(panel, prior_set: PriorSet) -> dict[str, np.ndarray]:
 def lkj_name(prior_set: PriorSet, b: int) -> str:
     """Name of the LKJ variable of covariance block ``b``."""
     diag = np.diag(prior_set.structure.blocks[b].index)
-    return "lkj(" + ",".join(prior_set.structure.names[int(i)] for i in diag) + ")"
+    # no commas: samplers split dimension labels derived from variable names on commas
+    return "lkj__" + "__".join(prior_set.structure.names[int(i)] for i in diag)
 
 
 def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
@@ -57,7 +58,8 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
     -------
     pymc.Model
         Free variables: one per ``value`` prior (named by the parameter), one ``<name>__sd``
-        per variance and one ``lkj(...)`` per covariance block of size > 1. Deterministics
+        per variance outside covariance blocks and one ``lkj(...)`` (the packed Cholesky
+        factor of the covariance, with the members' SD priors) per block of size > 1. Deterministics
         carry the remaining parameter names, so every name of ``structure.names`` is in the
         model. Data: ``counts``, ``cross``, ``masks``, ``prior_hyper``.
 
@@ -80,9 +82,10 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
     with pm.Model(coords={PARAMETER: list(structure.names)}) as model:
         data = {name: pm.Data(name, value) for name, value in inputs.items()}
         hyper = data["prior_hyper"]
-        values = {}
-        for p in prior_set.priors:
-            if p.target == "correlation":
+        values, corr = {}, {}
+        in_lkj = {int(i) for b in prior_set.blocks for i in np.diag(structure.blocks[b].index)}
+        for i, p in enumerate(prior_set.priors):
+            if p.target == "correlation" or i in in_lkj:
                 continue
             if p.factory is not None:
                 rv = p.factory(p.rv_name)
@@ -96,29 +99,35 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
                 cls, kwargs = family_dist(p.family, [hyper[j] for j in range(sl.start, sl.stop)])
                 rv = cls(p.rv_name, **kwargs)
             values[p.rv_name] = rv
-        corr = {}
         for b in prior_set.blocks:
-            q = len(structure.blocks[b].index)
+            diag = [int(i) for i in np.diag(structure.blocks[b].index)]
+            members = [prior_set.priors[i] for i in diag]
+            q = len(members)
+            n_args = len(members[0].args)
+            # the members' SD priors share a family (resolve_priors checks): one vector prior
+            args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
+                    for j in range(n_args)]
+            cls, kwargs = family_dist(members[0].family, args)
             first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
             eta = hyper[slices[first.parameter].start]
-            # The LKJ factor is drawn with eta = 1 (uniform over correlation matrices) and
-            # the density det(C)^(eta - 1) of LKJ(eta) is added as a potential: PyMC's LKJ
-            # needs a constant eta, and this keeps eta a model input (its normalising
-            # constant depends on eta only). The scales inside the factor are nuisance
-            # (unit half-normal): the block's SDs carry their own named priors, and
-            # rescaling the rows of the factor to unit length leaves the correlation matrix.
+            # PyMC's LKJ needs a constant eta: the factor is drawn with eta = 1 (uniform over
+            # correlation matrices) and LKJ(eta)'s density det(C)^(eta - 1) is added as a
+            # potential, which keeps eta a model input (the normalising constant depends on
+            # eta only). The SDs are the row norms of the Cholesky factor of the covariance.
             packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
-                                       sd_dist=pm.HalfNormal.dist(1.0, shape=q),
+                                       sd_dist=cls.dist(**kwargs, shape=q),
                                        compute_corr=False, store_in_trace=False)
             L = pm.expand_packed_triangular(q, packed, lower=True)
-            norms = pt.sqrt(pt.sum(L**2, axis=1))
-            Lc = L / norms[:, None]
+            sds = pt.sqrt(pt.sum(L**2, axis=1))
+            for r, m in enumerate(members):
+                values[m.rv_name] = sds[r]
+            Lc = L / sds[:, None]
             log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(Lc)))
             pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
             corr[b] = Lc @ Lc.T
         theta = assemble_theta(prior_set, values, corr, pt.stack)
         for i, p in enumerate(prior_set.priors):
-            if p.rv_name != p.parameter:
+            if p.target != "value":  # variances and covariances are not themselves RVs
                 pm.Deterministic(p.parameter, theta[i])
         c, D, Sigma = implied_moments(structure, theta)
         loglik = pattern_loglik(c, D, Sigma, data["counts"], data["cross"], data["masks"])

@@ -124,6 +124,16 @@ def conditional_normal(mean, cov, given, values):
     return mean_a, 0.5 * (cov_a + np.swapaxes(cov_a, -1, -2))
 
 
+def mvn_logpdf(x, mean, cov) -> np.ndarray:
+    """Log density of N(mean, cov) at x, broadcasting over leading axes (Cholesky form)."""
+    x, mean, cov = (np.asarray(a, dtype=float) for a in (x, mean, cov))
+    chol = np.linalg.cholesky(cov)
+    r = x - mean
+    z = np.linalg.solve(chol, r[..., None])[..., 0]
+    logdet = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    return -0.5 * (r.shape[-1] * np.log(2.0 * np.pi) + logdet + np.sum(z**2, axis=-1))
+
+
 # --------------------------------------------------------------------------------------------
 # access to a fit
 # --------------------------------------------------------------------------------------------
@@ -305,6 +315,7 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
                              "rep_q75": q[3], "rep_q95": q[4], "p_value": p,
                              "flag": bool(p < 0.05 or p > 0.95)})
     table = pd.DataFrame(rows)
+    table["wave"] = pd.Series([r["wave"] for r in rows], dtype=object)  # keep the data's labels
     table.attrs.update({"model": fit.spec.name, "draws": int(min(draws, len(fit.theta_draws())))})
     return table
 

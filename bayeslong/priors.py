@@ -103,7 +103,7 @@ class PriorSet:
 
     structure: Structure
     priors: tuple[Prior, ...]
-    blocks: tuple[tuple[int, ...], ...] = field(default=())  # LKJ blocks (q > 1): block indices
+    blocks: tuple[int, ...] = field(default=())  # indices of covariance blocks with q > 1 (LKJ)
 
     def __getitem__(self, name: str) -> Prior:
         for p in self.priors:
@@ -400,6 +400,16 @@ def resolve_priors(structure: Structure, panel, priors: dict | None = None) -> P
                  target="correlation", source="user", block=p.block)
            if p.target == "correlation" and p.block in etas else p for p in out]
     lkj_blocks = tuple(b for b, blk in enumerate(structure.blocks) if len(blk.index) > 1)
+    for b in lkj_blocks:
+        members = [out[int(i)] for i in np.diag(structure.blocks[b].index)]
+        families = {m.family for m in members}
+        if len(families) > 1 or "callable" in families:
+            listed = ", ".join(f"{m.parameter}: {m.family}" for m in members)
+            raise SpecError(
+                "the variances of one covariance block take their SD priors from one family "
+                f"(they form the scales of an LKJ covariance prior); got {listed}. Give "
+                f"{', '.join(m.parameter for m in members)} the same family, e.g. "
+                + ", ".join(f"{m.parameter!r}: ('halfnormal', <sigma>)" for m in members))
     return PriorSet(structure=structure, priors=tuple(out), blocks=lkj_blocks)
 
 
@@ -472,22 +482,26 @@ def prior_draws(prior_set: PriorSet, *, draws: int, seed: int = 0) -> np.ndarray
     import pymc as pm
 
     rng = np.random.default_rng(seed)
-    values, corr = {}, {}
+    names, dists = [], []
     for p in prior_set.priors:
         if p.target == "correlation":
             continue
         if p.factory is not None:
             with pm.Model():
-                rv = p.factory(p.rv_name)
-            values[p.rv_name] = np.asarray(pm.draw(rv, draws=draws, random_seed=rng), dtype=float)
+                dists.append(p.factory(p.rv_name))
         else:
             cls, kwargs = family_dist(p.family, p.args)
-            values[p.rv_name] = np.asarray(pm.draw(cls.dist(**kwargs), draws=draws,
-                                                   random_seed=rng), dtype=float)
+            dists.append(cls.dist(**kwargs))
+        names.append(p.rv_name)
     for b in prior_set.blocks:
         q = len(prior_set.structure.blocks[b].index)
-        corr[b] = np.asarray(pm.draw(pm.LKJCorr.dist(n=q, eta=prior_set.lkj_eta(b), return_matrix=True),
-                                     draws=draws, random_seed=rng))
+        dists.append(pm.LKJCorr.dist(n=q, eta=prior_set.lkj_eta(b), return_matrix=True))
+        names.append(b)
+    # one compiled draw function for all priors (a compile per prior costs seconds each)
+    out = pm.draw(dists, draws=draws, random_seed=rng)
+    drawn = dict(zip(names, (np.asarray(o, dtype=float) for o in out)))
+    values = {k: v for k, v in drawn.items() if isinstance(k, str)}
+    corr = {k: v for k, v in drawn.items() if not isinstance(k, str)}
     return assemble_theta(prior_set, values, corr, np.stack)
 
 

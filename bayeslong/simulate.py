@@ -252,9 +252,9 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
 
     Examples
     --------
-    >>> spec = model("ar")
-    >>> df = simulate(spec, {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0,
-    ...                      "initial_var": 1.0, "resid_var": 1.0}, 50, 4, seed=1)
+    >>> import bayeslong as bl
+    >>> df = bl.simulate(bl.model("ar"), {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0,
+    ...                                   "initial_var": 1.0, "resid_var": 1.0}, 50, 4, seed=1)
     >>> df.shape
     (200, 3)
     """

@@ -74,6 +74,9 @@ Top level
 
 ``ppc`` (true/false, default true), ``ppc_draws`` (whole number, default 200)
     Posterior predictive checks and the number of posterior draws they use.
+``ml`` (true/false, default false)
+    Also fit each candidate by maximum likelihood and show the estimates beside the
+    posterior (always done when ``sampling.method = "ml"``).
 
 ``[comparison]``
 
@@ -171,7 +174,7 @@ _DATA = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_inv
 _MODEL = ("model", "label", "options")
 _SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
              "sampler": "auto"}
-_CHECKS = {"ppc": True, "ppc_draws": 200}
+_CHECKS = {"ppc": True, "ppc_draws": 200, "ml": False}
 _COMPARISON = {"future": False}
 _SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
                 "power_scaling": False}
@@ -394,7 +397,7 @@ class Study:
         Parameters
         ----------
         record : list, optional
-            Intake warnings (as text) are appended here as well as shown.
+            Intake warnings (as text) are appended here instead of being issued.
         """
         from bayeslong.data import Panel
 
@@ -417,7 +420,8 @@ class Study:
         for w in caught:
             if record is not None:
                 record.append(str(w.message))
-            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+            else:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         return panel
 
     # ---------------------------------------------------------------- identity of fits
@@ -510,7 +514,7 @@ def load_study(path) -> Study:
     --------
     >>> study = load_study("examples/shift_sleep.toml")  # doctest: +SKIP
     >>> [c.label for c in study.models]  # doctest: +SKIP
-    ['alt', 'alt, first wave endogenous', 'linear-growth', 'ar']
+    ['alt (growth + lag)', 'growth only', 'lag only']
     """
     path = Path(path)
     if not path.is_file():
@@ -766,7 +770,8 @@ class StudyResults:
         ``"bayes"``, ``"ml"`` (asked for), or ``"ml-fallback"`` (the Bayesian fit module
         is absent).
     fitted, reused : int
-        Bayesian fits sampled in this run and loaded from saved files.
+        The run's fits (Bayesian; maximum likelihood when that is the method) made in this
+        run, and loaded from saved files.
     versions : dict
     seconds : float
     started : str
@@ -900,7 +905,7 @@ def _priors_for(study: Study, spec, panel) -> dict:
 
 
 def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None] | None = _stderr,
-              quiet_sampler: bool = False) -> StudyResults:
+              quiet_sampler: bool = False, strict: bool = False) -> StudyResults:
     """Carry out a study: intake, identification, fits, comparison, checks, sensitivity.
 
     Parameters
@@ -914,6 +919,9 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
         Receives one line of text per step (default: printed on stderr); ``None`` is silent.
     quiet_sampler : bool
         Hide the sampler's progress bar.
+    strict : bool
+        Let unexpected (internal) exceptions of a step propagate instead of recording them
+        as "failed" in the results (for debugging).
 
     Returns
     -------
@@ -948,6 +956,12 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     fit_module = None
     if method == "bayes":
         fit_module, absent = optional_module("fit")
+        samplers = getattr(fit_module, "SAMPLERS", None)
+        if samplers and study.sampling["sampler"] not in samplers:
+            raise SpecError(
+                f"study file {study.source.name}: `sampling.sampler` must be one of "
+                f"{', '.join(repr(x) for x in samplers)}; got {study.sampling['sampler']!r}"
+                f"{_nearest(study.sampling['sampler'], samplers)}")
         if fit_module is None:
             method = "ml-fallback"
             say("NOTE: " + absent + "; falling back to MAXIMUM LIKELIHOOD ONLY "
@@ -958,16 +972,17 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     for i, cand in enumerate(study.models, start=1):
         result, did_fit = _run_candidate(study, panel, cand, fit_module, fits_dir, fit=fit,
                                          say=lambda m, i=i: say(f"[{i}/{len(study.models)}] {m}"),
-                                         quiet_sampler=quiet_sampler)
+                                         quiet_sampler=quiet_sampler, strict=strict)
         fitted += did_fit == "fitted"
         reused += did_fit == "reused"
         models.append(result)
     if reused:
-        say(f"reused {reused} saved fit{'s' if reused != 1 else ''}")
+        say(f"reused {reused} saved fit{'s' if reused != 1 else ''} (unchanged study, data "
+            "and model)")
 
-    comparison, future = _compare(study, panel, models, method, say)
-    models = [_check(study, panel, m, say) for m in models]
-    sensitivity = _sensitivity(study, panel, models, method, say)
+    comparison, future = _compare(study, panel, models, method, say, strict)
+    models = [_check(study, panel, m, say, strict) for m in models]
+    sensitivity = _sensitivity(study, panel, models, method, say, strict)
     return StudyResults(
         study=study, panel=panel, intake_warnings=tuple(record), models=tuple(models),
         comparison=comparison, future=future, sensitivity=sensitivity, method=method,
@@ -975,21 +990,20 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
         seconds=time.perf_counter() - t0, started=started)
 
 
-def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler):
+def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler,
+                   strict):
     """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened)."""
-    import pandas as pd
-
-    from bayeslong.identify import identify
-
     t0 = time.perf_counter()
     key = study.fit_key(cand)
     notes: list[str] = []
     stem = f"{_slug(cand.label)}-{key}"
-    try:
-        ident = identify(cand.spec, panel)
-    except BayeslongError as err:
-        notes.append(f"identification check failed: {err}")
-        ident = None
+    ident_path = fits_dir / f"{stem}.identify.json"
+    if not fit and not ident_path.exists():
+        raise SpecError(
+            f"candidate {cand.label!r} has no saved results for the current study and data "
+            f"(nothing for hash {key} in {fits_dir}); run `bayeslong run {study.source.name}` "
+            "first")
+    ident = _identification(cand, panel, ident_path, notes)
     if ident is not None and not ident.identified:
         notes.append("not identified on this panel (" + ", ".join(ident.deficient)
                      + "); not fitted. " + ident.advice)
@@ -997,13 +1011,20 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
         return ModelResult(candidate=cand, key=key, identification=ident, notes=tuple(notes),
                            seconds=time.perf_counter() - t0), "skipped"
 
-    ml = _ml(study, panel, cand, fits_dir / f"{stem}.ml.json", notes, say)
-    what, bayes, problems = "none", None, ()
+    ml, what = None, "none"
+    if fit_module is None or study.checks["ml"]:
+        ml, ml_reused = _ml(study, panel, cand, fits_dir / f"{stem}.ml.json", notes, say,
+                            fit=fit)
+        if fit_module is None and ml is not None:  # the ML fit is the run's fit
+            what = "reused" if ml_reused else "fitted"
+    bayes, problems = None, ()
     if fit_module is not None:
-        path = fits_dir / f"{stem}.fit"
+        path = fits_dir / f"{stem}.nc"
         if path.exists():
             try:
-                bayes = fit_module.load_fit(path)
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")  # problems are recorded below, once
+                    bayes = fit_module.load_fit(path)
                 what = "reused"
                 say(f"{cand.label}: reused the saved fit {path.name}")
             except Exception as err:  # a damaged or outdated file: refit rather than stop
@@ -1023,12 +1044,21 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                               progressbar=not quiet_sampler)
                 if s["sampler"] != "auto":
                     kwargs["sampler"] = s["sampler"]
-                bayes = fit_module.fit(cand.spec, panel, **kwargs)
+                with warnings.catch_warnings():
+                    # convergence problems are recorded (and shown) below, once
+                    warnings.simplefilter("ignore", _convergence_warning())
+                    bayes = fit_module.fit(cand.spec, panel, **kwargs)
                 bayes.save(path)
                 what = "fitted"
             except BayeslongError as err:
                 notes.append(f"Bayesian fit failed: {err}")
                 say(f"{cand.label}: Bayesian fit failed: {err}")
+            except Exception as err:  # an internal failure of one fit must not lose the others
+                if strict:
+                    raise
+                notes.append(f"Bayesian fit failed with an internal error ({type(err).__name__}: "
+                             f"{err}); rerun with --debug for the traceback and report it")
+                say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
         if bayes is not None:
             problems = tuple(convergence_problems(bayes))
             if problems:
@@ -1038,8 +1068,37 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                        seconds=time.perf_counter() - t0), what
 
 
-def _ml(study, panel, cand, path: Path, notes: list, say) -> dict | None:
-    """Maximum-likelihood fit of one candidate, saved as JSON and reused when present."""
+def _convergence_warning():
+    from bayeslong.errors import ConvergenceWarning
+
+    return ConvergenceWarning
+
+
+def _identification(cand, panel, path: Path, notes: list):
+    """Local identification of one candidate, saved as JSON and reused when present."""
+    from bayeslong.identify import Identification, identify
+
+    if path.exists():
+        try:
+            saved = json.loads(path.read_text())
+            return Identification(**{**saved, "deficient": tuple(saved["deficient"])})
+        except (ValueError, TypeError, KeyError):
+            pass
+    try:
+        ident = identify(cand.spec, panel)
+    except BayeslongError as err:
+        notes.append(f"identification check failed: {err}")
+        return None
+    path.write_text(json.dumps(dataclasses.asdict(ident), indent=1))
+    return ident
+
+
+def _ml(study, panel, cand, path: Path, notes: list, say, *, fit: bool = True
+        ) -> tuple[dict | None, bool]:
+    """Maximum-likelihood fit of one candidate, saved as JSON and reused when present.
+
+    Returns the result (None when it failed) and whether it was read from the saved file.
+    """
     import pandas as pd
 
     from bayeslong.ml import fit_ml
@@ -1048,9 +1107,16 @@ def _ml(study, panel, cand, path: Path, notes: list, say) -> dict | None:
         try:
             saved = json.loads(path.read_text())
             saved["table"] = pd.DataFrame(saved["table"]).set_index("parameter")
-            return saved
+            notes.extend(saved.pop("notes", []))
+            say(f"{cand.label}: reused the saved maximum-likelihood fit {path.name}")
+            return saved, True
         except (ValueError, KeyError):
             pass
+    if not fit:
+        raise SpecError(
+            f"candidate {cand.label!r} has no saved maximum-likelihood fit for the current study "
+            f"and data (looked for {path.name} in {path.parent}); run `bayeslong run "
+            f"{study.source.name}` first")
     say(f"{cand.label}: maximum likelihood")
     try:
         with warnings.catch_warnings(record=True) as caught:
@@ -1058,62 +1124,36 @@ def _ml(study, panel, cand, path: Path, notes: list, say) -> dict | None:
             res = fit_ml(cand.spec, panel, check=False)
     except BayeslongError as err:
         notes.append(f"maximum likelihood failed: {err}")
-        return None
-    for w in caught:
-        notes.append(f"maximum likelihood: {w.message}")
+        return None, False
+    found = [f"maximum likelihood: {w.message}" for w in caught]
+    notes.extend(found)
     table = pd.DataFrame({"estimate": res.params, "se": res.se})
     table.index.name = "parameter"
     out = {"loglik": float(res.loglik), "aic": float(res.aic), "bic": float(res.bic),
            "n_params": int(res.n_params), "converged": bool(res.converged),
            "boundary": list(res.boundary)}
-    path.write_text(json.dumps({**out, "table": json.loads(
+    path.write_text(json.dumps({**out, "notes": found, "table": json.loads(
         table.reset_index().to_json(orient="records"))}, indent=1))
-    return {**out, "table": table}
-
-
-#: Convergence thresholds (Vehtari, Gelman, Simpson, Carpenter & Buerkner 2021,
-#: doi:10.1214/20-BA1221: R-hat below 1.01 and bulk/tail ESS above 100 per chain).
-RHAT_MAX = 1.01
-ESS_PER_CHAIN_MIN = 100
+    return {**out, "table": table}, False
 
 
 def convergence_problems(bayes) -> list[str]:
-    """Name each parameter whose R-hat, bulk or tail ESS, or divergences fail the thresholds.
+    """Name each failed convergence criterion of a fit, from :meth:`Fit.diagnostics`.
 
-    Uses ArviZ on ``bayes.idata`` (the thresholds are :data:`RHAT_MAX` and
-    :data:`ESS_PER_CHAIN_MIN` per chain; any divergent transition is reported).
+    The criteria and thresholds are the fit module's (R-hat, bulk and tail ESS per
+    parameter; divergences and E-BFMI per run); this only puts them in words.
     """
-    import arviz as az
-    import numpy as np
-
-    idata = bayes.idata
-    post = idata.posterior
-    chains = int(post.sizes.get("chain", 1))
-    draws = int(post.sizes.get("draw", 0))
-    out = []
-    try:
-        table = az.summary(idata, kind="diagnostics")
-    except Exception as err:  # ArviZ cannot summarise: say so rather than hide it
-        return [f"diagnostics could not be computed ({err})"]
-    ess_min = ESS_PER_CHAIN_MIN * chains
-    if chains > 1:
-        bad = table.index[table["r_hat"] > RHAT_MAX].tolist()
-        if bad:
-            worst = table["r_hat"].max()
-            out.append(f"R-hat above {RHAT_MAX} for {', '.join(map(str, bad))} "
-                       f"(largest {worst:.3f})")
-    for column, what in (("ess_bulk", "bulk ESS"), ("ess_tail", "tail ESS")):
-        if ess_min <= chains * draws:  # otherwise the threshold cannot be met by design
-            bad = table.index[table[column] < ess_min].tolist()
-            if bad:
-                out.append(f"{what} below {ess_min} ({ESS_PER_CHAIN_MIN} per chain) for "
-                           f"{', '.join(map(str, bad))} (smallest {table[column].min():.0f})")
-    stats = getattr(idata, "sample_stats", None)
-    if stats is not None and "diverging" in stats:
-        n_div = int(np.asarray(stats["diverging"]).sum())
-        if n_div:
-            out.append(f"{n_div} divergent transition{'s' if n_div != 1 else ''} after tuning "
-                       "(the posterior geometry is hard for the sampler; results may be biased)")
+    table = bayes.diagnostics()
+    out = [f"{name}: {flag}" for name, flag in table["flag"].items() if flag]
+    n_div = int(table.attrs.get("divergences", 0) or 0)
+    if n_div:
+        out.append(f"{n_div} divergent transition{'s' if n_div != 1 else ''} after warm-up "
+                   "(threshold 0: the sampler met geometry it could not follow; estimates may "
+                   "be biased)")
+    floor = table.attrs.get("thresholds", {}).get("ebfmi")
+    low = [i for i, v in enumerate(table.attrs.get("ebfmi", [])) if floor is not None and v < floor]
+    if low:
+        out.append(f"E-BFMI below {floor} in chain(s) {', '.join(map(str, low))}")
     return out
 
 
@@ -1133,7 +1173,43 @@ def _ml_comparison(models) -> Step:
     return Step(ran=True, value=table)
 
 
-def _timed(step: Callable[[], Any], what: str, say) -> Step:
+def _cached(study: Study, name: str, parts: dict, compute: Callable[[], Any], say=None,
+            message: str = "") -> Callable[[], Any]:
+    """Wrap ``compute`` so its value is saved under ``<output>/steps`` and reused by content.
+
+    ``parts`` must hold everything the value depends on (fit keys and settings);
+    ``message`` is said before computing, or with "reused" when the saved value serves.
+    """
+    say = say or (lambda m: None)
+    import pickle
+
+    key = hashlib.sha256(json.dumps({"step": name, **parts, "version": package_version()},
+                                    sort_keys=True, default=str).encode()).hexdigest()[:16]
+    path = study.output / "steps" / f"{name}-{key}.pkl"
+
+    def run():
+        if path.exists():
+            try:
+                with open(path, "rb") as fh:
+                    value = pickle.load(fh)
+                say(f"{message}: reused the saved result")
+                return value
+            except Exception:  # unreadable (other version): compute again
+                pass
+        say(message)
+        value = compute()
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            with open(path, "wb") as fh:
+                pickle.dump(value, fh)
+        except Exception:  # not picklable: it is simply recomputed next time
+            path.unlink(missing_ok=True)
+        return value
+
+    return run
+
+
+def _timed(step: Callable[[], Any], what: str, say, strict: bool = False) -> Step:
     """Run one optional step; a failure becomes a 'not run' record with the reason."""
     t0 = time.perf_counter()
     try:
@@ -1142,13 +1218,19 @@ def _timed(step: Callable[[], Any], what: str, say) -> Step:
         say(f"{what}: not run: {err}")
         return Step(ran=False, reason=str(err), seconds=time.perf_counter() - t0)
     except Exception as err:  # an unexpected failure in one step must not lose the others
+        if strict:
+            raise
         say(f"{what}: FAILED ({type(err).__name__}: {err})")
         return Step(ran=False, reason=f"failed with {type(err).__name__}: {err}",
                     seconds=time.perf_counter() - t0)
     return Step(ran=True, value=value, seconds=time.perf_counter() - t0)
 
 
-def _compare(study, panel, models, method, say) -> tuple[Step, Step]:
+#: Columns of the comparison table that belong to leave-future-out.
+_LFO_COLUMNS = ("elpd_lfo", "se_lfo", "lfo_diff", "lfo_dse")
+
+
+def _compare(study, panel, models, method, say, strict=False) -> tuple[Step, Step]:
     """Compare the candidates by LOO/WAIC (and leave-future-out when asked)."""
     want_future = study.comparison["future"]
     if method != "bayes":
@@ -1165,16 +1247,36 @@ def _compare(study, panel, models, method, say) -> tuple[Step, Step]:
     if module is None:
         skipped = Step.skipped(absent)
         return skipped, (skipped if want_future else Step.skipped("not requested"))
-    say("comparing candidates by PSIS-LOO and WAIC")
-    comparison = _timed(lambda: module.compare(fits), "comparison", say)
+    keys = {m.label: m.key for m in models if m.fit is not None}
+    kwargs = {}
+    if want_future:
+        sm = study.sampling
+        kwargs = {"future": True, "fit_kwargs": {
+            "draws": sm["draws"], "tune": sm["tune"], "chains": sm["chains"], "seed": sm["seed"],
+            "progressbar": False, **({"sampler": sm["sampler"]} if sm["sampler"] != "auto" else {})}}
+        message = ("comparing candidates by PSIS-LOO, WAIC and leave-future-out "
+                   "(one refit per candidate on all but the last wave)")
+    else:
+        message = "comparing candidates by PSIS-LOO and WAIC"
+    comparison = _timed(_cached(study, "compare", {"fits": keys, "future": want_future},
+                                lambda: module.compare(fits, **kwargs), say, message),
+                        "comparison", say, strict)
     future = Step.skipped("not requested (set `comparison.future = true`)")
     if want_future:
-        say("comparing candidates by leave-future-out (refits on all but the last wave)")
-        future = _timed(lambda: module.compare(fits, future=True), "leave-future-out", say)
+        table = comparison.value
+        if comparison.ran and "elpd_lfo" in getattr(table, "columns", ()):
+            future = Step(ran=True, value=table[[c for c in _LFO_COLUMNS if c in table.columns]])
+        else:
+            future = Step.skipped(comparison.reason or "the comparison gave no leave-future-out "
+                                  "scores")
     return comparison, future
 
 
-def _check(study, panel, m: ModelResult, say) -> ModelResult:
+#: Units whose predictive trajectory bands the report shows.
+N_TRAJECTORY_UNITS = 6
+
+
+def _check(study, panel, m: ModelResult, say, strict=False) -> ModelResult:
     """Posterior predictive checks of one fitted candidate."""
     if not study.checks["ppc"]:
         return dataclasses.replace(m, check=Step.skipped("not requested (`checks.ppc = false`)"))
@@ -1183,13 +1285,21 @@ def _check(study, panel, m: ModelResult, say) -> ModelResult:
     module, absent = optional_module("check")
     if module is None:
         return dataclasses.replace(m, check=Step.skipped(absent))
-    say(f"{m.label}: posterior predictive checks")
-    step = _timed(lambda: module.check(m.fit, draws=study.checks["ppc_draws"],
-                                       seed=study.sampling["seed"]), f"{m.label}: checks", say)
+    draws, seed = study.checks["ppc_draws"], study.sampling["seed"]
+
+    def compute():
+        table = module.ppc(m.fit, draws=draws, seed=seed)
+        units = list(m.fit.panel.units[:N_TRAJECTORY_UNITS])
+        bands = module.trajectories(m.fit, units, draws=draws, seed=seed)
+        return {"ppc": table, "trajectories": bands}
+
+    step = _timed(_cached(study, "check", {"fit": m.key, "checks": study.checks}, compute,
+                          say, f"{m.label}: posterior predictive checks"),
+                  f"{m.label}: checks", say, strict)
     return dataclasses.replace(m, check=step)
 
 
-def _sensitivity(study, panel, models, method, say) -> Step:
+def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
     """Lag sensitivity along the axes the study turns on."""
     axes = [k for k, on in study.sensitivity.items() if on]
     if not axes:
@@ -1199,10 +1309,30 @@ def _sensitivity(study, panel, models, method, say) -> Step:
     module, absent = optional_module("sensitivity")
     if module is None:
         return Step.skipped(absent)
-    fits = {m.label: m.fit for m in models if m.fit is not None}
-    say("lag sensitivity: " + ", ".join(axes))
+    specs, seen = [], set()
+    for m in models:
+        spec = m.candidate.spec
+        key = json.dumps(spec.to_dict(), sort_keys=True)
+        if m.fit is not None and module.lag_parameter(spec, panel.outcomes) and key not in seen:
+            seen.add(key)
+            specs.append(spec)
+    if not specs:
+        return Step.skipped("no fitted candidate has a constant lag")
+    message = ("lag sensitivity: " + ", ".join(axes) + " (refits "
+               + ", ".join(str(spec) for spec in specs) + " and their variations, default priors)")
+    on = study.sensitivity
     s = study.sampling
-    return _timed(lambda: module.lag_sensitivity(
-        panel, fits=fits, axes=tuple(axes), priors=dict(study.priors),
-        draws=s["draws"], tune=s["tune"], chains=s["chains"], seed=s["seed"]),
-        "lag sensitivity", say)
+    fit_kwargs = {"draws": s["draws"], "tune": s["tune"], "chains": s["chains"],
+                  "seed": s["seed"], "progressbar": False}
+    if s["sampler"] != "auto":
+        fit_kwargs["sampler"] = s["sampler"]
+    keys = {m.label: m.key for m in models if m.fit is not None}
+    return _timed(_cached(study, "sensitivity", {"fits": keys, "axes": axes},
+                          lambda: module.lag_sensitivity(
+                              panel, models=specs,
+                              prior_grid=None if on["prior_grid"] else False,
+                              variance_scales=None if on["prior_grid"] else False,
+                              initial=on["initial"], specification=on["specification"],
+                              power_scaling=on["power_scaling"], fit_kwargs=fit_kwargs),
+                          say, message),
+                  "lag sensitivity", say, strict)

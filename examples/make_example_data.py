@@ -19,7 +19,6 @@ from pathlib import Path
 import numpy as np
 
 import bayeslong as bl
-from bayeslong.simulate import simulate  # the same function as bl.simulate
 
 SEED = 20261201
 N_UNITS, N_WAVES = 120, 5
@@ -51,7 +50,7 @@ def make(path: Path) -> None:
     # whole numbers, as a roster would record them, passed to simulate as fixed values
     nights = rng.integers(0, 6, size=(N_UNITS, N_WAVES)).astype(float)
     years = rng.integers(1, 21, size=N_UNITS).astype(float)
-    df = simulate(
+    df = bl.simulate(
         bl.model("alt"), TRUE_PARAMS, N_UNITS, N_WAVES, seed=SEED,
         covariates={"night_shifts": nights}, time_invariant={"years_on_shifts": years},
         outcomes=["quality"], missing={"dropout": 0.06, "intermittent": 0.03},

@@ -86,15 +86,26 @@ def _boom(spec, panel, seed=None):
     raise RuntimeError("deliberate failure")
 
 
+def _warns(spec, panel, seed=None):
+    import warnings
+
+    warnings.warn("deliberate warning", UserWarning)
+    return {"units": panel.n_units}
+
+
 def test_thread_executor_and_custom_function_path():
     panel = Simulation(spec=bl.model("ar"), params=AR, n_units=50, n_waves=4, seed=5)
     tasks = [Task(name="boom", spec=bl.model("ar"), panel=panel, kind="test_batch:_boom"),
-             Task(name="bad-path", spec=bl.model("ar"), panel=panel, kind="nowhere.at_all:fn")]
+             Task(name="bad-path", spec=bl.model("ar"), panel=panel, kind="nowhere.at_all:fn"),
+             Task(name="warns", spec=bl.model("ar"), panel=panel, kind="test_batch:_warns")]
     with cf.ThreadPoolExecutor(1) as ex:
         out = run_many(tasks, ex, progress=False)
     assert out.failed == {"boom": "RuntimeError: deliberate failure",
                           "bad-path": out.failed["bad-path"]}
     assert "names no importable function" in out.failed["bad-path"]
+    # a returned dict becomes the info; warnings are collected on the result, not lost
+    assert out["warns"].info == {"units": 50, "warnings": 1}
+    assert out["warns"].warnings == ("UserWarning: deliberate warning",)
 
 
 def test_bad_tasks_say_what_to_fix():
@@ -105,3 +116,17 @@ def test_bad_tasks_say_what_to_fix():
         Task(name="b", spec=bl.model("ar"), panel=None, kind="mcmc")
     with pytest.raises(SpecError, match="run_many takes Task objects"):
         run_many([("a", "b")])
+
+
+def test_serial_executor_reports_progress_per_task(capsys):
+    from bayeslong.batch import SerialExecutor
+
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=20, n_waves=4, seed=5)
+    tasks = [Task(name=f"w{i}", spec=bl.model("ar"), panel=panel, kind="test_batch:_warns")
+             for i in range(2)] + [Task(name="boom", spec=bl.model("ar"), panel=panel,
+                                        kind="test_batch:_boom")]
+    out = run_many(tasks, SerialExecutor())
+    lines = capsys.readouterr().err.splitlines()
+    assert [ln.split(" (")[0] for ln in lines] == [
+        "[1/3] w0: ok", "[2/3] w1: ok", "[3/3] boom: RuntimeError: deliberate failure"]
+    assert list(out.table["status"]) == ["ok", "ok", "error"]

@@ -33,29 +33,24 @@ DUAL = dict(level_mean=3.0, slope_mean=1.0, proportional_change=-0.2, level_var=
 ALT_X = {**ALT, "effect[x]": 0.4, "level_effect[z]": 0.5, "slope_effect[z]": -0.2,
          "initial_effect[x]": 0.3, "initial_effect[z]": 1.0}
 
+ALT_ENDOGENOUS = {**{k: v for k, v in ALT.items() if not k.startswith("initial")},
+                  "lag": 0.6, "initial_on_level": 0.8, "initial_on_slope": 0.2,
+                  "initial_intercept": 0.5, "initial_var": 0.7}
+
 CASES = [
-    pytest.param("alt", ALT, {}, {}, id="alt"),
-    pytest.param("alt", dict(ALT, lag=0.6), {}, {}, id="alt-endogenous", marks=()),
-    pytest.param("clpm", CLPM, {}, {}, id="clpm"),
-    pytest.param("ri-clpm", RICLPM, {}, {}, id="ri-clpm"),
-    pytest.param("dual-change", DUAL, {}, {}, id="dual-change"),
-    pytest.param("alt", ALT_X, {"x": ("normal", 1.0, 2.0)}, {"z": ("bernoulli", 0.4)},
+    pytest.param("alt", {}, ALT, {}, {}, id="alt"),
+    pytest.param("alt", {"initial": "endogenous"}, ALT_ENDOGENOUS, {}, {}, id="alt-endogenous"),
+    pytest.param("clpm", {}, CLPM, {}, {}, id="clpm"),
+    pytest.param("ri-clpm", {}, RICLPM, {}, {}, id="ri-clpm"),
+    pytest.param("dual-change", {}, DUAL, {}, {}, id="dual-change"),
+    pytest.param("alt", {}, ALT_X, {"x": ("normal", 1.0, 2.0)}, {"z": ("bernoulli", 0.4)},
                  id="alt-covariates"),
 ]
 
 
-def _spec(name, case_id):
-    return bl.model(name, initial="endogenous") if case_id == "alt-endogenous" else bl.model(name)
-
-
-@pytest.mark.parametrize("name, params, xs, zs", CASES)
-def test_large_panel_reproduces_implied_moments(request, name, params, xs, zs):
-    case_id = request.node.callspec.id
-    spec = _spec(name, case_id)
-    if case_id == "alt-endogenous":  # the endogenous first wave has its own parameters
-        params = {k: v for k, v in params.items() if not k.startswith("initial")}
-        params.update(initial_on_level=0.8, initial_on_slope=0.2, initial_intercept=0.5,
-                      initial_var=0.7)
+@pytest.mark.parametrize("name, options, params, xs, zs", CASES)
+def test_large_panel_reproduces_implied_moments(name, options, params, xs, zs):
+    spec = bl.model(name, **options)
     T = 4
     sim = Simulation(spec=spec, params=params, n_units=N_BIG, n_waves=T, seed=11,
                      covariates=xs, time_invariant=zs)
@@ -68,7 +63,7 @@ def test_large_panel_reproduces_implied_moments(request, name, params, xs, zs):
     c, D, Sigma = moments_at(sim.structure, sim.theta())
     assert Sigma.shape == (K * T, K * T)
     # Residuals given the covariates: y - c - D w has mean 0 and covariance Sigma when
-    # both c, D and Sigma are right (a wrong D leaves D_err Cov(w) D_err' in the covariance).
+    # c, D and Sigma are all right (a wrong D leaves D_err Cov(w) D_err' in the covariance).
     R = Y - c - W @ D.T
     n = N_BIG
     # Sampling error of a normal sample (normal theory, e.g. Anderson 2003, Thm 3.4.4):

@@ -1,0 +1,134 @@
+"""ESS per second of the lag and wall time: our engine with PyMC NUTS and nutpie, against a
+hand-written data-augmentation model with person-level latents.
+
+Command:  cd /work/main && .venv/bin/python bench/sampler_speed.py [N] [draws] [chains]
+Default:  alt, N = 500, T = 6, 4 chains x 1000 draws (1000 warm-up), one run of each.
+Machine:  2-core Linux VM shared with other jobs; timings are noisy (see the load average
+          printed at the start).
+"""
+
+import os
+import sys
+import time
+import warnings
+
+import numpy as np
+
+warnings.filterwarnings("ignore")
+
+import pymc as pm  # noqa: E402
+import pytensor.tensor as pt  # noqa: E402
+
+import bayeslong as bl  # noqa: E402
+
+# --- simulated alt panels: y ~ N(c, Sigma) at known values (numpy draws) -------------
+from bayeslong.moments import moments_at  # noqa: E402
+from bayeslong.structure import build_structure  # noqa: E402
+
+ALT_TRUE = {"level_mean": 10.0, "slope_mean": 1.0, "lag": 0.4, "initial_mean": 10.0,
+            "level_var": 4.0, "level_slope_cov": 0.3, "slope_var": 0.5, "initial_level_cov": 2.0,
+            "initial_slope_cov": 0.2, "initial_var": 5.0}  # resid_var[t] = 1.5
+
+
+def simulate_alt(n_units: int, n_waves: int = 6, seed: int = 0):
+    """Return (spec, panel) for alt with the values above."""
+    spec = bl.model("alt")
+    structure = build_structure(spec, outcomes=["y"], n_waves=n_waves)
+    theta = np.array([ALT_TRUE.get(name, 1.5) for name in structure.names])
+    c, _, sigma = moments_at(structure, theta)
+    y = np.random.default_rng(seed).multivariate_normal(c, sigma, size=n_units)
+    panel = bl.Panel(units=tuple(range(n_units)), waves=tuple(range(1, n_waves + 1)),
+                     outcomes=("y",), y=y[:, :, None])
+    return spec, panel
+
+
+def ess_lag(idata) -> float:
+    import arviz as az
+
+    return float(az.ess(idata.posterior[["lag"]], method="bulk")["lag"])
+
+
+def augmented_model(panel):
+    """alt (predetermined first wave) with explicit person-level growth factors.
+
+    y_i1 ~ N(initial_mean, initial_var); (level_i, slope_i) | y_i1 from the conditional normal
+    of the joint (level, slope, eta_1) covariance (non-centred); y_it | y_i,t-1 ~
+    N(level_i + slope_i (t - 1) + lag y_i,t-1, resid_var[t]) for t >= 2 (the AR chain).
+    """
+    y = panel.y[:, :, 0]
+    n, T = y.shape
+    s = float(np.nanstd(y))
+    with pm.Model() as m:
+        mu = pm.Normal("mu", np.nanmean(y[:, 0]), 3 * s, shape=3)  # level, slope, initial means
+        chol, _, _ = pm.LKJCholeskyCov("chol", n=3, eta=2.0, sd_dist=pm.HalfNormal.dist(s, shape=3))
+        lag = pm.Normal("lag", 0.0, 0.5)
+        resid_sd = pm.HalfNormal("resid_sd", s, shape=T - 1)
+        S = chol @ chol.T
+        pm.Normal("y1", mu[2], pt.sqrt(S[2, 2]), observed=y[:, 0])
+        cond_mean = mu[:2][None, :] + (S[:2, 2] / S[2, 2])[None, :] * (y[:, 0][:, None] - mu[2])
+        cond_cov = S[:2, :2] - pt.outer(S[:2, 2], S[:2, 2]) / S[2, 2]
+        z = pm.Normal("z", 0.0, 1.0, shape=(n, 2))
+        g = cond_mean + z @ pt.linalg.cholesky(cond_cov).T
+        t = np.arange(1, T, dtype=float)
+        mean = g[:, :1] + g[:, 1:2] * t[None, :] + lag * y[:, :-1]
+        pm.Normal("y", mean, resid_sd[None, :], observed=y[:, 1:])
+    return m
+
+
+def run(label, func):
+    t0 = time.perf_counter()
+    idata, extra = func()
+    wall = time.perf_counter() - t0
+    ess = ess_lag(idata)
+    print(f"{label:<34} wall {wall:8.1f} s   ESS(lag) {ess:7.0f}   ESS/s {ess / wall:8.2f}   {extra}",
+          flush=True)
+    return ess / wall, wall
+
+
+def main():
+    n = int(sys.argv[1]) if len(sys.argv) > 1 else 500
+    draws = int(sys.argv[2]) if len(sys.argv) > 2 else 1000
+    chains = int(sys.argv[3]) if len(sys.argv) > 3 else 4
+    print(f"alt N={n} T=6, {chains} chains x {draws} draws; load average {os.getloadavg()}")
+    spec, panel = simulate_alt(n, seed=1)
+    results = {}
+
+    def ours(sampler):
+        def go():
+            f = bl.fit(spec, panel, draws=draws, tune=draws, chains=chains, seed=1,
+                       sampler=sampler, progressbar=False)
+            return f.idata, {k: round(v, 1) for k, v in f.timing.items()}
+        return go
+
+    def refit(sampler):
+        def go():
+            f = bl.fit(spec, panel, draws=draws, tune=draws, chains=chains, seed=2,
+                       sampler=sampler, progressbar=False)
+            return f.idata, {k: round(v, 1) for k, v in f.timing.items()}
+        return go
+
+    def augmented():
+        from bayeslong.fit import _one_thread
+
+        with _one_thread(), augmented_model(panel):
+            idata = pm.sample(draws=draws, tune=draws, chains=chains, random_seed=1,
+                              progressbar=False, compute_convergence_checks=False)
+        return idata, {}
+
+    which = sys.argv[4].split(",") if len(sys.argv) > 4 else ["pymc", "nutpie", "augmented"]
+    if "pymc" in which:
+        results["pymc"] = run("(a) marginal engine + PyMC NUTS", ours("pymc"))
+        results["pymc-refit"] = run("(a') same, compiled before", refit("pymc"))
+    if "nutpie" in which:
+        results["nutpie"] = run("(b) marginal engine + nutpie", ours("nutpie"))
+        results["nutpie-refit"] = run("(b') same, compiled before", refit("nutpie"))
+    if "augmented" in which:
+        results["augmented"] = run("(c) data augmentation + PyMC", augmented)
+    if "augmented" in results:
+        base = results["augmented"][0]
+        for k, (rate, _) in results.items():
+            print(f"ESS/s ratio {k} / augmented: {rate / base:8.1f}")
+
+
+if __name__ == "__main__":
+    main()

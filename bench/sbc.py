@@ -1,0 +1,163 @@
+"""Simulation-based calibration of `bl.fit` on a small ALT model (slow; not run by tests).
+
+Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian inference
+algorithms with simulation-based calibration", arXiv:1804.06788, algorithm 1:
+
+    for r = 1..R:  theta~ ~ prior;  y ~ p(y | theta~);  theta_1..L ~ posterior(theta | y)
+                   rank_r = #{l : theta_l < theta~}          (0..L)
+
+If the fit is calibrated, the ranks are uniform on 0..L. The draws are thinned (every k-th
+of the pooled chains) to reduce autocorrelation, as the paper advises (section 5.1). The
+ranks are binned into B bins and compared with the uniform by a chi-square test with B - 1
+degrees of freedom; a histogram with the 99% band of a uniform bin count is saved as PNG.
+
+Every parameter's prior is given explicitly (`PRIORS`), so the prior that draws theta~ is
+exactly the prior of the fit (the defaults of bayeslong.priors depend on the data's scale,
+which would make the generating prior differ from the fitted one).
+
+Run (about 100 fits; a few minutes with nutpie once the model is compiled):
+
+    cd /work/main && PYTHONPATH=. .venv/bin/python bench/sbc.py --replications 100
+
+Output: bench/out/sbc_ranks.csv, bench/out/sbc_ranks.png and a printed table of p-values.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import warnings
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+from scipy import stats  # noqa: E402
+
+import bayeslong as bl  # noqa: E402
+from bayeslong.batch import SerialExecutor, Task, run_many  # noqa: E402
+from bayeslong.priors import prior_draws, resolve_priors  # noqa: E402
+from bayeslong.simulate import Simulation  # noqa: E402
+from bayeslong.structure import structure_for  # noqa: E402
+
+N_UNITS, N_WAVES = 100, 5
+PARAMS = ("lag", "slope_mean")
+#: Every prior given, none data-dependent (LKJ(2) on the growth/initial block is fixed too).
+PRIORS = {
+    "level_mean": ("normal", 0.0, 1.0), "slope_mean": ("normal", 0.0, 0.5),
+    "lag": ("normal", 0.3, 0.15), "initial_mean": ("normal", 0.0, 1.0),
+    "level_var": ("halfnormal", 1.0), "slope_var": ("halfnormal", 0.3),
+    "initial_var": ("halfnormal", 1.0), "resid_var": ("halfnormal", 0.7),
+}
+
+
+def sbc_ranks(fit, truth: dict, params, thin: int, bins: int) -> dict:
+    """Rank of each true value among the thinned pooled posterior draws (Talts et al. alg. 1).
+
+    L draws are kept with L + 1 divisible by ``bins``, so every bin holds the same number of
+    possible ranks (Talts et al. 2018, section 4.1).
+    """
+    post = fit.idata.posterior
+    out = {}
+    for name in params:
+        draws = np.asarray(post[name].values).reshape(-1)[::thin]
+        keep = len(draws) - (len(draws) + 1) % bins
+        draws = draws[:keep]
+        out[name] = int(np.sum(draws < truth[name]))
+        out[f"{name}__L"] = len(draws)
+    return out
+
+
+def fit_and_rank(spec, panel, *, truth, thin, bins, params, **fit_kwargs):
+    """A batch task: fit and return the SBC ranks as the task's info."""
+    from bayeslong.fit import fit
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # short chains warn about ESS; SBC itself is the check
+        result = fit(spec, panel, progressbar=False, **fit_kwargs)
+    return sbc_ranks(result, truth, params, thin, bins)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--replications", type=int, default=100)
+    ap.add_argument("--draws", type=int, default=500)
+    ap.add_argument("--tune", type=int, default=500)
+    ap.add_argument("--chains", type=int, default=2)
+    ap.add_argument("--thin", type=int, default=10)
+    ap.add_argument("--bins", type=int, default=10)
+    ap.add_argument("--seed", type=int, default=2018)
+    ap.add_argument("--pool", action="store_true", help="local process pool instead of serial")
+    args = ap.parse_args(argv)
+
+    spec = bl.model("alt", residuals="equal")
+    # a reference panel only supplies the design to resolve the (fully user-given) priors
+    ref = Simulation(spec=spec, params={"level_mean": 0, "slope_mean": 0, "lag": 0.3,
+                                        "initial_mean": 0, "level_var": 1, "level_slope_cov": 0,
+                                        "slope_var": 0.1, "initial_level_cov": 0,
+                                        "initial_slope_cov": 0, "initial_var": 1,
+                                        "resid_var": 0.5},
+                     n_units=N_UNITS, n_waves=N_WAVES, seed=0).panel()
+    structure = structure_for(spec, ref)
+    prior_set = resolve_priors(structure, ref, PRIORS)
+    thetas = prior_draws(prior_set, draws=args.replications, seed=args.seed)
+    seeds = np.random.SeedSequence(args.seed).generate_state(2 * args.replications)
+    tasks = []
+    for r, theta in enumerate(thetas):
+        truth = dict(zip(structure.names, map(float, theta)))
+        sim = Simulation(spec=spec, params=truth, n_units=N_UNITS, n_waves=N_WAVES,
+                         seed=int(seeds[2 * r]))
+        tasks.append(Task(name=f"rep{r}", spec=spec, panel=sim, kind="bench.sbc:fit_and_rank",
+                          kwargs=dict(truth={k: truth[k] for k in PARAMS}, thin=args.thin,
+                                      bins=args.bins,
+                                      params=PARAMS, draws=args.draws, tune=args.tune,
+                                      chains=args.chains, priors=PRIORS),
+                          seed=int(seeds[2 * r + 1]) % 2**31))
+    t0 = time.perf_counter()
+    batch = run_many(tasks, None if args.pool else SerialExecutor())
+    wall = time.perf_counter() - t0
+    ok = [r for r in batch if r.ok]
+    ranks = pd.DataFrame([r.info for r in ok])
+    out = ROOT / "bench" / "out"
+    out.mkdir(parents=True, exist_ok=True)
+    ranks.to_csv(out / "sbc_ranks.csv", index=False)
+
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, len(PARAMS), figsize=(4.5 * len(PARAMS), 3.2))
+    rows = []
+    for ax, name in zip(np.atleast_1d(axes), PARAMS):
+        L = int(ranks[f"{name}__L"].iloc[0])
+        # B bins of the L + 1 possible ranks 0..L (L + 1 divisible by B, see sbc_ranks)
+        counts = np.bincount(ranks[name].to_numpy(int) * args.bins // (L + 1),
+                             minlength=args.bins)
+        R = len(ranks)
+        chi2, p = stats.chisquare(counts)
+        lo, hi = stats.binom.ppf([0.005, 0.995], R, 1 / args.bins)
+        ax.bar(np.arange(args.bins), counts, width=0.9, color="tab:blue")
+        ax.axhspan(lo, hi, color="grey", alpha=0.3, label="99% band, uniform")
+        ax.set_title(f"{name}: chi2 = {chi2:.1f}, p = {p:.3f}")
+        ax.set_xlabel(f"rank bin ({args.bins} bins of 0..{L})")
+        rows.append({"parameter": name, "replications": R, "chi2": chi2, "df": args.bins - 1,
+                     "p_value": p})
+    np.atleast_1d(axes)[0].set_ylabel("replications")
+    np.atleast_1d(axes)[0].legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(out / "sbc_ranks.png", dpi=110)
+    table = pd.DataFrame(rows)
+    print(table.to_string(index=False))
+    print(f"failed fits: {len(batch) - len(ok)}; wall time {wall:.0f} s "
+          f"({wall / max(len(batch), 1):.1f} s per fit)")
+    if batch.failed:
+        print("first failure:", next(iter(batch.failed.items())))
+    return table
+
+
+if __name__ == "__main__":
+    main()
