@@ -472,9 +472,13 @@ def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, prog
 
     model = entry["model"]
     t0 = time.perf_counter()
+    # Chains run in this process, one after the other: PyMC's worker processes send each
+    # draw's statistics through a pipe, and when a log-density evaluation fails at a wild
+    # warm-up point (recorded as a divergence) the stored exception holds PyTensor nodes
+    # that cannot be pickled, which ended whole fits ("Can't pickle local object").
     with model:
         pm.set_data(inputs)
-        idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+        idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
                           initvals=start, progressbar=progressbar, var_names=list(names),
                           compute_convergence_checks=False, return_inferencedata=True)
     return idata, 0.0, time.perf_counter() - t0

@@ -31,6 +31,7 @@ import pytensor.tensor as pt
 LOG_2PI = float(np.log(2.0 * np.pi))
 
 
+
 def pattern_loglik(c, D, Sigma, counts, cross, masks):
     """Log-likelihood of each pattern group, shape (P,).
 
@@ -47,16 +48,26 @@ def pattern_loglik(c, D, Sigma, counts, cross, masks):
     R = pt.matmul(pt.matmul(A[None], cross), A.T[None])  # (P, Y, Y)
     both = masks[:, :, None] * masks[:, None, :]
     S = Sigma[None] * both + eye[None] * (1.0 - masks)[:, None, :]
-    # log-determinant from the Cholesky factor (one LAPACK call; PyTensor rewrites a batched
-    # log(det) into an op without batch support), the trace through NumPy's batched inverse
-    # (per-call SciPy LAPACK look-ups in triangular solves dominated the run time)
+    # log-determinant from the Cholesky factor (PyTensor rewrites a batched log(det) into an
+    # op without batch support; eigenvalues would give NaN gradients at the repeated
+    # eigenvalues of the identity rows of missing entries). A covariance that is not finite
+    # or not positive definite gives NaN here and -inf below, never an exception.
+    bad = pt.any(pt.isnan(S) | pt.isinf(S), axis=(1, 2))[:, None, None]
+    S = pt.switch(bad, eye[None], S)
     chol = pt.linalg.cholesky(S, on_error="nan")
-    logdet = 2.0 * pt.sum(pt.log(pt.diagonal(chol, axis1=1, axis2=2)), axis=1)
-    trace = pt.sum(pt.linalg.inv(S) * (R * both), axis=(1, 2))
+    pivots = pt.diagonal(chol, axis1=1, axis2=2)
+    logdet = 2.0 * pt.sum(pt.log(pivots), axis=1)
+    # numerically singular (a variance underflowed to ~0) counts as failed too
+    failed = bad[:, 0, 0] | pt.isnan(logdet) | pt.lt(pt.min(pivots, axis=1), 1e-100)
+    # an exception inside a sampler's log density ends up in its messages, which cannot be
+    # pickled: invert the identity in place of a failed pattern, which scores -inf anyway
+    # (a blend, not a switch: PyTensor lifts the inverse through a switch onto both branches)
+    f = pt.cast(failed, "float64")[:, None, None]
+    trace = pt.sum(pt.linalg.inv(S * (1.0 - f) + eye[None] * f) * (R * both), axis=(1, 2))
     q = pt.sum(masks, axis=1)
     loglik = -0.5 * counts * (q * LOG_2PI + logdet) - 0.5 * trace
     # a covariance that is not positive definite has no density: -inf, never a number
-    return pt.switch(pt.isnan(logdet), -np.inf, loglik)
+    return pt.switch(failed, -np.inf, loglik)
 
 
 def unit_cross(outcomes: np.ndarray, covariates: np.ndarray):
