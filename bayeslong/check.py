@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from bayeslong.errors import DataError
+from bayeslong.likelihood import mvn_logpdf  # noqa: F401  (used here and by compare)
 from bayeslong.structure import Structure
 
 #: Statistics computed by :func:`ppc`, in table order.
@@ -122,16 +123,6 @@ def conditional_normal(mean, cov, given, values):
     mean_a = mu_a + np.einsum("...ba,...b->...a", gain_t, resid)
     cov_a = s_aa - s_ab @ gain_t
     return mean_a, 0.5 * (cov_a + np.swapaxes(cov_a, -1, -2))
-
-
-def mvn_logpdf(x, mean, cov) -> np.ndarray:
-    """Log density of N(mean, cov) at x, broadcasting over leading axes (Cholesky form)."""
-    x, mean, cov = (np.asarray(a, dtype=float) for a in (x, mean, cov))
-    chol = np.linalg.cholesky(cov)
-    r = x - mean
-    z = np.linalg.solve(chol, r[..., None])[..., 0]
-    logdet = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
-    return -0.5 * (r.shape[-1] * np.log(2.0 * np.pi) + logdet + np.sum(z**2, axis=-1))
 
 
 # --------------------------------------------------------------------------------------------

@@ -321,13 +321,13 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
 
         log p(y_io | w_i) = -1/2 (q log 2 pi + 2 sum log diag L + |L^-1 (y_io - c_o - D_o w_i)|^2),
 
-    evaluated with NumPy's stacked Cholesky and solves (no Python loop over units or
-    draws). This is the per-unit form of :func:`bayeslong.likelihood.pattern_loglik`; the
+    evaluated by :func:`bayeslong.likelihood.mvn_logpdf` with NumPy's stacked Cholesky
+    and solves (no Python loop over units or draws). This is the per-unit form of :func:`bayeslong.likelihood.pattern_loglik`; the
     tests check both against ``scipy.stats.multivariate_normal``. It replaced the per-unit
     call of ``pattern_loglik`` (one pattern per unit), whose batched triangular solves run
     as a Python loop and cost 186 s for N = 10,000 and 1,000 draws (``bench/n_scaling.py``).
     """
-    from bayeslong.likelihood import LOG_2PI
+    from bayeslong.likelihood import mvn_logpdf
 
     f = _moments_batch_function(structure)
     theta = np.atleast_2d(np.asarray(theta, dtype=float))
@@ -344,13 +344,8 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
         c, D, Sigma = f(theta[start:start + chunk])
         mean = c[:, None, :] + np.einsum("uw,syw->suy", w, D)  # (S, N, Y)
         for units, o in groups:
-            q = int(o.sum())
-            L = np.linalg.cholesky(Sigma[:, o][:, :, o])  # (S, q, q)
-            r = ys[units][:, o][None] - mean[:, units][:, :, o]  # (S, n_p, q)
-            z = np.linalg.solve(L[:, None], r[..., None])[..., 0]  # L^-1 r, stacked
-            logdet = 2.0 * np.log(np.diagonal(L, axis1=1, axis2=2)).sum(axis=1)  # (S,)
-            out[start:start + chunk][:, units] = -0.5 * (q * LOG_2PI + logdet[:, None]
-                                                         + np.sum(z * z, axis=-1))
+            out[start:start + chunk][:, units] = mvn_logpdf(
+                ys[units][:, o][None], mean[:, units][:, :, o], Sigma[:, o][:, :, o][:, None])
     return out
 
 

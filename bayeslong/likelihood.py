@@ -70,6 +70,21 @@ def pattern_loglik(c, D, Sigma, counts, cross, masks):
     return pt.switch(failed, -np.inf, loglik)
 
 
+def mvn_logpdf(x, mean, cov) -> np.ndarray:
+    """Log density of N(mean, cov) at x, broadcasting over leading axes (Cholesky form).
+
+    The NumPy form of the Gaussian log density for work after sampling (per-unit terms,
+    forecasts, checks), where draws and units are stacked axes; the model itself uses
+    :func:`pattern_loglik`. Both are checked against ``scipy.stats.multivariate_normal``.
+    """
+    x, mean, cov = (np.asarray(a, dtype=float) for a in (x, mean, cov))
+    chol = np.linalg.cholesky(cov)
+    r = x - mean
+    z = np.linalg.solve(chol, r[..., None])[..., 0]
+    logdet = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    return -0.5 * (r.shape[-1] * np.log(2.0 * np.pi) + logdet + np.sum(z**2, axis=-1))
+
+
 def unit_cross(outcomes: np.ndarray, covariates: np.ndarray):
     """Per-unit augmented cross-products and masks (each unit its own pattern).
 
