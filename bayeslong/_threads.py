@@ -7,6 +7,10 @@ the same fit). Every compute entry point runs inside :func:`single_thread`.
 
 from contextlib import contextmanager
 
+#: Environment variables that cap BLAS/OpenMP threads in processes started later.
+THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+               "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
+
 
 @contextmanager
 def single_thread():

@@ -38,9 +38,7 @@ from bayeslong.spec import Spec
 #: Built-in task kinds; any other kind is a "package.module:function" path.
 KINDS = ("fit", "fit_ml")
 
-#: Environment variables that cap BLAS/OpenMP threads in a worker.
-_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
-                "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
+from bayeslong._threads import THREAD_VARS as _THREAD_VARS  # noqa: E402
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)

@@ -38,8 +38,6 @@ RHAT_MAX = 1.01
 ESS_PER_CHAIN = 100
 EBFMI_MIN = 0.3
 
-_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
-                "NUMBA_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
 
 
 # --------------------------------------------------------------------------------------------
@@ -359,12 +357,12 @@ def _one_thread():
     Environment variables reach worker processes started afresh; threadpoolctl limits the
     libraries already loaded in this process (and forked workers inherit that).
     """
-    from threadpoolctl import threadpool_limits
+    from bayeslong._threads import THREAD_VARS, single_thread
 
-    saved = {k: os.environ.get(k) for k in _THREAD_VARS}
-    os.environ.update({k: "1" for k in _THREAD_VARS if k != "NUMBA_NUM_THREADS"})
+    saved = {k: os.environ.get(k) for k in THREAD_VARS}
+    os.environ.update({k: "1" for k in THREAD_VARS})
     try:
-        with threadpool_limits(limits=1):
+        with single_thread():
             yield
     finally:
         for k, v in saved.items():
