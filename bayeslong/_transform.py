@@ -17,15 +17,21 @@ class Unconstrained:
 
     def __init__(self, structure: Structure):
         self.blocks = []
+        singles = []  # 1 x 1 blocks (a lone variance) are handled together: theta = exp(2 u)
         for b in structure.blocks:
             idx = b.index
             if (idx < 0).any():
                 raise NotImplementedError("covariance blocks with fixed zeros are not supported")
+            if len(idx) == 1:
+                singles.append(int(idx[0, 0]))
+                continue
             rows, cols = np.tril_indices(len(idx))
             self.blocks.append((idx, rows, cols, idx[rows, cols]))
+        self.singles = np.array(singles, dtype=np.int64)
 
     def to_natural(self, u: np.ndarray) -> np.ndarray:
         theta = np.array(u, dtype=float)
+        theta[self.singles] = np.exp(2.0 * np.clip(theta[self.singles], -30, 30))
         for idx, rows, cols, slots in self.blocks:
             L = np.zeros(idx.shape)
             L[rows, cols] = u[slots]
@@ -37,6 +43,8 @@ class Unconstrained:
 
     def from_natural(self, theta: np.ndarray) -> np.ndarray:
         u = np.array(theta, dtype=float)
+        v = theta[self.singles]
+        u[self.singles] = 0.5 * np.log(np.maximum(v, 1e-8 * np.maximum(v, 1e-12)))  # as below, q = 1
         for idx, rows, cols, slots in self.blocks:
             S = theta[idx]
             w, v = np.linalg.eigh(S)
@@ -50,6 +58,8 @@ class Unconstrained:
     def grad_to_u(self, u: np.ndarray, grad_theta: np.ndarray) -> np.ndarray:
         """Chain rule: gradient with respect to ``u`` from the gradient in ``theta``."""
         g = np.array(grad_theta, dtype=float)
+        # d exp(2u)/du = 2 exp(2u)
+        g[self.singles] *= 2.0 * np.exp(2.0 * np.clip(u[self.singles], -30, 30))
         for idx, rows, cols, slots in self.blocks:
             q = len(idx)
             L = np.zeros(idx.shape)

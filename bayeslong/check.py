@@ -37,7 +37,6 @@ STATISTICS = ("mean", "sd", "lag1_cor", "rising")
 #: Quantiles reported for replicated statistics and unit bands (the 50% and 90% central bands).
 QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 
-_MOMENT_DRAWS: dict = {}
 _MOMENT_KEYS = ("c", "D", "Sigma", "alpha", "Gamma", "Phi", "cross")
 
 
@@ -64,21 +63,13 @@ def moment_draws(structure: Structure, thetas: np.ndarray) -> dict[str, np.ndarr
 
     Notes
     -----
-    The PyTensor graph of one draw is vectorised over a leading draw axis and compiled once
-    per structure, so the numbers come from the same formulas as the likelihood.
+    The one moment formula (:mod:`bayeslong.moments`) evaluated with its NumPy backend on
+    the stacked draws: the same formulas as the likelihood, with nothing to compile.
     """
-    if structure not in _MOMENT_DRAWS:
-        import pytensor
-        import pytensor.tensor as pt
-        from pytensor.graph.replace import vectorize_graph
+    from bayeslong.moments import NUMPY, implied_moments, latent_moments
 
-        from bayeslong.moments import implied_moments, latent_moments
-
-        theta, thetas_in = pt.dvector("theta"), pt.dmatrix("thetas")
-        outs = list(implied_moments(structure, theta)) + list(latent_moments(structure, theta))
-        _MOMENT_DRAWS[structure] = pytensor.function(
-            [thetas_in], vectorize_graph(outs, {theta: thetas_in}), mode="FAST_COMPILE")
-    values = _MOMENT_DRAWS[structure](np.atleast_2d(np.asarray(thetas, dtype=float)))
+    thetas = np.atleast_2d(np.asarray(thetas, dtype=float))
+    values = [*implied_moments(structure, thetas, NUMPY), *latent_moments(structure, thetas, NUMPY)]
     return dict(zip(_MOMENT_KEYS, values, strict=True))
 
 

@@ -275,30 +275,6 @@ def warn_convergence(table: pd.DataFrame, *, stacklevel: int = 3) -> None:
 # --------------------------------------------------------------------------------------------
 # per-unit log-likelihood
 # --------------------------------------------------------------------------------------------
-_MOMENTS_BATCH: dict = {}
-
-
-def _moments_batch_function(structure: Structure):
-    """Compiled ``theta (S, p) -> (c (S, Y), D (S, Y, W), Sigma (S, Y, Y))``.
-
-    :func:`bayeslong.moments.implied_moments` vectorised over draws, compiled once per
-    structure.
-    """
-    if structure not in _MOMENTS_BATCH:
-        import pytensor
-        import pytensor.tensor as pt
-        from pytensor.graph.replace import vectorize_graph
-
-        from bayeslong.moments import implied_moments
-
-        theta = pt.dvector("theta")
-        outs = implied_moments(structure, theta)
-        batch = pt.dmatrix("theta_batch")
-        outs_b = vectorize_graph(list(outs), replace={theta: batch})
-        _MOMENTS_BATCH[structure] = pytensor.function([batch], outs_b, on_unused_input="ignore")
-    return _MOMENTS_BATCH[structure]
-
-
 def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | None = None) -> np.ndarray:
     """Log density of each unit's observed outcomes at each draw, shape (S, N).
 
@@ -313,21 +289,21 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
 
     Notes
     -----
-    The implied moments (c, D, Sigma) of every draw come from the one PyTensor graph
-    (:func:`bayeslong.moments.implied_moments`, vectorised over draws). Units are grouped
-    by missing-data pattern; for the observed entries o of a pattern, with Sigma_oo = L L',
+    The implied moments (c, D, Sigma) of every draw come from the one moment formula
+    (:func:`bayeslong.moments.implied_moments`, NumPy backend, vectorised over draws).
+    Units are grouped by missing-data pattern; for the observed entries o of a pattern, with Sigma_oo = L L',
 
         log p(y_io | w_i) = -1/2 (q log 2 pi + 2 sum log diag L + |L^-1 (y_io - c_o - D_o w_i)|^2),
 
     evaluated by :func:`bayeslong.likelihood.mvn_logpdf` with NumPy's stacked Cholesky
-    and solves (no Python loop over units or draws). This is the per-unit form of :func:`bayeslong.likelihood.pattern_loglik`; the
-    tests check both against ``scipy.stats.multivariate_normal``. It replaced the per-unit
+    factors (no Python loop over units or draws). This is the per-unit form of
+    :func:`bayeslong.likelihood.pattern_loglik`; the tests check both against ``scipy.stats.multivariate_normal``. It replaced the per-unit
     call of ``pattern_loglik`` (one pattern per unit), whose batched triangular solves run
     as a Python loop and cost 186 s for N = 10,000 and 1,000 draws (``bench/n_scaling.py``).
     """
     from bayeslong.likelihood import mvn_logpdf
+    from bayeslong.moments import NUMPY, implied_moments
 
-    f = _moments_batch_function(structure)
     theta = np.atleast_2d(np.asarray(theta, dtype=float))
     ys = panel.outcome_matrix()
     w = panel.covariate_matrix()
@@ -339,7 +315,7 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
     groups = [(np.flatnonzero(patterns.unit_pattern == p), patterns.masks[p])
               for p in range(patterns.n_patterns)]
     for start in range(0, len(theta), chunk):
-        c, D, Sigma = f(theta[start:start + chunk])
+        c, D, Sigma = implied_moments(structure, theta[start:start + chunk], NUMPY)
         mean = c[:, None, :] + np.einsum("uw,syw->suy", w, D)  # (S, N, Y)
         for units, o in groups:
             out[start:start + chunk][:, units] = mvn_logpdf(

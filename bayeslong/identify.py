@@ -19,16 +19,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import pytensor
-import pytensor.tensor as pt
 
 from bayeslong._threads import single_thread
 from bayeslong._transform import Unconstrained
-from bayeslong.moments import implied_moments
+from bayeslong.moments import moment_jacobian
 from bayeslong.spec import Spec
 from bayeslong.structure import Structure, structure_for
 
-_JACOBIAN: dict = {}
 _RESULTS: dict = {}
 
 
@@ -57,15 +54,11 @@ class Identification:
         return self.identified
 
 
-def _jacobian_function(structure: Structure):
-    if structure not in _JACOBIAN:
-        theta = pt.dvector("theta")
-        c, D, Sigma = implied_moments(structure, theta)
-        rows, cols = np.tril_indices(len(structure.observed))
-        moments = pt.concatenate([c, D.ravel(), Sigma[rows, cols]])
-        jac = pytensor.gradient.jacobian(moments, theta)
-        _JACOBIAN[structure] = pytensor.function([theta], jac, mode="FAST_COMPILE")
-    return _JACOBIAN[structure]
+def _moment_jacobian(structure: Structure, theta) -> np.ndarray:
+    """d(c, vec D, vech Sigma)/d theta, shape (n_moments, n_params), exact (complex step)."""
+    _, (dc, dD, dS) = moment_jacobian(structure, theta)
+    rows, cols = np.tril_indices(len(structure.observed))
+    return np.concatenate([dc, dD.reshape(len(dc), -1), dS[:, rows, cols]], axis=1).T
 
 
 def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 1e-8) -> Identification:
@@ -100,14 +93,13 @@ def _identify(spec, panel, *, points, seed, tol) -> Identification:
     from bayeslong.ml import start_values
 
     structure = structure_for(spec, panel)
-    jac = _jacobian_function(structure)
     tr = Unconstrained(structure)
     rng = np.random.default_rng(seed)
     u0 = tr.from_natural(start_values(structure, panel))
     best = None
     for _ in range(points):
         u = u0 + rng.normal(0.0, 0.5, size=u0.shape)
-        J = np.asarray(jac(tr.to_natural(u)))
+        J = _moment_jacobian(structure, tr.to_natural(u))
         J = J / np.maximum(np.linalg.norm(J, axis=0), 1e-300)
         _, s, vt = np.linalg.svd(J, full_matrices=True)
         rank = int(np.sum(s > tol * s.max()))

@@ -25,6 +25,8 @@ In Marcoulides & Schumacker (eds.), Advanced Structural Equation Modeling (patte
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 import pytensor.tensor as pt
 
@@ -80,7 +82,9 @@ def mvn_logpdf(x, mean, cov) -> np.ndarray:
     x, mean, cov = (np.asarray(a, dtype=float) for a in (x, mean, cov))
     chol = np.linalg.cholesky(cov)
     r = x - mean
-    z = np.linalg.solve(chol, r[..., None])[..., 0]
+    # invert each factor once at its own shape, then broadcast a product over the units:
+    # a broadcast solve would copy the factor once per unit
+    z = (np.linalg.inv(chol) @ r[..., None])[..., 0]
     logdet = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
     return -0.5 * (r.shape[-1] * np.log(2.0 * np.pi) + logdet + np.sum(z**2, axis=-1))
 
@@ -102,14 +106,97 @@ def pattern_arrays(patterns):
             np.asarray(patterns.masks, dtype=float))
 
 
-_LOGLIK: dict = {}
+def loglik_terms(c, D, Sigma, counts, cross, masks):
+    """NumPy value of :func:`pattern_loglik` summed over patterns, and its gradient.
+
+    The same batched, masked computation as :func:`pattern_loglik`, evaluated on arrays,
+    with the analytic derivatives with respect to the moments (Magnus & Neudecker 1999,
+    ch. 15): with W_p = Sigma_oo^-1 embedded in zeros (a Y x Y matrix),
+
+        dL/dSigma = 1/2 sum_p (W_p R_p W_p - n_p W_p)
+        dL/dA     = -sum_p W_p A M_p,  so dL/dc = (sum_p W_p A M_p)[:, 0] and
+                                           dL/dD = (sum_p W_p A M_p)[:, 1:1+W].
+
+    Returns
+    -------
+    loglik : float
+        -inf when a pattern's covariance is not positive definite or not finite.
+    grad_c, grad_D, grad_Sigma : numpy arrays shaped like c, D, Sigma (None at -inf)
+
+    References
+    ----------
+    Magnus, J. R. & Neudecker, H. (1999). Matrix Differential Calculus with Applications in
+    Statistics and Econometrics, rev. ed., ch. 15 (the normal log-likelihood). Wiley.
+    """
+    n_y = Sigma.shape[0]
+    eye = np.eye(n_y)
+    if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(c)) and np.all(np.isfinite(D))):
+        return -np.inf, None, None, None
+    A = np.concatenate([-c[:, None], -D, eye], axis=1)  # (Y, U)
+    AM = A @ cross  # (P, Y, U)
+    R = AM @ A.T  # (P, Y, Y)
+    complete = bool(masks.all())  # no masking needed (the common case of complete waves)
+    if complete:
+        S = Sigma[None]
+    else:
+        both = masks[:, :, None] * masks[:, None, :]
+        S = Sigma * both + eye * (1.0 - masks)[:, None, :]
+    try:
+        chol = np.linalg.cholesky(S)
+    except np.linalg.LinAlgError:
+        return -np.inf, None, None, None
+    pivots = np.diagonal(chol, axis1=1, axis2=2)
+    if pivots.min() < 1e-100:
+        return -np.inf, None, None, None
+    logdet = 2.0 * np.sum(np.log(pivots), axis=1)
+    W = np.linalg.inv(S)  # Sigma_oo^-1 in the observed block, 0 elsewhere
+    if not complete:
+        W = W * both
+    q = masks.sum(axis=1)
+    loglik = float(np.sum(-0.5 * counts * (q * LOG_2PI + logdet)) - 0.5 * np.sum(W * R))
+    WAM = np.sum(W @ AM, axis=0)  # (Y, U)
+    grad_S = 0.5 * np.sum(W @ R @ W - counts[:, None, None] * W, axis=0)
+    return loglik, WAM[:, 0], WAM[:, 1:1 + D.shape[1]], grad_S
+
+
+def loglik_and_grad(structure, theta, counts, cross, masks):
+    """Total log-likelihood at ``theta`` and its gradient, in NumPy (nothing to compile).
+
+    The moments and their Jacobian come from :func:`bayeslong.moments.moment_jacobian`
+    (the one moment formula, exact complex-step derivatives); the likelihood and its
+    derivatives in the moments from :func:`loglik_terms`. The chain rule joins them.
+    Returns ``(-inf, zeros)`` where the likelihood is not defined.
+    """
+    from bayeslong.moments import moment_jacobian
+
+    (c, D, Sigma), (dc, dD, dS) = moment_jacobian(structure, theta)
+    loglik, gc, gD, gS = loglik_terms(c, D, Sigma, counts, cross, masks)
+    if not np.isfinite(loglik):
+        return -np.inf, np.zeros(len(theta))
+    grad = dc @ gc + np.einsum("pyw,yw->p", dD, gD) + np.einsum("pyz,yz->p", dS, gS)
+    return loglik, grad
 
 
 def loglik_function(structure):
-    """Compiled ``f(theta, counts, cross, masks) -> (loglik, gradient)``.
+    """``f(theta, counts, cross, masks) -> (loglik, gradient)`` in NumPy.
 
-    Compiled once per structure; data are inputs, so every panel of the same design
-    reuses it (DESIGN section 2).
+    What maximum likelihood and the Laplace approximation call: no compilation, so the
+    first fit in a fresh process costs no more than the next. The sampler uses the
+    PyTensor graph of :func:`pattern_loglik` instead (:func:`compiled_loglik_function`
+    compiles it the same way); tests hold both to ``scipy.stats.multivariate_normal``.
+    """
+    return partial(loglik_and_grad, structure)
+
+
+_LOGLIK: dict = {}
+
+
+def compiled_loglik_function(structure):
+    """Compiled PyTensor ``f(theta, counts, cross, masks) -> (loglik, gradient)``.
+
+    The graph the sampler differentiates (:func:`pattern_loglik` on
+    :func:`bayeslong.moments.implied_moments`), compiled once per structure; data are inputs,
+    so every panel of the same design reuses it (DESIGN section 2).
     """
     import pytensor
 

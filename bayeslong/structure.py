@@ -81,6 +81,24 @@ class Structure:
         return np.array(sorted({int(i) for b in self.blocks for i in np.diag(b.index) if i >= 0}),
                         dtype=np.int64)
 
+    @cached_property
+    def path_depth(self) -> int:
+        """Smallest k with B^k = 0 for every value of the parameters (1 when B is zero).
+
+        The longest chain of regressions among the latents plus one; it bounds the series
+        (I - B)^-1 = I + B + ... + B^(k-1) (:func:`bayeslong.moments._total_effects`).
+        """
+        m = self.matrices["B"]
+        pattern = ((m.index >= 0) | (m.fixed != 0)).astype(np.int64)
+        power, k = pattern, 1
+        while power.any():
+            if k > len(pattern):
+                raise SpecError(f"model '{self.spec.name}': the latent regressions form a loop "
+                                "(the model is not recursive)")
+            power = np.minimum(power @ pattern, 1)
+            k += 1
+        return k
+
     def fill(self, theta: np.ndarray, which: str) -> np.ndarray:
         """Numeric matrix ``which`` at parameter vector ``theta`` (NumPy; for checks and starts)."""
         m = self.matrices[which]

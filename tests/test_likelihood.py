@@ -8,7 +8,8 @@ import pytest
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.likelihood import loglik_function, pattern_arrays, pattern_loglik, unit_cross
+from bayeslong.likelihood import (compiled_loglik_function, loglik_function, pattern_arrays,
+                                  pattern_loglik, unit_cross)
 from bayeslong.moments import moments_at
 from bayeslong.structure import structure_for
 
@@ -37,13 +38,18 @@ def _random_theta(structure, seed=0):
     return Unconstrained(structure).to_natural(rng.normal(0, 0.5, structure.n_params))
 
 
+# the NumPy engine (maximum likelihood) and the compiled PyTensor graph (the sampler)
+ENGINES = {"numpy": loglik_function, "pytensor": compiled_loglik_function}
+
+
+@pytest.mark.parametrize("engine_name", list(ENGINES))
 @pytest.mark.parametrize("name", ["alt", "linear-growth", "level-lag"])
-def test_loglik_equals_sum_of_scipy_logpdf_with_missing_waves(name):
+def test_loglik_equals_sum_of_scipy_logpdf_with_missing_waves(name, engine_name):
     panel = _panel_with_gaps()
     assert panel.patterns().n_patterns > 3  # several missing-data patterns in play
     s = structure_for(bl.model(name), panel)
     theta = _random_theta(s, seed=1)
-    engine = loglik_function(s)(theta, *pattern_arrays(panel.patterns()))[0]
+    engine = ENGINES[engine_name](s)(theta, *pattern_arrays(panel.patterns()))[0]
     # Reference: SciPy's multivariate normal on each unit's observed entries, with the
     # conditional mean c + D w_i (independent of the trace/cross-product formulation).
     c, D, Sigma = moments_at(s, theta)
@@ -74,14 +80,45 @@ def test_unit_terms_sum_to_total_and_match_scipy():
         stats.multivariate_normal.logpdf(y[o], (c + D @ w)[o], Sigma[np.ix_(o, o)]), rel=1e-10)
 
 
-def test_gradient_matches_finite_differences():
+@pytest.mark.parametrize("engine_name", list(ENGINES))
+def test_gradient_matches_finite_differences(engine_name):
     panel = _panel_with_gaps(seed=7)
     s = structure_for(bl.model("alt"), panel)
     theta = _random_theta(s, seed=3)
-    f = loglik_function(s)
+    f = ENGINES[engine_name](s)
     data = pattern_arrays(panel.patterns())
     _, g = f(theta, *data)
     h = 1e-6
     fd = np.array([(f(theta + h * e, *data)[0] - f(theta - h * e, *data)[0]) / (2 * h)
                    for e in np.eye(len(theta))])
     np.testing.assert_allclose(g, fd, rtol=1e-5, atol=1e-5)  # central differences, O(h^2)
+
+
+@pytest.mark.parametrize("name", ["alt", "random-effects", "ri-clpm"])
+def test_numpy_and_pytensor_engines_agree(name):
+    # the analytic NumPy gradient (moment Jacobian by complex step) against PyTensor's
+    # reverse-mode gradient of the sampler's graph, at a random admissible point
+    if name == "ri-clpm":
+        rng = np.random.default_rng(11)
+        df = pd.DataFrame({"id": np.repeat(np.arange(30), 5), "t": np.tile(np.arange(5), 30),
+                           "y": rng.normal(size=150), "v": rng.normal(size=150)})
+        df.loc[rng.uniform(size=150) < 0.15, "v"] = np.nan
+        panel = bl.Panel.from_long(df, unit="id", wave="t", outcomes=["y", "v"])
+    else:
+        panel = _panel_with_gaps(seed=9)
+    s = structure_for(bl.model(name), panel)
+    theta = _random_theta(s, seed=4)
+    data = pattern_arrays(panel.patterns())
+    ll_np, g_np = loglik_function(s)(theta, *data)
+    ll_pt, g_pt = compiled_loglik_function(s)(theta, *data)
+    assert ll_np == pytest.approx(float(ll_pt), rel=1e-12)
+    np.testing.assert_allclose(g_np, g_pt, rtol=1e-8, atol=1e-8 * np.abs(g_pt).max())
+
+
+def test_numpy_engine_is_minus_inf_off_the_parameter_space():
+    panel = _panel_with_gaps(seed=2)
+    s = structure_for(bl.model("linear-growth"), panel)
+    theta = _random_theta(s, seed=0)
+    theta[s.position("resid_var")] = -1.0  # a negative variance: no density
+    ll, g = loglik_function(s)(theta, *pattern_arrays(panel.patterns()))
+    assert ll == -np.inf and np.all(g == 0)
