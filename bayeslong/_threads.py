@@ -12,10 +12,19 @@ THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
                "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
 
 
+_CONTROLLER = []
+
+
 @contextmanager
 def single_thread():
-    """Limit BLAS and OpenMP pools to one thread for the duration of the block."""
-    from threadpoolctl import threadpool_limits
+    """Limit BLAS and OpenMP pools to one thread for the duration of the block.
 
-    with threadpool_limits(limits=1):
+    The libraries are looked up once per process (a look-up reads the process's memory
+    maps and took 4 ms, as long as a whole small ML fit's arithmetic).
+    """
+    from threadpoolctl import ThreadpoolController
+
+    if not _CONTROLLER:
+        _CONTROLLER.append(ThreadpoolController())
+    with _CONTROLLER[0].limit(limits=1):
         yield

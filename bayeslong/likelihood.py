@@ -159,6 +159,20 @@ def loglik_terms(c, D, Sigma, counts, cross, masks):
     return loglik, WAM[:, 0], WAM[:, 1:1 + D.shape[1]], grad_S
 
 
+def _with_jacobian(structure, theta, counts, cross, masks):
+    # loglik, gradient in theta (chain rule through the exact moment Jacobian), the
+    # Jacobian itself and Sigma; the gradient is None where the likelihood is -inf
+    from bayeslong.moments import moment_jacobian
+
+    (c, D, Sigma), jac = moment_jacobian(structure, theta)
+    loglik, gc, gD, gS = loglik_terms(c, D, Sigma, counts, cross, masks)
+    if not np.isfinite(loglik):
+        return -np.inf, None, jac, Sigma
+    dc, dD, dS = jac
+    grad = dc @ gc + np.einsum("pyw,yw->p", dD, gD) + np.einsum("pyz,yz->p", dS, gS)
+    return loglik, grad, jac, Sigma
+
+
 def loglik_and_grad(structure, theta, counts, cross, masks):
     """Total log-likelihood at ``theta`` and its gradient, in NumPy (nothing to compile).
 
@@ -167,14 +181,55 @@ def loglik_and_grad(structure, theta, counts, cross, masks):
     derivatives in the moments from :func:`loglik_terms`. The chain rule joins them.
     Returns ``(-inf, zeros)`` where the likelihood is not defined.
     """
-    from bayeslong.moments import moment_jacobian
+    loglik, grad, _, _ = _with_jacobian(structure, theta, counts, cross, masks)
+    return (loglik, grad) if grad is not None else (-np.inf, np.zeros(len(theta)))
 
-    (c, D, Sigma), (dc, dD, dS) = moment_jacobian(structure, theta)
-    loglik, gc, gD, gS = loglik_terms(c, D, Sigma, counts, cross, masks)
-    if not np.isfinite(loglik):
-        return -np.inf, np.zeros(len(theta))
-    grad = dc @ gc + np.einsum("pyw,yw->p", dD, gD) + np.einsum("pyz,yz->p", dS, gS)
-    return loglik, grad
+
+def expected_information(dc, dD, dS, Sigma, counts, cross, masks) -> np.ndarray:
+    """Expected (Fisher) information of theta for the pattern likelihood, given w.
+
+    For the units of pattern p with observed entries o, mean mu_i = c + D w_i and
+    W_p = Sigma_oo^-1 embedded in zeros (Jennrich & Sampson 1976; Lee & Jennrich 1979):
+
+        I_kl = sum_p [ tr(W_p Q_k X_p Q_l') + n_p / 2 tr(W_p dSigma_k W_p dSigma_l) ]
+
+    with Q_k = [dc_k, dD_k] the derivative of (c, D) and X_p = sum_i (1, w_i)(1, w_i)' the
+    covariate block of the pattern's cross-products.
+
+    Parameters
+    ----------
+    dc, dD, dS : (p, Y), (p, Y, W), (p, Y, Y) derivatives of the moments
+        (:func:`bayeslong.moments.moment_jacobian`).
+
+    References
+    ----------
+    Jennrich, R. I. & Sampson, P. F. (1976). Newton-Raphson and related algorithms for
+    maximum likelihood variance component estimation. Technometrics 18(1), 11-17.
+    Lee, S.-Y. & Jennrich, R. I. (1979). A study of algorithms for covariance structure
+    analysis with specific comparisons using factor analysis. Psychometrika 44(1), 99-113.
+    """
+    n_y, n_w = Sigma.shape[0], dD.shape[-1]
+    eye = np.eye(n_y)
+    both = masks[:, :, None] * masks[:, None, :]
+    W = np.linalg.inv(Sigma * both + eye * (1.0 - masks)[:, None, :]) * both  # (P, Y, Y)
+    Q = np.concatenate([dc[..., None], dD], axis=-1)  # (p, Y, 1+W)
+    X = cross[:, :1 + n_w, :1 + n_w]  # (P, 1+W, 1+W)
+    WQ = np.einsum("Pyz,kzu->Pkyu", W, Q)
+    info = np.einsum("Pkyu,Puv,lyv->kl", WQ, X, Q, optimize=True)
+    WS = np.einsum("Pyz,kzx->Pkyx", W, dS)
+    info += 0.5 * np.einsum("P,Pkab,Plba->kl", counts, WS, WS, optimize=True)
+    return 0.5 * (info + info.T)
+
+
+def loglik_grad_information(structure, theta, counts, cross, masks):
+    """``(loglik, gradient, expected information)`` at ``theta`` (NumPy; for Fisher scoring).
+
+    ``(-inf, None, None)`` where the likelihood is not defined.
+    """
+    loglik, grad, (dc, dD, dS), Sigma = _with_jacobian(structure, theta, counts, cross, masks)
+    if grad is None:
+        return -np.inf, None, None
+    return loglik, grad, expected_information(dc, dD, dS, Sigma, counts, cross, masks)
 
 
 def loglik_function(structure):

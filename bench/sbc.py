@@ -141,7 +141,7 @@ def main(argv=None):
         chi2, p = stats.chisquare(counts)
         lo, hi = stats.binom.ppf([0.005, 0.995], R, 1 / args.bins)
         ax.bar(np.arange(args.bins), counts, width=0.9, color="tab:blue")
-        ax.axhspan(lo, hi, color="grey", alpha=0.3, label="99% band, uniform")
+        ax.axhspan(lo, hi, color="grey", alpha=0.3, zorder=0, label="99% band, uniform")
         ax.set_title(f"{name}: chi2 = {chi2:.1f}, p = {p:.3f}")
         ax.set_xlabel(f"rank bin ({args.bins} bins of 0..{L})")
         rows.append({"parameter": name, "replications": R, "chi2": chi2, "df": args.bins - 1,

@@ -122,3 +122,30 @@ def test_numpy_engine_is_minus_inf_off_the_parameter_space():
     theta[s.position("resid_var")] = -1.0  # a negative variance: no density
     ll, g = loglik_function(s)(theta, *pattern_arrays(panel.patterns()))
     assert ll == -np.inf and np.all(g == 0)
+
+
+def test_expected_information_equals_observed_at_expected_cross_products():
+    # A fact of the Gaussian likelihood: when every pattern's cross-products equal their
+    # expectation (R_p = n_p Sigma_oo, mean residual 0), the terms of the Hessian that carry
+    # residuals vanish and -Hessian equals the expected (Fisher) information exactly.
+    from bayeslong.likelihood import expected_information
+    from bayeslong.ml import _hessian
+    from bayeslong.moments import moment_jacobian
+
+    panel = _panel_with_gaps(seed=4)
+    s = structure_for(bl.model("alt"), panel)
+    theta = _random_theta(s, seed=5)
+    counts, cross, masks = pattern_arrays(panel.patterns())
+    (c, D, Sigma), (dc, dD, dS) = moment_jacobian(s, theta)
+    n_w = D.shape[1]
+    X = cross[:, :1 + n_w, :1 + n_w]  # keep each pattern's covariate moments
+    B = np.concatenate([c[:, None], D], axis=1)  # E[y | w] = B (1, w)
+    expected = cross.copy()
+    expected[:, 1 + n_w:, :1 + n_w] = np.einsum("yu,Puv->Pyv", B, X)
+    expected[:, :1 + n_w, 1 + n_w:] = np.swapaxes(expected[:, 1 + n_w:, :1 + n_w], 1, 2)
+    expected[:, 1 + n_w:, 1 + n_w:] = (counts[:, None, None] * Sigma
+                                       + np.einsum("yu,Puv,zv->Pyz", B, X, B))
+    data = (counts, expected, masks)
+    info = expected_information(dc, dD, dS, Sigma, *data)
+    H = _hessian(loglik_function(s), theta, data)
+    np.testing.assert_allclose(info, -H, rtol=1e-5, atol=1e-6 * np.abs(info).max())
