@@ -4,6 +4,8 @@ The public API, nothing else (see DESIGN section 5).
 """
 
 import os as _os
+import sys as _sys
+import types as _types
 
 # PyTensor looks for a BLAS to link its C code against and warns when a pip install has
 # none; the matrices here are small, so NumPy's C-API fallback serves. Saying so up front
@@ -12,34 +14,57 @@ if "blas__ldflags" not in _os.environ.get("PYTENSOR_FLAGS", ""):
     _os.environ["PYTENSOR_FLAGS"] = ",".join(
         f for f in (_os.environ.get("PYTENSOR_FLAGS", ""), "blas__ldflags=") if f)
 
-# --- classes ---------------------------------------------------------------------------
+# The data, model and maximum-likelihood side is imported at once; it needs NumPy, pandas
+# and SciPy only. Everything that needs PyMC or ArviZ (several seconds to import) loads on
+# first use, so `bayeslong models`, `check-data`, `identify` and `fit_ml` start quickly.
 from bayeslong.data import Panel, Patterns
-from bayeslong.spec import Spec
-from bayeslong.ml import MLResult
-from bayeslong.identify import Identification
-from bayeslong.fit import Fit
-from bayeslong.priors import Prior, PriorSet
-from bayeslong.study import Study, StudyResults
-from bayeslong.compare import ForecastScore
-from bayeslong.simulate import Simulation
-from bayeslong.batch import Task, TaskResult, BatchResult
-from bayeslong.sensitivity import LagSensitivity
+from bayeslong.spec import Spec, catalog, model, load_model
+from bayeslong.ml import MLResult, fit_ml
+from bayeslong.identify import Identification, identify
 
-# --- functions -------------------------------------------------------------------------
-from bayeslong.spec import catalog, model, load_model
-from bayeslong.ml import fit_ml
-from bayeslong.identify import identify
-from bayeslong.fit import fit, load_fit
-from bayeslong.build import build_model
-from bayeslong.priors import prior_predictive
-from bayeslong.study import load_study, run_study
-from bayeslong.report import write_report
-from bayeslong.compare import compare, explain_comparison, forecast_score, pareto_k
-from bayeslong.check import ppc, replicate, trajectories
-from bayeslong.plots import plot_compare, plot_ppc, plot_trajectories
-from bayeslong.simulate import simulate
-from bayeslong.batch import run_many
-from bayeslong.sensitivity import lag_sensitivity, plan, power_scaling
+_LAZY = {
+    "Fit": "fit", "fit": "fit", "load_fit": "fit",
+    "Prior": "priors", "PriorSet": "priors", "prior_predictive": "priors",
+    "Study": "study", "StudyResults": "study", "load_study": "study", "run_study": "study",
+    "ForecastScore": "compare", "compare": "compare", "explain_comparison": "compare",
+    "forecast_score": "compare", "pareto_k": "compare",
+    "Simulation": "simulate", "simulate": "simulate",
+    "Task": "batch", "TaskResult": "batch", "BatchResult": "batch", "run_many": "batch",
+    "LagSensitivity": "sensitivity", "lag_sensitivity": "sensitivity", "plan": "sensitivity",
+    "power_scaling": "sensitivity",
+    "build_model": "build",
+    "write_report": "report",
+    "ppc": "check", "replicate": "check", "trajectories": "check",
+    "plot_compare": "plots", "plot_ppc": "plots", "plot_trajectories": "plots",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"bayeslong.{_LAZY[name]}"), name)
+        globals()[name] = value  # later look-ups skip this hook
+        return value
+    raise AttributeError(f"module 'bayeslong' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
+
+
+class _Package(_types.ModuleType):
+    # Importing a submodule sets it as an attribute of the package; for `fit`, `compare`
+    # and `simulate` that would hide the function of the same name (bl.fit would become
+    # the module). Such module attributes are not stored; the function loads on first use.
+    def __setattr__(self, name, value):
+        if name in _LAZY and isinstance(value, _types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+_sys.modules[__name__].__class__ = _Package
+
 
 # --- errors ----------------------------------------------------------------------------
 from bayeslong.errors import (

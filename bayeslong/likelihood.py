@@ -28,7 +28,6 @@ from __future__ import annotations
 from functools import partial
 
 import numpy as np
-import pytensor.tensor as pt
 
 LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -44,6 +43,8 @@ def pattern_loglik(c, D, Sigma, counts, cross, masks):
     cross : (P, U, U) tensor, augmented cross-products per pattern
     masks : (P, Y) tensor of 0/1, observed outcome entries per pattern
     """
+    import pytensor.tensor as pt  # the numeric paths below never need PyTensor
+
     n_y = Sigma.shape[0]
     eye = pt.eye(n_y)
     A = pt.concatenate([-c[:, None], -D, eye], axis=1)  # (Y, U)
@@ -254,6 +255,7 @@ def compiled_loglik_function(structure):
     so every panel of the same design reuses it (DESIGN section 2).
     """
     import pytensor
+    import pytensor.tensor as pt
 
     from bayeslong.moments import implied_moments
 

@@ -1,9 +1,12 @@
-"""Maximum likelihood: SciPy's optimiser on the compiled PyTensor log-likelihood.
+"""Maximum likelihood: Fisher scoring (and SciPy's L-BFGS-B) on the NumPy log-likelihood.
 
 The ML fit gives point estimates, start values for sampling, and the reference checks
-against published and library results. Optimisation runs in an unconstrained space
-(log-Cholesky covariance blocks) from several starts; standard errors come from the
-observed information in the natural parameters.
+against published and library results. From each of several starts, Fisher scoring
+(expected information from the exact moment Jacobian, steps halved to keep covariance
+blocks positive definite) runs first; where it stalls, L-BFGS-B in an unconstrained space
+(log-Cholesky covariance blocks) takes its place. Nothing is compiled, so the first fit in
+a process costs what the next does. Standard errors come from the observed information in
+the natural parameters.
 """
 
 from __future__ import annotations
@@ -299,7 +302,7 @@ def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
 
 
 def _hessian(f, theta, data) -> np.ndarray:
-    """Hessian of the log-likelihood by central differences of the compiled gradient."""
+    """Hessian of the log-likelihood by central differences of the analytic gradient."""
     p = len(theta)
     H = np.zeros((p, p))
     for i in range(p):

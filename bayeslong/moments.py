@@ -34,7 +34,6 @@ from functools import lru_cache
 from types import SimpleNamespace
 
 import numpy as np
-import pytensor.tensor as pt
 
 from bayeslong.structure import Structure
 
@@ -61,10 +60,18 @@ def _np_matrices(structure: Structure, theta) -> dict:
 
 
 def _pt_matrices(structure: Structure, theta) -> dict:
+    import pytensor.tensor as pt
+
     theta = pt.as_tensor_variable(theta)
     ext = pt.concatenate([theta, pt.zeros((1,), dtype=theta.dtype)])
     return {name: pt.as_tensor_variable(m.fixed) + ext[m.index]
             for name, m in structure.matrices.items()}
+
+
+def _pt_eye(n: int):
+    import pytensor.tensor as pt  # imported on first use: numeric work never needs PyTensor
+
+    return pt.eye(n)
 
 
 #: NumPy backend: ``theta`` may carry leading batch axes (..., n_params).
@@ -80,7 +87,7 @@ PYTENSOR = SimpleNamespace(
     matrices=_pt_matrices,
     mv=lambda M, v: M @ v,
     t=lambda X: X.T,
-    eye=pt.eye,
+    eye=_pt_eye,
 )
 
 
