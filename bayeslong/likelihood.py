@@ -215,10 +215,14 @@ def expected_information(dc, dD, dS, Sigma, counts, cross, masks) -> np.ndarray:
     W = np.linalg.inv(Sigma * both + eye * (1.0 - masks)[:, None, :]) * both  # (P, Y, Y)
     Q = np.concatenate([dc[..., None], dD], axis=-1)  # (p, Y, 1+W)
     X = cross[:, :1 + n_w, :1 + n_w]  # (P, 1+W, 1+W)
-    WQ = np.einsum("Pyz,kzu->Pkyu", W, Q)
-    info = np.einsum("Pkyu,Puv,lyv->kl", WQ, X, Q, optimize=True)
-    WS = np.einsum("Pyz,kzx->Pkyx", W, dS)
-    info += 0.5 * np.einsum("P,Pkab,Plba->kl", counts, WS, WS, optimize=True)
+    k = len(dc)
+    # products as flat matrix products (einsum's path search costs more than the sums here)
+    WQX = W[:, None] @ Q[None] @ X[:, None]  # (P, p, Y, 1+W)
+    info = WQX.transpose(1, 0, 2, 3).reshape(k, -1) @ np.broadcast_to(
+        Q[None], WQX.shape[:1] + Q.shape).transpose(1, 0, 2, 3).reshape(k, -1).T
+    WS = W[:, None] @ dS[None]  # (P, p, Y, Y)
+    WSn = (WS * counts[:, None, None, None]).transpose(1, 0, 2, 3).reshape(k, -1)
+    info += 0.5 * WSn @ WS.transpose(1, 0, 3, 2).reshape(k, -1).T
     return 0.5 * (info + info.T)
 
 
