@@ -28,7 +28,7 @@ def unit_loglik(structure: Structure, panel, thetas: np.ndarray) -> np.ndarray:
 
     Each unit's observed entries are scored by the normal density of the implied moments,
     vectorised over draws and grouped by missing-data pattern (the tests check it against
-    :func:`bayeslong.likelihood.pattern_loglik` on :func:`unit_cross`).
+    :func:`bayeslong.likelihood.pattern_values` on :func:`unit_cross`).
     """
     mom = moment_draws(structure, np.atleast_2d(thetas))
     ys = panel.outcome_matrix()

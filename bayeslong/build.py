@@ -7,7 +7,8 @@ an LKJ correlation matrix. The parameter vector theta is assembled by
 :func:`bayeslong.priors.assemble_theta`, and every parameter appears in the model under its
 own name (a deterministic where it is not itself a random variable).
 
-The likelihood is ``pm.Potential("loglik", sum_p pattern_loglik_p)`` with the pattern
+The likelihood is ``pm.Potential("loglik", pattern_loglik(...))``, the total over patterns
+(:func:`bayeslong.likelihood.pattern_loglik`, one Op with an analytic gradient), with the pattern
 counts, cross-products and masks as ``pm.Data`` inputs, and all prior hyperparameters in the
 ``pm.Data`` vector ``prior_hyper``: a model of one structure and one set of prior families
 serves every dataset of the same design and every choice of prior values (DESIGN 2).
@@ -130,6 +131,6 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
             if p.target != "value":  # variances and covariances are not themselves RVs
                 pm.Deterministic(p.parameter, theta[i])
         c, D, Sigma = implied_moments(structure, theta)
-        loglik = pattern_loglik(c, D, Sigma, data["counts"], data["cross"], data["masks"])
-        pm.Potential("loglik", pt.sum(loglik))
+        pm.Potential("loglik", pattern_loglik(c, D, Sigma, data["counts"], data["cross"],
+                                              data["masks"]))
     return model

@@ -11,9 +11,12 @@ entries set to 0) and M_p = sum_i u_i u_i' (DESIGN section 2):
 where o are the pattern's observed entries and q_p their number. All patterns are one
 batched computation: a missing entry's row and column of Sigma are replaced by the identity
 and its residual by zero, so its log-determinant term is log 1 = 0 and its trace term 0.
-The graph has the same structure for every dataset of a spec and number of waves, and one
-gradient costs the same whatever the number of units. Per-unit terms (for LOO and WAIC) are
-the same computation with one "pattern" per unit (``counts`` = 1, ``cross`` = u_i u_i').
+The computation has the same structure for every dataset of a spec and number of waves, and
+one gradient costs the same whatever the number of units.
+
+:func:`loglik_terms` evaluates it (with its gradient in the moments) on NumPy arrays, for
+maximum likelihood and, through the Op of :mod:`bayeslong._loglik_op`, for PyMC's sampler;
+nutpie's numba backend runs the same formulas as a compiled loop kernel.
 
 References
 ----------
@@ -34,7 +37,11 @@ LOG_2PI = float(np.log(2.0 * np.pi))
 
 
 def pattern_loglik(c, D, Sigma, counts, cross, masks):
-    """Log-likelihood of each pattern group, shape (P,).
+    """Symbolic total log-likelihood over the patterns (a PyTensor scalar).
+
+    The sampler's likelihood term: one Op (:mod:`bayeslong._loglik_op`) whose value and
+    gradient are :func:`loglik_terms` in PyTensor's C backend and the same formulas as a
+    numba kernel in nutpie's backend.
 
     Parameters
     ----------
@@ -43,34 +50,9 @@ def pattern_loglik(c, D, Sigma, counts, cross, masks):
     cross : (P, U, U) tensor, augmented cross-products per pattern
     masks : (P, Y) tensor of 0/1, observed outcome entries per pattern
     """
-    import pytensor.tensor as pt  # the numeric paths below never need PyTensor
+    from bayeslong._loglik_op import pattern_loglik_total
 
-    n_y = Sigma.shape[0]
-    eye = pt.eye(n_y)
-    A = pt.concatenate([-c[:, None], -D, eye], axis=1)  # (Y, U)
-    R = pt.matmul(pt.matmul(A[None], cross), A.T[None])  # (P, Y, Y)
-    both = masks[:, :, None] * masks[:, None, :]
-    S = Sigma[None] * both + eye[None] * (1.0 - masks)[:, None, :]
-    # log-determinant from the Cholesky factor (PyTensor rewrites a batched log(det) into an
-    # op without batch support; eigenvalues would give NaN gradients at the repeated
-    # eigenvalues of the identity rows of missing entries). A covariance that is not finite
-    # or not positive definite gives NaN here and -inf below, never an exception.
-    bad = pt.any(pt.isnan(S) | pt.isinf(S), axis=(1, 2))[:, None, None]
-    S = pt.switch(bad, eye[None], S)
-    chol = pt.linalg.cholesky(S, on_error="nan")
-    pivots = pt.diagonal(chol, axis1=1, axis2=2)
-    logdet = 2.0 * pt.sum(pt.log(pivots), axis=1)
-    # numerically singular (a variance underflowed to ~0) counts as failed too
-    failed = bad[:, 0, 0] | pt.isnan(logdet) | pt.lt(pt.min(pivots, axis=1), 1e-100)
-    # an exception inside a sampler's log density ends up in its messages, which cannot be
-    # pickled: invert the identity in place of a failed pattern, which scores -inf anyway
-    # (a blend, not a switch: PyTensor lifts the inverse through a switch onto both branches)
-    f = pt.cast(failed, "float64")[:, None, None]
-    trace = pt.sum(pt.linalg.inv(S * (1.0 - f) + eye[None] * f) * (R * both), axis=(1, 2))
-    q = pt.sum(masks, axis=1)
-    loglik = -0.5 * counts * (q * LOG_2PI + logdet) - 0.5 * trace
-    # a covariance that is not positive definite has no density: -inf, never a number
-    return pt.switch(failed, -np.inf, loglik)
+    return pattern_loglik_total(c, D, Sigma, counts, cross, masks)
 
 
 def mvn_logpdf(x, mean, cov) -> np.ndarray:
@@ -78,7 +60,7 @@ def mvn_logpdf(x, mean, cov) -> np.ndarray:
 
     The NumPy form of the Gaussian log density for work after sampling (per-unit terms,
     forecasts, checks), where draws and units are stacked axes; the model itself uses
-    :func:`pattern_loglik`. Both are checked against ``scipy.stats.multivariate_normal``.
+    :func:`loglik_terms`. Both are checked against ``scipy.stats.multivariate_normal``.
     """
     x, mean, cov = (np.asarray(a, dtype=float) for a in (x, mean, cov))
     chol = np.linalg.cholesky(cov)
@@ -94,7 +76,7 @@ def unit_cross(outcomes: np.ndarray, covariates: np.ndarray):
     """Per-unit augmented cross-products and masks (each unit its own pattern).
 
     Returns ``counts`` (N,), ``cross`` (N, U, U) and ``masks`` (N, Y) for
-    :func:`pattern_loglik`, so per-unit terms use the same formula as the total.
+    :func:`pattern_values`, so per-unit terms use the same formula as the total.
     """
     mask = ~np.isnan(outcomes)
     u = np.concatenate([np.ones((len(outcomes), 1)), covariates, np.where(mask, outcomes, 0.0)], axis=1)
@@ -107,32 +89,13 @@ def pattern_arrays(patterns):
             np.asarray(patterns.masks, dtype=float))
 
 
-def loglik_terms(c, D, Sigma, counts, cross, masks):
-    """NumPy value of :func:`pattern_loglik` summed over patterns, and its gradient.
-
-    The same batched, masked computation as :func:`pattern_loglik`, evaluated on arrays,
-    with the analytic derivatives with respect to the moments (Magnus & Neudecker 1999,
-    ch. 15): with W_p = Sigma_oo^-1 embedded in zeros (a Y x Y matrix),
-
-        dL/dSigma = 1/2 sum_p (W_p R_p W_p - n_p W_p)
-        dL/dA     = -sum_p W_p A M_p,  so dL/dc = (sum_p W_p A M_p)[:, 0] and
-                                           dL/dD = (sum_p W_p A M_p)[:, 1:1+W].
-
-    Returns
-    -------
-    loglik : float
-        -inf when a pattern's covariance is not positive definite or not finite.
-    grad_c, grad_D, grad_Sigma : numpy arrays shaped like c, D, Sigma (None at -inf)
-
-    References
-    ----------
-    Magnus, J. R. & Neudecker, H. (1999). Matrix Differential Calculus with Applications in
-    Statistics and Econometrics, rev. ed., ch. 15 (the normal log-likelihood). Wiley.
-    """
+def _pattern_parts(c, D, Sigma, counts, cross, masks):
+    # per-pattern values and the pieces their derivatives need; None where a pattern's
+    # covariance is not finite or not positive definite (no density there)
     n_y = Sigma.shape[0]
     eye = np.eye(n_y)
     if not (np.all(np.isfinite(Sigma)) and np.all(np.isfinite(c)) and np.all(np.isfinite(D))):
-        return -np.inf, None, None, None
+        return None
     A = np.concatenate([-c[:, None], -D, eye], axis=1)  # (Y, U)
     AM = A @ cross  # (P, Y, U)
     R = AM @ A.T  # (P, Y, Y)
@@ -145,19 +108,60 @@ def loglik_terms(c, D, Sigma, counts, cross, masks):
     try:
         chol = np.linalg.cholesky(S)
     except np.linalg.LinAlgError:
-        return -np.inf, None, None, None
+        return None
     pivots = np.diagonal(chol, axis1=1, axis2=2)
     if pivots.min() < 1e-100:
-        return -np.inf, None, None, None
+        return None
     logdet = 2.0 * np.sum(np.log(pivots), axis=1)
     W = np.linalg.inv(S)  # Sigma_oo^-1 in the observed block, 0 elsewhere
     if not complete:
         W = W * both
     q = masks.sum(axis=1)
-    loglik = float(np.sum(-0.5 * counts * (q * LOG_2PI + logdet)) - 0.5 * np.sum(W * R))
+    values = -0.5 * counts * (q * LOG_2PI + logdet) - 0.5 * np.sum(W * R, axis=(1, 2))
+    return values, W, R, AM
+
+
+def pattern_values(c, D, Sigma, counts, cross, masks) -> np.ndarray:
+    """NumPy log-likelihood of each pattern group, shape (P,); all -inf where undefined.
+
+    With :func:`unit_cross` (one pattern per unit) these are the per-unit terms.
+    """
+    parts = _pattern_parts(c, D, Sigma, counts, cross, masks)
+    return parts[0] if parts is not None else np.full(len(counts), -np.inf)
+
+
+def loglik_terms(c, D, Sigma, counts, cross, masks):
+    """NumPy total log-likelihood over patterns, and its gradient in the moments.
+
+    All patterns are one batched computation (see the module notes), with the analytic
+    derivatives with respect to the moments (Magnus & Neudecker 1999, ch. 15): with
+    W_p = Sigma_oo^-1 embedded in zeros (a Y x Y matrix),
+
+        dL/dSigma = 1/2 sum_p (W_p R_p W_p - n_p W_p)
+        dL/dA     = -sum_p W_p A M_p,  so dL/dc = (sum_p W_p A M_p)[:, 0] and
+                                           dL/dD = (sum_p W_p A M_p)[:, 1:1+W].
+
+    Maximum likelihood calls it directly, and the sampler's Op
+    (:mod:`bayeslong._loglik_op`) in PyTensor's C backend.
+
+    Returns
+    -------
+    loglik : float
+        -inf when a pattern's covariance is not positive definite or not finite.
+    grad_c, grad_D, grad_Sigma : numpy arrays shaped like c, D, Sigma (None at -inf)
+
+    References
+    ----------
+    Magnus, J. R. & Neudecker, H. (1999). Matrix Differential Calculus with Applications in
+    Statistics and Econometrics, rev. ed., ch. 15 (the normal log-likelihood). Wiley.
+    """
+    parts = _pattern_parts(c, D, Sigma, counts, cross, masks)
+    if parts is None:
+        return -np.inf, None, None, None
+    values, W, R, AM = parts
     WAM = np.sum(W @ AM, axis=0)  # (Y, U)
     grad_S = 0.5 * np.sum(W @ R @ W - counts[:, None, None] * W, axis=0)
-    return loglik, WAM[:, 0], WAM[:, 1:1 + D.shape[1]], grad_S
+    return float(np.sum(values)), WAM[:, 0], WAM[:, 1:1 + D.shape[1]], grad_S
 
 
 def _with_jacobian(structure, theta, counts, cross, masks):
@@ -251,24 +255,26 @@ def loglik_function(structure):
 _LOGLIK: dict = {}
 
 
-def compiled_loglik_function(structure):
+def compiled_loglik_function(structure, mode: str | None = None):
     """Compiled PyTensor ``f(theta, counts, cross, masks) -> (loglik, gradient)``.
 
     The graph the sampler differentiates (:func:`pattern_loglik` on
-    :func:`bayeslong.moments.implied_moments`), compiled once per structure; data are inputs,
-    so every panel of the same design reuses it (DESIGN section 2).
+    :func:`bayeslong.moments.implied_moments`), compiled once per structure and mode; data
+    are inputs, so every panel of the same design reuses it (DESIGN section 2).
+    ``mode="NUMBA"`` compiles it the way nutpie does (the numba kernel of the Op).
     """
     import pytensor
     import pytensor.tensor as pt
 
     from bayeslong.moments import implied_moments
 
-    if structure not in _LOGLIK:
+    key = (structure, mode)
+    if key not in _LOGLIK:
         theta = pt.dvector("theta")
         counts, cross, masks = pt.dvector("counts"), pt.dtensor3("cross"), pt.dmatrix("masks")
         c, D, Sigma = implied_moments(structure, theta)
-        total = pt.sum(pattern_loglik(c, D, Sigma, counts, cross, masks))
-        _LOGLIK[structure] = pytensor.function(
+        total = pattern_loglik(c, D, Sigma, counts, cross, masks)
+        _LOGLIK[key] = pytensor.function(
             [theta, counts, cross, masks], [total, pytensor.grad(total, theta)],
-            on_unused_input="ignore")
-    return _LOGLIK[structure]
+            on_unused_input="ignore", mode=mode)
+    return _LOGLIK[key]

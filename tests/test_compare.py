@@ -19,7 +19,7 @@ import bayeslong as bl
 from bayeslong._approx import approximate_fit, unit_loglik
 from bayeslong.compare import compare, explain_comparison, extend_draws, last_wave_logpdf, pareto_k
 from bayeslong.errors import DataError, SpecError
-from bayeslong.likelihood import pattern_loglik, unit_cross
+from bayeslong.likelihood import pattern_values, unit_cross
 from bayeslong.moments import moments_at
 from bayeslong.structure import build_structure
 
@@ -87,8 +87,8 @@ def test_table_values_are_arviz_loo_and_waic(alt_fits):
     assert list(table.index) == list(ref.index)
 
 
-def test_stand_in_unit_loglik_equals_engine_pattern_loglik(alt_fits, alt_data):
-    # the stand-in's per-unit terms against the engine's pattern_loglik on unit_cross,
+def test_stand_in_unit_loglik_equals_engine_pattern_values(alt_fits, alt_data):
+    # the stand-in's per-unit terms against the engine's pattern_values on unit_cross,
     # on the data with some entries removed (units with missing waves)
     fit = alt_fits["alt"]
     y = alt_data.y.copy()
@@ -100,7 +100,7 @@ def test_stand_in_unit_loglik_equals_engine_pattern_loglik(alt_fits, alt_data):
     counts, cross, masks = unit_cross(panel.outcome_matrix(), panel.covariate_matrix())
     for s, theta in enumerate(thetas):
         c, D, sigma = moments_at(fit.structure, theta)
-        ref = pattern_loglik(c, D, sigma, counts, cross, masks).eval()
+        ref = pattern_values(c, D, sigma, counts, cross, masks)
         np.testing.assert_allclose(ours[s], ref, rtol=1e-10)  # float rounding only
 
 

@@ -2,14 +2,12 @@
 
 import numpy as np
 import pandas as pd
-import pytensor
-import pytensor.tensor as pt
 import pytest
 from scipy import stats
 
 import bayeslong as bl
 from bayeslong.likelihood import (compiled_loglik_function, loglik_function, pattern_arrays,
-                                  pattern_loglik, unit_cross)
+                                  pattern_values, unit_cross)
 from bayeslong.moments import moments_at
 from bayeslong.structure import structure_for
 
@@ -38,8 +36,10 @@ def _random_theta(structure, seed=0):
     return Unconstrained(structure).to_natural(rng.normal(0, 0.5, structure.n_params))
 
 
-# the NumPy engine (maximum likelihood) and the compiled PyTensor graph (the sampler)
-ENGINES = {"numpy": loglik_function, "pytensor": compiled_loglik_function}
+# the NumPy engine (maximum likelihood), and the sampler's graph compiled by PyTensor's C
+# backend (PyMC's NUTS; the Op calls the NumPy kernel) and by numba (nutpie; the loop kernel)
+ENGINES = {"numpy": loglik_function, "pytensor": compiled_loglik_function,
+           "numba": lambda s: compiled_loglik_function(s, mode="NUMBA")}
 
 
 @pytest.mark.parametrize("engine_name", list(ENGINES))
@@ -65,15 +65,11 @@ def test_unit_terms_sum_to_total_and_match_scipy():
     panel = _panel_with_gaps(seed=5)
     s = structure_for(bl.model("alt"), panel)
     theta = _random_theta(s, seed=2)
-    th = pt.dvector()
-    counts, cross, masks = unit_cross(panel.outcome_matrix(), panel.covariate_matrix())
-    from bayeslong.moments import implied_moments
-
-    f = pytensor.function([th], pattern_loglik(*implied_moments(s, th), counts, cross, masks))
-    per_unit = f(theta)
+    c, D, Sigma = moments_at(s, theta)
+    per_unit = pattern_values(c, D, Sigma, *unit_cross(panel.outcome_matrix(),
+                                                       panel.covariate_matrix()))
     total = loglik_function(s)(theta, *pattern_arrays(panel.patterns()))[0]
     assert per_unit.sum() == pytest.approx(total, rel=1e-10)
-    c, D, Sigma = moments_at(s, theta)
     y, w = panel.outcome_matrix()[7], panel.covariate_matrix()[7]
     o = ~np.isnan(y)
     assert per_unit[7] == pytest.approx(
@@ -110,18 +106,20 @@ def test_numpy_and_pytensor_engines_agree(name):
     theta = _random_theta(s, seed=4)
     data = pattern_arrays(panel.patterns())
     ll_np, g_np = loglik_function(s)(theta, *data)
-    ll_pt, g_pt = compiled_loglik_function(s)(theta, *data)
-    assert ll_np == pytest.approx(float(ll_pt), rel=1e-12)
-    np.testing.assert_allclose(g_np, g_pt, rtol=1e-8, atol=1e-8 * np.abs(g_pt).max())
+    for mode in (None, "NUMBA"):
+        ll_pt, g_pt = compiled_loglik_function(s, mode=mode)(theta, *data)
+        assert ll_np == pytest.approx(float(ll_pt), rel=1e-12)
+        np.testing.assert_allclose(g_np, g_pt, rtol=1e-8, atol=1e-8 * np.abs(g_pt).max())
 
 
-def test_numpy_engine_is_minus_inf_off_the_parameter_space():
+@pytest.mark.parametrize("engine_name", list(ENGINES))
+def test_engines_are_minus_inf_off_the_parameter_space(engine_name):
     panel = _panel_with_gaps(seed=2)
     s = structure_for(bl.model("linear-growth"), panel)
     theta = _random_theta(s, seed=0)
-    theta[s.position("resid_var")] = -1.0  # a negative variance: no density
-    ll, g = loglik_function(s)(theta, *pattern_arrays(panel.patterns()))
-    assert ll == -np.inf and np.all(g == 0)
+    theta[s.position("resid_var")] = -1.0  # a negative variance: no density, no exception
+    ll, g = ENGINES[engine_name](s)(theta, *pattern_arrays(panel.patterns()))
+    assert ll == -np.inf and np.all(np.asarray(g) == 0)
 
 
 def test_expected_information_equals_observed_at_expected_cross_products():
