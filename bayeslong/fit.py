@@ -298,7 +298,7 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
         log p(y_io | w_i) = -1/2 (q log 2 pi + log det Sigma_oo) - 1/2 u_i' (A' W A) u_i,
 
     so for all units and draws at once the quadratic forms are one matrix product of the
-    units' vec(u_i u_i') with the draws' vec(A' W A). This is
+    units' u_i u_i' with the draws' A' W A (upper triangles, off-diagonal terms doubled). This is
     :func:`bayeslong.likelihood.pattern_values` on :func:`~bayeslong.likelihood.unit_cross`,
     batched; the tests check both against ``scipy.stats.multivariate_normal``. Measured at
     N = 10,000 and 1,000 draws: 2.7 s with a stacked Cholesky solve per unit and draw.
@@ -318,11 +318,13 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
         units = np.flatnonzero(patterns.unit_pattern == p)
         o = patterns.masks[p].astype(bool)
         u = np.concatenate([np.ones((len(units), 1)), w[units], ys[units][:, o]], axis=1)
-        groups.append((units, o, (u[:, :, None] * u[:, None, :]).reshape(len(units), -1)))
+        rows, cols = np.triu_indices(u.shape[1])  # symmetric: the upper triangle suffices
+        units = slice(units[0], units[-1] + 1) if np.all(np.diff(units) == 1) else units
+        groups.append((units, o, rows, cols, u[:, rows] * u[:, cols]))
     for start in range(0, len(theta), chunk):
         c, D, Sigma = implied_moments(structure, theta[start:start + chunk], NUMPY)
         S = len(c)
-        for units, o, uu in groups:
+        for units, o, rows, cols, uu in groups:
             q = int(o.sum())
             chol = np.linalg.cholesky(Sigma[:, o][:, :, o])
             logdet = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=1, axis2=2)), axis=1)
@@ -331,8 +333,9 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
                                axis=2)  # (S, q, U)
             LA = Linv @ A
             quad = np.swapaxes(LA, 1, 2) @ LA  # A' W A, (S, U, U)
+            packed = quad[:, rows, cols] * np.where(rows == cols, 1.0, 2.0)
             out[start:start + chunk, units] = (-0.5 * (q * LOG_2PI + logdet)[:, None]
-                                               - 0.5 * quad.reshape(S, -1) @ uu.T)
+                                               - 0.5 * packed @ uu.T)
     return out
 
 
