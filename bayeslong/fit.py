@@ -333,9 +333,10 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
                                axis=2)  # (S, q, U)
             LA = Linv @ A
             quad = np.swapaxes(LA, 1, 2) @ LA  # A' W A, (S, U, U)
-            packed = quad[:, rows, cols] * np.where(rows == cols, 1.0, 2.0)
-            out[start:start + chunk, units] = (-0.5 * (q * LOG_2PI + logdet)[:, None]
-                                               - 0.5 * packed @ uu.T)
+            packed = quad[:, rows, cols] * np.where(rows == cols, -0.5, -1.0)
+            block = packed @ uu.T  # (S, n): -1/2 of each unit's quadratic form
+            block += (-0.5 * (q * LOG_2PI + logdet))[:, None]
+            out[start:start + chunk, units] = block
     return out
 
 
