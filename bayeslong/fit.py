@@ -493,11 +493,11 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     sampler : {"auto", "nutpie", "pymc"}
         ``auto`` is nutpie when it is installed, PyMC's NUTS otherwise. Measured with
         ``bench/sampler_speed.py`` (alt, N = 500, T = 6, 4 chains x 1000 draws, on a
-        2-core machine shared with other jobs): nutpie took 180 s for a first fit (141 s of
-        it compiling with numba, 12 s sampling) and 32 s for a refit of the compiled model
-        (10 s sampling), against 267 s and 205 s with PyMC's NUTS; ESS per second of the lag
-        while sampling was about 80 with nutpie and 6 with PyMC. For a single small fit
-        PyMC's shorter compile can win: pass ``sampler="pymc"``.
+        2-core machine, load 1.6-2.5): nutpie took 58 s for a first fit (51 s of it
+        compiling with numba, its disk cache warm) and 4 s for a refit of the compiled
+        model, against 79 s and 71 s with PyMC's NUTS; ESS per second of the lag, compile
+        included, was 101 with nutpie and 18 with PyMC. On a machine whose numba cache is
+        empty nutpie's first compile takes minutes; ``sampler="pymc"`` avoids it.
     progressbar : bool, default True
     cores : int, optional
         Chains run in parallel (default: min(chains, CPU count)); each uses one BLAS thread.
