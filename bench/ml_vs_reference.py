@@ -1,9 +1,9 @@
 """`fit_ml(linear-growth)` on sleepstudy against statsmodels MixedLM(reml=False), one run.
 
 Measures, for each side:
-- fresh: a new Python process that imports the library and fits once (compile included;
-  PyTensor's on-disk cache of compiled C code is whatever the machine has — run twice to
-  see the cold and the cached case), timed from process start to result;
+- fresh: a new Python process that imports the library and fits once, timed from process
+  start to result (the ML path compiles nothing: NumPy moments and likelihood, Fisher
+  scoring; the first fit pays only Python's own warm-up);
 - warm: repeated fits in one process after a first one (median of 10).
 Prints times and ratios. Targets (issue 2): fresh bayeslong within 2x fresh MixedLM; warm
 bayeslong at least 5x faster than warm MixedLM.
