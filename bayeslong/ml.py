@@ -301,15 +301,23 @@ def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
     return out
 
 
-def _hessian(f, theta, data) -> np.ndarray:
-    """Hessian of the log-likelihood by central differences of the analytic gradient."""
+def _hessian(f, theta, data, grad=None) -> np.ndarray:
+    """Hessian of the log-likelihood by differences of the analytic gradient.
+
+    Central differences by default; given the gradient at ``theta``, forward differences
+    (half the evaluations; relative error about 1e-5, ample for standard errors, which
+    match statsmodels' analytic ones to 1e-5 on sleepstudy, see tests/test_ml.py).
+    """
     p = len(theta)
     H = np.zeros((p, p))
     for i in range(p):
         h = 1e-5 * max(abs(theta[i]), 1e-2)
         e = np.zeros(p)
         e[i] = h
-        H[:, i] = (f(theta + e, *data)[1] - f(theta - e, *data)[1]) / (2 * h)
+        if grad is None:
+            H[:, i] = (f(theta + e, *data)[1] - f(theta - e, *data)[1]) / (2 * h)
+        else:
+            H[:, i] = (f(theta + e, *data)[1] - grad) / h
     return 0.5 * (H + H.T)
 
 
@@ -327,9 +335,9 @@ def _newton_polish(f, theta, data, structure, steps: int = 6):
     unless the steps moved the estimates by less than 1e-7 (relative).
     A step is kept only when it raises the log-likelihood and stays admissible.
     """
-    H = _hessian(f, theta, data)
     start = theta
     ll, g = f(theta, *data)
+    H = _hessian(f, theta, data, grad=g)
     for _ in range(steps):
         try:
             step = np.linalg.solve(H, g)
@@ -346,7 +354,7 @@ def _newton_polish(f, theta, data, structure, steps: int = 6):
             break
     # a Hessian taken a hair away serves the standard errors as well as a new one
     if np.max(np.abs(theta - start)) > 1e-7 * max(1.0, np.max(np.abs(theta))):
-        H = _hessian(f, theta, data)
+        H = _hessian(f, theta, data, grad=g)
     return theta, H
 
 

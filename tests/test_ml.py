@@ -37,8 +37,10 @@ def test_sleepstudy_against_statsmodels_mixedlm(sleepstudy, sleep_ml):
     # the values the issue quotes from the same reference: 10.467286 and 251.405105
     assert sleep_ml.params["slope_mean"] == pytest.approx(10.467286, abs=1e-5)
     assert sleep_ml.params["level_mean"] == pytest.approx(251.405105, abs=1e-5)
-    # standard errors of the fixed effects from the observed information vs statsmodels
-    assert sleep_ml.se["slope_mean"] == pytest.approx(ref.bse["Days"], rel=1e-3)
+    # standard errors of the fixed effects from the observed information vs statsmodels'
+    # analytic Hessian (measured agreement 2e-6 and 4e-6 relative)
+    assert sleep_ml.se["slope_mean"] == pytest.approx(ref.bse["Days"], rel=1e-4)
+    assert sleep_ml.se["level_mean"] == pytest.approx(ref.bse["Intercept"], rel=1e-4)
 
 
 def test_orthodont_linear_growth():
