@@ -29,7 +29,7 @@ from bayeslong.structure import structure_for  # noqa: E402
 ENGINES = {"numpy": loglik_function, "pytensor": compiled_loglik_function}
 
 
-def time_eval(panel, engine, repeats=200):
+def time_eval(panel, engine, repeats=1000):
     s = structure_for(bl.model("alt", residuals="equal"), panel)
     f = ENGINES[engine](s)
     theta = np.array([ALT_VALUES[n] for n in s.names])
