@@ -334,9 +334,13 @@ def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | 
             LA = Linv @ A
             quad = np.swapaxes(LA, 1, 2) @ LA  # A' W A, (S, U, U)
             packed = quad[:, rows, cols] * np.where(rows == cols, -0.5, -1.0)
-            block = packed @ uu.T  # (S, n): -1/2 of each unit's quadratic form
-            block += (-0.5 * (q * LOG_2PI + logdet))[:, None]
-            out[start:start + chunk, units] = block
+            const = (-0.5 * (q * LOG_2PI + logdet))[:, None]
+            if isinstance(units, slice):  # write in place: no (draws x units) temporaries
+                view = out[start:start + chunk, units]
+                np.matmul(packed, uu.T, out=view)  # -1/2 of each unit's quadratic form
+                view += const
+            else:
+                out[start:start + chunk, units] = packed @ uu.T + const
     return out
 
 
