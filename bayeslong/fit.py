@@ -551,12 +551,23 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     start = _start_point(entry["model"], structure, panel, prior_set)
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
     run = _sample_nutpie if which == "nutpie" else _sample_pymc
+    settings = dict(draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
+                    seed=int(seed), progressbar=progressbar, names=structure.names)
     with _one_thread(), warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
-        raw, compile_s, sample_s = run(entry, inputs, start, draws=int(draws), tune=int(tune),
-                                       chains=int(chains), cores=cores, seed=int(seed),
-                                       progressbar=progressbar, names=structure.names)
+        try:
+            raw, compile_s, sample_s = run(entry, inputs, start, **settings)
+        except RuntimeError as err:
+            # nutpie 0.16 sometimes rejects a start point whose log density and gradient
+            # are finite (seen on a 40-unit ALT panel, "bad initial gradient"); PyMC's NUTS
+            # samples the same model from the same start, so the fit goes on with it
+            if which != "nutpie" or "initializ" not in str(err):
+                raise
+            warnings.warn(f"model '{spec.name}': nutpie could not start ({str(err).splitlines()[0]}); "
+                          "sampling with PyMC's NUTS instead", UserWarning, stacklevel=2)
+            which = "pymc"
+            raw, compile_s, sample_s = _sample_pymc(entry, inputs, start, **settings)
     t0 = time.perf_counter()
     with _one_thread():  # tiny batched matrices: BLAS threads only cost here
         idata = _tidy(raw, structure, panel, prior_set)
