@@ -20,7 +20,7 @@ import bayeslong as bl
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "tour-output"
 OUT.mkdir(exist_ok=True)
-SAMPLING = dict(draws=400, tune=400, chains=2, seed=2026)  # small, for a quick tour
+SAMPLING = dict(draws=1000, tune=1000, chains=4, seed=2026)  # as in shift_sleep.toml
 
 # %% [markdown]
 # ## 1. Read the panel
