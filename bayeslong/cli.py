@@ -156,12 +156,18 @@ def _run(args, *, fit: bool) -> int:
     progress = None if args.quiet else (lambda m: _say(f"[bayeslong] {m}"))
     results = run_study(study, fit=fit, progress=progress, quiet_sampler=args.quiet,
                         strict=args.debug)
+    t0 = time.perf_counter()
     paths = write_report(results, study.output)
+    report_s = time.perf_counter() - t0
     summary = results.to_dict()
     summary["report"] = {k: str(v) for k, v in paths.items()}
+    summary["stages"].append({"step": "report", "seconds": round(report_s, 1), "detail": ""})
     if args.json:
         _print_json(summary)
     else:
+        _say("[bayeslong] time by step: " + "; ".join(
+            f"{s['step']} {s['seconds']:.0f} s" + (f" ({s['detail']})" if s["detail"] else "")
+            for s in summary["stages"]))
         _say(f"[bayeslong] report: {paths['html']}")
         _say(f"[bayeslong] markdown: {paths['markdown']}")
         bad = [m.label for m in results.models if m.problems]

@@ -30,10 +30,11 @@ Simulation 90(14), 2499-2523. doi:10.1080/00949655.2020.1783262
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import re
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -41,7 +42,7 @@ from scipy.special import logsumexp
 
 from bayeslong._dims import UNIT
 from bayeslong.check import conditional_normal, moment_draws, mvn_logpdf, unit_means
-from bayeslong.errors import DataError, SpecError
+from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.spec import Spec
 from bayeslong.structure import structure_for
 
@@ -181,7 +182,8 @@ def pareto_k(fit) -> pd.Series:
     return pd.Series(np.asarray(loo.pareto_k), index=pd.Index(units, name=UNIT), name="pareto_k")
 
 
-def compare(fits: dict, *, ic: str = "loo", future: bool = False, fit_kwargs: dict | None = None) -> pd.DataFrame:
+def compare(fits: dict, *, ic: str = "loo", future: bool = False, fit_kwargs: dict | None = None,
+            future_scores: dict | None = None) -> pd.DataFrame:
     """Rank models by expected log predictive density of a new unit's trajectory.
 
     Parameters
@@ -196,7 +198,13 @@ def compare(fits: dict, *, ic: str = "loo", future: bool = False, fit_kwargs: di
         per model.
     fit_kwargs : dict, optional
         Options for those refits (``draws``, ``tune``, ``chains``, ``seed``, ``priors`` ...);
-        by default the refits use :func:`bayeslong.fit`'s defaults with each fit's seed.
+        by default the refits use :func:`bayeslong.fit`'s defaults with each fit's seed and
+        each fit's own prior overrides (the same model, fitted to fewer waves).
+    future_scores : dict of str to ForecastScore, optional
+        Leave-future-out scores already made for some of the fits, by the same rule
+        (``forecast_score(fit.spec, fit.panel, seed=fit.seed, priors=<fit's overrides>,
+        **fit_kwargs)``, e.g. in the process that made the fit, which has its model
+        compiled); those fits are not refitted.
 
     Returns
     -------
@@ -207,6 +215,10 @@ def compare(fits: dict, *, ic: str = "loo", future: bool = False, fit_kwargs: di
         ``weight`` (stacking weight), ``n_bad_k`` (units with Pareto k > 0.7),
         ``elpd_waic``, ``se_waic``, ``p_waic`` and ``warning`` (text, empty when none).
         ``attrs["reading"]`` holds the plain-language reading (see :func:`explain_comparison`).
+        With ``future``: ``attrs["lfo_carried"]`` names the carried wave-T parameters,
+        ``attrs["lfo_problems"]`` holds, by model, the convergence warning of each refit
+        that did not converge (recorded there instead of being issued), and
+        ``attrs["lfo_timing"]`` each refit's seconds by stage (``Fit.timing``).
 
     Raises
     ------
@@ -263,7 +275,7 @@ def compare(fits: dict, *, ic: str = "loo", future: bool = False, fit_kwargs: di
     table.index.name = "model"
     table.attrs["ic"] = ic
     if future:
-        _add_future(table, fits, fit_kwargs or {})
+        _add_future(table, fits, fit_kwargs or {}, future_scores or {})
     table.attrs["reading"] = explain_comparison(table)
     return table
 
@@ -300,6 +312,9 @@ def explain_comparison(table: pd.DataFrame) -> str:
         top = table["elpd_lfo"].idxmax()
         lines.append(f"Forecasting the last wave from the earlier ones (leave-future-out), {top!r} scores "
                      "best; see lfo_diff and lfo_dse.")
+        for name in table.attrs.get("lfo_problems", {}):
+            lines.append(f"The leave-future-out refit of {name!r} did not converge, so its elpd_lfo is "
+                         "uncertain beyond its SE; see attrs['lfo_problems'].")
     bad = table[table["n_bad_k"] > 0]
     for name in bad.index:
         lines.append(f"{name!r}: {int(bad.loc[name, 'n_bad_k'])} unit(s) with Pareto k > {K_THRESHOLD}, "
@@ -334,6 +349,10 @@ class ForecastScore:
         Wave-T parameters given their wave T-1 value (see :func:`forecast_score`).
     unscored : tuple
         Units not observed at wave T: there is nothing to forecast, so they contribute nothing.
+    problems : tuple of str
+        The convergence warning of the refit on waves 1..T-1 (empty when it converged).
+    timing : dict
+        Seconds the refit spent compiling, sampling ... (its ``Fit.timing``).
     """
 
     spec: Spec
@@ -343,6 +362,8 @@ class ForecastScore:
     pointwise: pd.Series
     carried: tuple = ()
     unscored: tuple = ()
+    problems: tuple = ()
+    timing: dict = field(default_factory=dict)
 
     def __repr__(self) -> str:
         return (f"ForecastScore({self.spec.name}: elpd={self.elpd:.2f}, se={self.se:.2f}, "
@@ -465,15 +486,82 @@ def score_last_wave(fit_past, panel) -> ForecastScore:
             f"score_last_wave needs a fit on the first {T - 1} waves of the panel; the fit has "
             f"{past.n_waves} waves. Fit on panel.head({T - 1})."
         )
-    full = structure_for(fit_past.spec, panel)
-    thetas, carried = extend_draws(past, full, np.asarray(fit_past.theta_draws(), dtype=float))
+    return _score(fit_past.spec, past, panel, np.asarray(fit_past.theta_draws(), dtype=float))
+
+
+def _score(spec: Spec, past, panel, thetas: np.ndarray) -> ForecastScore:
+    """Score wave T of ``panel`` with draws ``thetas`` in the order of ``past.names``."""
+    full = structure_for(spec, panel)
+    thetas, carried = extend_draws(past, full, thetas)
     terms = last_wave_logpdf(full, panel, thetas)
     n = len(terms)
     se = float(np.sqrt(n) * np.std(terms.to_numpy(), ddof=1)) if n > 1 else float("nan")
     scored = set(terms.index)
-    return ForecastScore(spec=fit_past.spec, elpd=float(terms.sum()), se=se, n_units=n,
+    return ForecastScore(spec=spec, elpd=float(terms.sum()), se=se, n_units=n,
                          pointwise=terms, carried=carried,
                          unscored=tuple(u for u in panel.units if u not in scored))
+
+
+def last_wave_hidden(panel):
+    """The panel with every outcome of its last wave set missing (all T waves kept).
+
+    Units with no outcome left are dropped, as :meth:`Panel.head` drops them.
+    """
+    from bayeslong.data import Panel
+
+    y = np.array(panel.y, dtype=float)
+    y[:, -1] = np.nan
+    keep = ~np.isnan(y).all(axis=(1, 2))
+    return Panel(units=tuple(u for u, k in zip(panel.units, keep) if k), waves=panel.waves,
+                 outcomes=panel.outcomes, time_varying=panel.time_varying,
+                 time_invariant=panel.time_invariant, y=y[keep], x=panel.x[keep], z=panel.z[keep])
+
+
+def contains_past(past, full, *, points: int = 3, seed: int = 0) -> bool:
+    """Whether the T-wave structure, with wave T unobserved, is the (T-1)-wave model.
+
+    True when both have the same parameters and covariance blocks, and at random admissible
+    parameter values the T-wave implied moments of the outcomes at waves 1..T-1 equal the
+    (T-1)-wave ones: the same means, the same effects of waves 1..T-1 covariates and of
+    time-invariant ones, no effect of wave-T covariates, the same covariances. The
+    likelihood of data with wave T missing is then the (T-1)-wave likelihood at every
+    parameter value (the marginal of a normal is the normal of the kept entries), so with
+    the same priors the two posteriors are one. False for a model with wave-T-only
+    parameters (free residual variances, time-varying lags ...) or whose earlier waves
+    depend on wave-T covariates (the level of ``fixed-effects`` is regressed on x at
+    every wave).
+    """
+    from bayeslong._transform import Unconstrained
+    from bayeslong.moments import moments_at
+
+    if past.names != full.names:
+        return False
+
+    def blocks(structure):
+        return sorted(tuple(sorted(int(i) for i in np.unique(b.index) if i >= 0))
+                      for b in structure.blocks)
+
+    if blocks(past) != blocks(full):
+        return False
+    try:
+        rows = [full.observed.index(n) for n in past.observed]
+        cols = [full.covariates.index(n) for n in past.covariates]
+    except ValueError:
+        return False
+    later = [j for j in range(len(full.covariates)) if j not in cols]
+    rng = np.random.default_rng(seed)
+    to_natural = Unconstrained(full).to_natural
+    for _ in range(points):
+        theta = to_natural(rng.normal(scale=0.5, size=full.n_params))
+        c1, D1, S1 = moments_at(full, theta)
+        c0, D0, S0 = moments_at(past, theta)
+        D1 = D1.reshape(len(c1), -1)
+        if not (np.allclose(c1[rows], c0, rtol=1e-10, atol=1e-10)
+                and np.allclose(D1[rows][:, cols], D0.reshape(len(c0), -1), rtol=1e-10, atol=1e-10)
+                and np.allclose(D1[rows][:, later], 0.0, atol=1e-10)
+                and np.allclose(S1[rows][:, rows], S0, rtol=1e-10, atol=1e-10)):
+            return False
+    return True
 
 
 def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
@@ -495,6 +583,7 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
         observed at wave T, with theta_s drawn from the posterior given waves 1..T-1 only
         (exact one-step-ahead leave-future-out, Bürkner, Gabry & Vehtari 2020, eq. 4 with
         M = 1, for a single forecast origin), and ``se`` = sqrt(n) SD of the unit terms.
+        ``problems`` holds the refit's convergence warning, which is also issued.
 
     Raises
     ------
@@ -512,8 +601,19 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
     similar wave-specific loadings have no such rule, and the model raises instead.
     Units not observed at wave T contribute nothing; units observed only at wave T are
     scored by their marginal density at wave T.
+
+    When the T-wave model with wave T unobserved is the (T-1)-wave model
+    (:func:`contains_past`: no wave-T-only parameter, nothing earlier depends on wave T),
+    the refit is made on the T-wave structure with wave T hidden
+    (:func:`last_wave_hidden`) and the (T-1)-wave fit's priors given explicitly: the same
+    posterior, and the compiled model of the full-data fit serves it (DESIGN 2) instead of
+    a new compile. Otherwise (also when a prior is a factory, or
+    :func:`bayeslong.ml.start_values` has no value without wave T) the refit is on
+    ``panel.head(T - 1)``.
     """
     from bayeslong.fit import fit as run_fit
+    from bayeslong.ml import start_values
+    from bayeslong.priors import resolve_priors
 
     if panel.n_waves < 4:
         raise DataError(
@@ -523,16 +623,55 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
     # fail before sampling when wave T cannot be predicted
     before, after = structure_for(spec, past), structure_for(spec, panel)
     extend_draws(before, after, np.zeros((1, before.n_params)))
-    return score_last_wave(run_fit(spec, past, **fit_kwargs), panel)
+    kwargs = dict(fit_kwargs)
+    data = past
+    if contains_past(before, after):
+        hidden = last_wave_hidden(panel)
+        prior_set = resolve_priors(before, past, kwargs.get("priors"))
+        # a prior factory cannot be written out as an override; the sampler starts at the
+        # data-based start values, which must exist without wave T's outcomes
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # "mean of empty slice": NaN
+            starts = start_values(after, hidden)
+        if not prior_set.has_callable and np.isfinite(starts).all():
+            data = hidden
+            kwargs["priors"] = {p.parameter: (p.family, *p.args) for p in prior_set.priors}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ConvergenceWarning)
+        fit_past = run_fit(spec, data, **kwargs)
+    problems = []
+    for w in caught:  # pass every warning on; keep the convergence ones with the score too
+        if issubclass(w.category, ConvergenceWarning):
+            problems.append(str(w.message))
+        elif data is not past and str(w.message) == "Mean of empty slice":
+            continue  # start values averaging the hidden wave (checked finite above)
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    thetas = np.asarray(fit_past.theta_draws(), dtype=float)  # same names, same order
+    return dataclasses.replace(_score(spec, before, panel, thetas), problems=tuple(problems),
+                               timing=dict(getattr(fit_past, "timing", {}) or {}))
 
 
 def _refit_score(fit, fit_kwargs: dict) -> ForecastScore:
-    kwargs = {"seed": getattr(fit, "seed", 1), **fit_kwargs}
+    """Leave-future-out refit of ``fit``'s model: its seed and prior overrides by default."""
+    prior_set = getattr(fit, "prior_set", None)
+    priors = prior_set.user_spec() if prior_set is not None else {}
+    kwargs = {"seed": getattr(fit, "seed", 1), **({"priors": priors} if priors else {}),
+              **fit_kwargs}
     return forecast_score(fit.spec, fit.panel, **kwargs)
 
 
-def _add_future(table: pd.DataFrame, fits: dict, fit_kwargs: dict) -> None:
-    scores = {name: _refit_score(fits[name], fit_kwargs) for name in table.index}
+def _add_future(table: pd.DataFrame, fits: dict, fit_kwargs: dict, given: dict) -> None:
+    for name, score in given.items():
+        if name in fits and (score.spec != fits[name].spec
+                             or score.n_units + len(score.unscored) != fits[name].panel.n_units):
+            raise SpecError(f"the leave-future-out score given for {name!r} is of model "
+                            f"'{score.spec}' on {score.n_units + len(score.unscored)} units, not "
+                            f"of the fit's model '{fits[name].spec}' on {fits[name].panel.n_units}")
+    with warnings.catch_warnings():
+        # recorded in attrs["lfo_problems"] (and read out by explain_comparison) instead
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        scores = {name: given[name] if name in given else _refit_score(fits[name], fit_kwargs)
+                  for name in table.index}
     best = max(scores, key=lambda n: scores[n].elpd)
     table["elpd_lfo"] = [scores[n].elpd for n in table.index]
     table["se_lfo"] = [scores[n].se for n in table.index]
@@ -545,3 +684,6 @@ def _add_future(table: pd.DataFrame, fits: dict, fit_kwargs: dict) -> None:
     table["lfo_dse"] = dses
     carried = sorted({c for s in scores.values() for c in s.carried})
     table.attrs["lfo_carried"] = carried
+    table.attrs["lfo_problems"] = {n: "; ".join(scores[n].problems) for n in table.index
+                                   if scores[n].problems}
+    table.attrs["lfo_timing"] = {n: dict(scores[n].timing) for n in table.index}

@@ -484,12 +484,17 @@ def _section_comparison(doc: _Doc, results) -> None:
     doc.heading("Leave-future-out", 3)
     table = _table_of(fut.value) if fut.ran else None
     if table is not None:
-        doc.para("Each candidate is refitted on all waves but the last and scored on how well it "
-                 "predicts each unit's last wave from its earlier ones (log predictive density)."
-                 + (" The refits use the default priors, not the study's overrides."
-                    if results.study.priors else ""))
+        doc.para("Each candidate is refitted on all waves but the last (same priors and "
+                 "sampling settings) and scored on how well it predicts each unit's last wave "
+                 "from its earlier ones (log predictive density).")
         doc.table(table, "Predicting the last wave from the earlier ones")
         doc.items(_loo_reading(table))
+        full = _table_of(comp.value)
+        problems = full.attrs.get("lfo_problems", {}) if full is not None else {}
+        if problems:
+            doc.para("These refits did not converge by the stated criteria, so their elpd_lfo "
+                     "is uncertain beyond its standard error:", "warn")
+            doc.items([f"{name}: {text}" for name, text in problems.items()], "warn")
     else:
         doc.para(f"Not run: {fut.reason}.", "note")
     doc.heading("How to read this comparison", 3)
@@ -555,13 +560,20 @@ def _section_sensitivity(doc: _Doc, results) -> None:
     value = step.value
     table = getattr(value, "table", None)
     if table is not None:
-        doc.para("Each row refits the data with one setting changed and shows the lag "
+        reused = tuple(getattr(value, "reused", ()))
+        doc.para("Each row fits the data with one setting changed and shows the lag "
                  "(posterior mean, SD and 90% interval). A row is flagged when its interval "
                  "moves to another side of zero than the default fit's, or its mean moves by "
-                 "more than one posterior SD."
-                 + (" These refits use the default priors, not the study's overrides."
-                    if results.study.priors else ""))
+                 "more than one posterior SD. Every setting starts from the study's priors "
+                 "and sampling settings."
+                 + (" Settings that equal a candidate's fit are read from that fit instead "
+                    f"of refitted ({', '.join(reused)})." if reused else ""))
         doc.table(table, "The lag under each setting", index=False)
+        unsettled = [k for k, ws in (getattr(value, "warnings", None) or {}).items()
+                     if any(w.startswith("ConvergenceWarning") for w in ws)]
+        if unsettled:
+            doc.para("Fits behind these settings did not converge by the stated criteria "
+                     "(read their rows with care): " + "; ".join(unsettled), "warn")
         flagged = table[table["flag"]] if "flag" in table else table.iloc[:0]
         if len(flagged):
             doc.para(f"{len(flagged)} setting(s) move the lag materially: " + "; ".join(
@@ -604,6 +616,12 @@ def _section_reproducibility(doc: _Doc, results) -> None:
     versions = pd.DataFrame({"version": pd.Series(results.versions)})
     versions.index.name = "software"
     doc.table(versions, "Software")
+    stages = getattr(results, "stages", ())
+    if stages:
+        spent = pd.DataFrame([{"step": step, "seconds": round(float(sec), 1), "detail": detail}
+                              for step, sec, detail in stages]).set_index("step")
+        doc.table(spent, f"Time spent by step (the run took {results.seconds:.0f} s; writing "
+                  "this report is not included)")
     keys = pd.DataFrame({"content hash": {m.label: m.key for m in results.models}})
     keys.index.name = "model"
     doc.table(keys, f"Fits are saved under {results.study.output / 'fits'} by content hash; "

@@ -33,7 +33,15 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from bayeslong.batch import SerialExecutor, Task, fit_defaults, run_many, summarise_draws
+from bayeslong.batch import (
+    BatchResult,
+    SerialExecutor,
+    Task,
+    TaskResult,
+    fit_defaults,
+    run_many,
+    summarise_draws,
+)
 from bayeslong.errors import SpecError
 from bayeslong.simulate import Simulation, default_outcomes
 from bayeslong.spec import Spec, catalog, model
@@ -232,11 +240,15 @@ def fit_with_power_scaling(spec, panel, *, delta: float = 0.01, **fit_kwargs) ->
     from bayeslong.fit import fit as fit_fn
 
     fit_defaults(fit_fn, fit_kwargs)
-    result = fit_fn(spec, panel, **fit_kwargs)
-    table, info = summarise_draws(result.idata, [n for n in result.structure.names
-                                                 if n in result.idata.posterior])
+    return _power_scaling_summary(fit_fn(spec, panel, **fit_kwargs), delta=delta)
+
+
+def _power_scaling_summary(fit, *, delta: float = 0.01) -> dict:
+    """Posterior summary of every parameter of ``fit`` joined with its power-scaling columns."""
+    table, info = summarise_draws(fit.idata, [n for n in fit.structure.names
+                                              if n in fit.idata.posterior])
     try:
-        ps = power_scaling(result, delta=delta)
+        ps = power_scaling(fit, delta=delta)
         table = table.join(ps.rename(columns={"prior": "psens_prior",
                                               "likelihood": "psens_likelihood"}))
     except SpecError as err:
@@ -266,7 +278,10 @@ class LagSensitivity:
     warnings : dict
         Warnings (e.g. convergence) of each fit that raised any, by task name.
     reference : str
-        The default fit's model (with default priors).
+        The default fit's model.
+    reused : tuple of str
+        Settings (task names) read from fits given to :func:`lag_sensitivity` instead of
+        refitted.
     """
 
     table: pd.DataFrame
@@ -274,6 +289,7 @@ class LagSensitivity:
     failed: dict = field(default_factory=dict)
     warnings: dict = field(default_factory=dict)
     reference: str = ""
+    reused: tuple = ()
 
     def plot(self, ax=None):
         """Forest plot of the lag's 90% intervals by axis and setting; returns the figure.
@@ -313,7 +329,8 @@ def _side(q5: float, q95: float) -> str:
 def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None,
                     initial: bool = True, specification: bool = True, power_scaling: bool = True,
                     fit_kwargs: dict | None = None, executor=None,
-                    progress: bool = False) -> LagSensitivity:
+                    progress: bool = False, priors: dict | None = None,
+                    fits=None) -> LagSensitivity:
     """Refit ``panel`` along four axes and tabulate the lag for each setting.
 
     Parameters
@@ -343,11 +360,20 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
         one after another, so refits of one structure reuse its compiled model.
     progress : bool, default False
         One line per finished fit on stderr.
+    priors : dict, optional
+        Prior overrides by parameter name that every setting starts from (each model takes
+        the ones naming its parameters); the prior axis changes the lag's prior, or scales
+        the SD priors, on top of them. Default: the documented default priors.
+    fits : sequence of Fit, optional
+        Fits already made, e.g. a study's candidate fits. A setting whose model, priors and
+        data equal a given fit's, and whose ``fit_kwargs`` seed, chains and draws match it,
+        is read from that fit instead of refitted (the caller vouches for ``tune`` and the
+        sampler, which a fit does not record). Power-scaling needs no refit either.
 
     Returns
     -------
     LagSensitivity
-        ``.table`` (tidy), ``.plot()``, ``.power_scaling``, ``.failed``.
+        ``.table`` (tidy), ``.plot()``, ``.power_scaling``, ``.failed``, ``.reused``.
 
     Raises
     ------
@@ -382,6 +408,11 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     ref = specs[0]
     grid = LAG_PRIORS if prior_grid is None else (prior_grid or ())
     scales = VARIANCE_SCALES if variance_scales is None else (variance_scales or ())
+    base = dict(priors or {})
+
+    def base_for(spec) -> dict:
+        names = structure_for(spec, panel).names
+        return {k: tuple(v) for k, v in base.items() if k in names}
 
     # (axis, setting, spec, priors, task name); tasks are shared between axes
     plan_rows: list[tuple] = []
@@ -398,27 +429,34 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
                               (lag_parameter(spec, panel.outcomes),))
         plan_rows.append((axis, setting, spec, key))
 
-    add("default", "default priors", ref, None, "default")
+    add("default", "priors as given" if base_for(ref) else "default priors", ref,
+        base_for(ref), "default")
     ref_lag = lag_parameter(ref, panel.outcomes)
     for prior in grid:
         label = f"{ref_lag} ~ {_prior_label(prior)}"
-        add("prior", label, ref, {ref_lag: tuple(prior)}, f"prior: {label}")
+        add("prior", label, ref, {**base_for(ref), ref_lag: tuple(prior)}, f"prior: {label}")
     for f in scales:
         add("prior", f"variance priors: SD scale x{f:g}", ref,
-            scaled_variance_priors(ref, panel, f), f"prior: SD scale x{f:g}")
+            scaled_variance_priors(ref, panel, f, base_for(ref)), f"prior: SD scale x{f:g}")
     if specification or initial:
         for s in specs:
             key = "default" if s is ref else f"model: {s.name} ({s.options['initial']})"
             if specification:
-                add("specification", s.name, s, None, key)
+                add("specification", s.name, s, base_for(s), key)
             if initial and len(s.allowed["initial"]) > 1 and not s.initial_is_level:
                 other = "endogenous" if s.options["initial"] == "predetermined" else "predetermined"
-                add("first wave", s.options["initial"], s, None, key)
+                add("first wave", s.options["initial"], s, base_for(s), key)
                 alt = s.replace(initial=other)
-                add("first wave", other, alt, None, f"model: {s.name} ({other})")
+                add("first wave", other, alt, base_for(alt), f"model: {s.name} ({other})")
 
+    given = {name: fit for name, task in tasks.items()
+             if (fit := _matching_fit(task, fits or (), fit_kwargs)) is not None}
     ex = executor if executor is not None else SerialExecutor()
-    batch = run_many(list(tasks.values()), ex, progress=progress)
+    refits = run_many([t for name, t in tasks.items() if name not in given], ex,
+                      progress=progress)
+    done = {r.name: r for r in refits}
+    done.update({name: _result_of_fit(tasks[name], fit) for name, fit in given.items()})
+    batch = BatchResult(results=tuple(done[name] for name in tasks))
     default = batch["default"]
     if not default.ok:
         raise SpecError(f"the default fit of model '{ref.name}' failed, so there is nothing to "
@@ -460,7 +498,52 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     table["axis"] = table["axis"].astype(str)
     return LagSensitivity(table=table, power_scaling=ps_table, failed=batch.failed,
                           warnings={r.name: r.warnings for r in batch if r.warnings},
-                          reference=ref.name)
+                          reference=ref.name, reused=tuple(given))
+
+
+def _matching_fit(task: Task, fits, fit_kwargs: dict):
+    """The first of ``fits`` that is the fit ``task`` would make, or None.
+
+    Equal spec, data and prior overrides, and the seed, chains and draws ``fit_kwargs``
+    ask for (:func:`bayeslong.fit`'s defaults where they are silent).
+    """
+    import inspect
+
+    from bayeslong.fit import fit as fit_fn
+
+    defaults = {k: v.default for k, v in inspect.signature(fit_fn).parameters.items()}
+    want = {k: fit_kwargs.get(k, defaults.get(k)) for k in ("seed", "chains", "draws")}
+    priors = {k: tuple(v) for k, v in (task.kwargs.get("priors") or {}).items()}
+    for fit in fits:
+        post = fit.idata.posterior
+        if (fit.spec == task.spec and fit.panel == task.panel
+                and not fit.prior_set.has_callable
+                and {k: tuple(v) for k, v in fit.prior_set.user_spec().items()} == priors
+                and int(fit.seed) == int(want["seed"])
+                and int(post.sizes["chain"]) == int(want["chains"])
+                and int(post.sizes["draw"]) == int(want["draws"])):
+            return fit
+    return None
+
+
+def _result_of_fit(task: Task, fit) -> TaskResult:
+    """The :class:`TaskResult` that running ``task`` would give, read from an existing fit."""
+    import warnings as _warnings
+
+    from bayeslong.batch import _warning_texts
+    from bayeslong.fit import warn_convergence
+
+    with _warnings.catch_warnings(record=True) as caught:
+        _warnings.simplefilter("always")
+        warn_convergence(fit.diagnostics())  # what the refit would have warned
+        if task.kind == "fit":
+            table, info = summarise_draws(fit.idata, task.params)
+        else:  # the default setting with power-scaling: as fit_with_power_scaling gives it
+            out = _power_scaling_summary(fit)
+            table, info = out["summary"], out["info"]
+    seen = _warning_texts(caught)
+    return TaskResult(name=task.name, status="ok", seconds=0.0, summary=table,
+                      info={**info, "warnings": len(seen)}, warnings=seen)
 
 
 # --- small-sample planning ------------------------------------------------------------------

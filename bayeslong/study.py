@@ -69,6 +69,13 @@ Top level
     Posterior draws kept per chain, warm-up draws per chain, chains, and the random seed.
 ``sampler`` (text, default ``"auto"``)
     Passed to :func:`bayeslong.fit` (``"auto"`` lets it choose).
+``workers`` (whole number, default 1)
+    Processes that sample candidates side by side (at most one per candidate to sample);
+    0 is one per CPU core, 1 samples them one after another in this process. Each worker
+    also makes its candidate's leave-future-out refit, with the model it has compiled.
+    ``bayeslong run`` needs nothing more; a Python script that calls :func:`run_study` on
+    such a study must guard its entry point with ``if __name__ == "__main__":`` (worker
+    processes import the script), or pass ``workers=1``.
 
 ``[checks]``
 
@@ -173,7 +180,7 @@ _DATA = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_inv
          "waves", "drop_incomplete_covariates")
 _MODEL = ("model", "label", "options")
 _SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
-             "sampler": "auto"}
+             "sampler": "auto", "workers": 1}
 _CHECKS = {"ppc": True, "ppc_draws": 200, "ml": False}
 _COMPARISON = {"future": False}
 _SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
@@ -264,7 +271,7 @@ class _Reader:
             if isinstance(default, bool):
                 out[key] = self.flag(value, where)
             elif isinstance(default, int):
-                out[key] = self.whole(value, where, 0 if key in ("tune", "seed") else 1)
+                out[key] = self.whole(value, where, 0 if key in ("tune", "seed", "workers") else 1)
             else:
                 out[key] = self.text(value, where)
         return out
@@ -737,6 +744,9 @@ class ModelResult:
     check : Step
         Posterior predictive checks.
     seconds : float
+    forecast : ForecastScore or None
+        The leave-future-out score, when the worker process that sampled the candidate made
+        it (see ``sampling.workers``); otherwise the comparison makes it.
     """
 
     candidate: Candidate
@@ -749,6 +759,7 @@ class ModelResult:
     problems: tuple[str, ...] = ()
     check: Step = field(default_factory=lambda: Step.skipped("not requested"))
     seconds: float = 0.0
+    forecast: Any = None
 
     @property
     def label(self) -> str:
@@ -776,6 +787,9 @@ class StudyResults:
     seconds : float
     started : str
         UTC time stamp of the run.
+    stages : tuple of (str, float, str)
+        Where the time went: each step of the run, its seconds and a detail (e.g. the
+        compile and sampling seconds of a fit), in the order they ran.
     """
 
     study: Study
@@ -791,6 +805,7 @@ class StudyResults:
     versions: dict = field(default_factory=dict)
     seconds: float = 0.0
     started: str = ""
+    stages: tuple = ()
 
     def to_dict(self) -> dict:
         """Machine-readable summary (JSON safe) of the run."""
@@ -832,6 +847,8 @@ class StudyResults:
             "sensitivity": step(self.sensitivity),
             "output": str(self.study.output),
             "seconds": round(self.seconds, 1),
+            "stages": [{"step": step, "seconds": round(sec, 1), "detail": detail}
+                       for step, sec, detail in self.stages],
             "versions": self.versions,
         }
 
@@ -844,6 +861,12 @@ def _table_of(value):
         return value
     table = getattr(value, "table", None)
     return table if isinstance(table, pd.DataFrame) else None
+
+
+def _installed(package: str) -> bool:
+    from importlib.util import find_spec
+
+    return find_spec(package) is not None
 
 
 def optional_module(name: str):
@@ -905,7 +928,8 @@ def _priors_for(study: Study, spec, panel) -> dict:
 
 
 def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None] | None = _stderr,
-              quiet_sampler: bool = False, strict: bool = False) -> StudyResults:
+              quiet_sampler: bool = False, strict: bool = False,
+              workers: int | None = None) -> StudyResults:
     """Carry out a study: intake, identification, fits, comparison, checks, sensitivity.
 
     Parameters
@@ -922,6 +946,9 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     strict : bool
         Let unexpected (internal) exceptions of a step propagate instead of recording them
         as "failed" in the results (for debugging).
+    workers : int, optional
+        Overrides ``sampling.workers`` of the study file (0: one per CPU core; 1: sample in
+        this process, which needs no ``if __name__ == "__main__":`` guard in a script).
 
     Returns
     -------
@@ -936,7 +963,9 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     -----
     Every finished fit is saved under ``<output>/fits`` with its content hash in the file
     name (see "Resuming" in the module notes) and reused by later runs while the hash is
-    unchanged. Steps whose module is not installed, or that fail, are recorded as "not run"
+    unchanged. Two or more candidates to sample are sampled side by side in worker
+    processes (``sampling.workers``); each worker also makes its candidate's
+    leave-future-out refit, which reuses the model compiled there. Steps whose module is not installed, or that fail, are recorded as "not run"
     with the reason instead of stopping the run; convergence problems are recorded per model.
     """
     import datetime
@@ -946,6 +975,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     started = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     record: list[str] = []
     panel = study.panel(record=record)
+    intake_s = time.perf_counter() - t0
     say(f"data: {panel.n_units} units, {panel.n_waves} waves, "
         f"{panel.patterns().n_patterns} missing-data pattern(s)")
     check_priors(study, panel)
@@ -962,37 +992,200 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
                 f"study file {study.source.name}: `sampling.sampler` must be one of "
                 f"{', '.join(repr(x) for x in samplers)}; got {study.sampling['sampler']!r}"
                 f"{_nearest(study.sampling['sampler'], samplers)}")
+        if study.sampling["sampler"] == "nutpie" and not _installed("nutpie"):
+            raise SpecError(
+                f"study file {study.source.name}: `sampling.sampler = \"nutpie\"` needs the "
+                "nutpie package, which is not installed; install it with `pip install nutpie` "
+                "(or `pip install bayeslong[fast]`), or set `sampler = \"auto\"` to use "
+                "PyMC's NUTS (slower for many draws)")
         if fit_module is None:
             method = "ml-fallback"
             say("NOTE: " + absent + "; falling back to MAXIMUM LIKELIHOOD ONLY "
                 "(no posteriors, no LOO/WAIC, no predictive checks)")
 
+    def tell(i):
+        return lambda m: say(f"[{i}/{len(study.models)}] {m}")
+
+    # candidates to sample run side by side in worker processes when there are several and
+    # the machine has the cores (see `sampling.workers`); each worker also makes its
+    # candidate's leave-future-out refit while the model is compiled there
+    jobs, pool = {}, None
+    to_sample = ({c.label for c in study.models if _needs_sampling(study, panel, c, fits_dir)}
+                 if fit and fit_module is not None else set())
+    workers = _worker_count(study.sampling["workers"] if workers is None else workers,
+                            len(to_sample))
     models = []
     fitted = reused = 0
-    for i, cand in enumerate(study.models, start=1):
-        result, did_fit = _run_candidate(study, panel, cand, fit_module, fits_dir, fit=fit,
-                                         say=lambda m, i=i: say(f"[{i}/{len(study.models)}] {m}"),
-                                         quiet_sampler=quiet_sampler, strict=strict)
-        fitted += did_fit == "fitted"
-        reused += did_fit == "reused"
-        models.append(result)
+    t_fits = time.perf_counter()
+    try:
+        if workers > 1:
+            pool = _pool(workers)
+            future_kwargs = _future_kwargs(study, panel, fits_dir)
+            for i, cand in enumerate(study.models, start=1):
+                if cand.label in to_sample:
+                    jobs[cand.label] = _submit(pool, study, panel, cand, fits_dir, future_kwargs,
+                                               tell(i), workers)
+        for i, cand in enumerate(study.models, start=1):
+            result, did_fit = _run_candidate(study, panel, cand, fit_module, fits_dir, fit=fit,
+                                             say=tell(i), quiet_sampler=quiet_sampler,
+                                             strict=strict, job=jobs.get(cand.label))
+            fitted += did_fit == "fitted"
+            reused += did_fit == "reused"
+            models.append(result)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+    fits_s = time.perf_counter() - t_fits
     if reused:
         say(f"reused {reused} saved fit{'s' if reused != 1 else ''} (unchanged study, data "
             "and model)")
+    scores = {m.label: m.forecast for m in models if m.forecast is not None}
 
-    comparison, future = _compare(study, panel, models, method, say, strict)
+    comparison, future = _compare(study, panel, models, method, say, strict, scores)
     models = [_check(study, panel, m, say, strict) for m in models]
     sensitivity = _sensitivity(study, panel, models, method, say, strict)
+    stages = [("intake", intake_s, f"{panel.n_units} units, {panel.n_waves} waves")]
+    if jobs:
+        stages.append(("candidates (all)", fits_s,
+                       f"{len(jobs)} sampled side by side in {workers} worker processes, with "
+                       "their leave-future-out refits where needed; the rows below are each "
+                       "fit's own time in its worker"))
+    stages += [(f"{m.label}: identification and fit", m.seconds,
+                ("in a worker process: " if m.label in jobs and m.fit is not None else "")
+                + _fit_detail(m)) for m in models]
+    stages += [("comparison", comparison.seconds, _comparison_detail(comparison, scores)),
+               ("predictive checks", sum(m.check.seconds for m in models), ""),
+               ("lag sensitivity", sensitivity.seconds, _sensitivity_detail(sensitivity))]
     return StudyResults(
         study=study, panel=panel, intake_warnings=tuple(record), models=tuple(models),
         comparison=comparison, future=future, sensitivity=sensitivity, method=method,
         fitted=fitted, reused=reused, versions=software_versions(),
-        seconds=time.perf_counter() - t0, started=started)
+        seconds=time.perf_counter() - t0, started=started, stages=tuple(stages))
+
+
+def _timing_text(timing: dict) -> str:
+    """``compile 12 s, sampling 3 s`` from a :attr:`Fit.timing` (empty when there is none)."""
+    names = {"compile": "compile", "sample": "sampling", "loglik": "log-likelihood"}
+    return ", ".join(f"{label} {timing[key]:.0f} s" for key, label in names.items()
+                     if key in timing)
+
+
+def _fit_detail(m: ModelResult) -> str:
+    if m.fit is None:
+        return "no posterior fit"
+    if m.reused:
+        return "reused the saved fit"
+    return _timing_text(getattr(m.fit, "timing", {}) or {})
+
+
+def _comparison_detail(step: Step, elsewhere=()) -> str:
+    """The leave-future-out refits' times (``elsewhere``: those made by worker processes)."""
+    table = _table_of(step.value) if step.ran else None
+    timing = table.attrs.get("lfo_timing", {}) if table is not None else {}
+    return "; ".join(f"leave-future-out refit of {name}"
+                     + (" (in its worker process)" if name in elsewhere else "")
+                     + f": {_timing_text(t)}" for name, t in timing.items() if t)
+
+
+def _sensitivity_detail(step: Step) -> str:
+    reused = tuple(getattr(step.value, "reused", ())) if step.ran else ()
+    return f"read from the candidates' fits, not refitted: {', '.join(reused)}" if reused else ""
+
+
+def _stem(study: Study, cand: Candidate) -> str:
+    """File name stem of a candidate's saved results: its label and content hash."""
+    return f"{_slug(cand.label)}-{study.fit_key(cand)}"
+
+
+def _needs_sampling(study, panel, cand, fits_dir: Path) -> bool:
+    """Whether a run would sample ``cand``: identified, and no saved fit."""
+    ident = _identification(cand, panel, fits_dir / f"{_stem(study, cand)}.identify.json", [])
+    if ident is not None and not ident.identified:
+        return False
+    return not (fits_dir / f"{_stem(study, cand)}.nc").exists()
+
+
+def _worker_count(asked: int, n_jobs: int) -> int:
+    """Worker processes for ``n_jobs`` candidate fits (1: sample here, one after another)."""
+    from bayeslong.batch import default_workers
+
+    if isinstance(asked, bool) or not isinstance(asked, int) or asked < 0:
+        raise SpecError(f"`workers` must be a whole number >= 0 (0: one per CPU core); "
+                        f"got {asked!r}")
+    return max(1, min(asked or default_workers(), n_jobs))
+
+
+def _pool(workers: int):
+    from bayeslong.batch import _default_executor
+
+    return _default_executor(workers)
+
+
+def _future_kwargs(study, panel, fits_dir: Path) -> dict | None:
+    """Settings of the workers' leave-future-out refits; None when none is needed.
+
+    Not needed when the comparison does not ask for it, or when its result for these
+    candidates (all fitted) is saved already.
+    """
+    if not study.comparison["future"] or study.sampling["method"] != "bayes":
+        return None
+    keys = {}
+    for c in study.models:
+        ident = _identification(c, panel, fits_dir / f"{_stem(study, c)}.identify.json", [])
+        if ident is None or ident.identified:
+            keys[c.label] = study.fit_key(c)
+    if len(keys) < 2 or _step_path(study, "compare", _compare_parts(keys, True)).exists():
+        return None
+    return {**_fit_settings(study), "progressbar": False}
+
+
+def _submit(pool, study, panel, cand, fits_dir, future_kwargs, say, workers):
+    s = study.sampling
+    say(f"{cand.label}: sampling {s['chains']} chains x {s['draws']} draws (+{s['tune']} "
+        f"tuning) in one of {workers} worker processes")
+    priors = _priors_for(study, cand.spec, panel) or None
+    # in a worker the pool is the parallelism: the chains run one after another there
+    kwargs = dict(_fit_settings(study), priors=priors, progressbar=False, cores=1)
+    future = (None if future_kwargs is None
+              else {**future_kwargs, "cores": 1, **({"priors": priors} if priors else {})})
+    path = fits_dir / f"{_stem(study, cand)}.nc"
+    return pool.submit(_sample_job, cand.spec, panel, kwargs, str(path), future)
+
+
+def _sample_job(spec, panel, kwargs: dict, path: str, future_kwargs: dict | None) -> dict:
+    """Sample one candidate and save it to ``path`` (in a worker process).
+
+    With ``future_kwargs``, also make its leave-future-out score while its model is
+    compiled in this process. Returns the fit's timing and the score (or why not).
+    """
+    from bayeslong.errors import ConvergenceWarning
+    from bayeslong.fit import fit
+
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)  # recorded from the saved fit
+        result = fit(spec, panel, **kwargs)
+    result.save(path)
+    out = {"timing": dict(result.timing), "seconds": time.perf_counter() - t0, "forecast": None}
+    if future_kwargs is not None:
+        from bayeslong.compare import forecast_score
+
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", ConvergenceWarning)  # kept in score.problems
+                out["forecast"] = forecast_score(spec, panel, **future_kwargs)
+        except BayeslongError:
+            pass  # the comparison meets the same error and says so
+    return out
 
 
 def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler,
-                   strict):
-    """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened)."""
+                   strict, job=None):
+    """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened).
+
+    ``job`` is the future of the candidate's sampling in a worker process (see
+    :func:`_submit`), which is waited for instead of sampling here.
+    """
     t0 = time.perf_counter()
     key = study.fit_key(cand)
     notes: list[str] = []
@@ -1017,8 +1210,33 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                             fit=fit)
         if fit_module is None and ml is not None:  # the ML fit is the run's fit
             what = "reused" if ml_reused else "fitted"
-    bayes, problems = None, ()
-    if fit_module is not None:
+    bayes, problems, forecast = None, (), None
+    if job is not None:  # sampled in a worker process, which saved the fit
+        try:
+            done = job.result()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # problems are recorded below, once
+                bayes = dataclasses.replace(fit_module.load_fit(fits_dir / f"{stem}.nc"),
+                                            timing=done["timing"])
+            forecast = done["forecast"]
+            what = "fitted"
+            detail = _timing_text(done["timing"])
+            say(f"{cand.label}: fitted in {done['seconds']:.0f} s in a worker process"
+                + (f" ({detail})" if detail else ""))
+        except BayeslongError as err:
+            notes.append(f"Bayesian fit failed: {err}")
+            say(f"{cand.label}: Bayesian fit failed: {err}")
+        except Exception as err:  # an internal failure of one fit must not lose the others
+            if strict:
+                raise
+            notes.append(f"Bayesian fit failed with an internal error ({type(err).__name__}: "
+                         f"{err}); rerun with --debug for the traceback and report it")
+            say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
+        if bayes is not None:
+            problems = tuple(convergence_problems(bayes))
+            if problems:
+                say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+    elif fit_module is not None:
         path = fits_dir / f"{stem}.nc"
         if path.exists():
             try:
@@ -1039,17 +1257,18 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
             say(f"{cand.label}: sampling {s['chains']} chains x {s['draws']} draws "
                 f"(+{s['tune']} tuning)")
             try:
-                kwargs = dict(draws=s["draws"], tune=s["tune"], chains=s["chains"], seed=s["seed"],
+                kwargs = dict(_fit_settings(study),
                               priors=_priors_for(study, cand.spec, panel) or None,
                               progressbar=not quiet_sampler)
-                if s["sampler"] != "auto":
-                    kwargs["sampler"] = s["sampler"]
                 with warnings.catch_warnings():
                     # convergence problems are recorded (and shown) below, once
                     warnings.simplefilter("ignore", _convergence_warning())
                     bayes = fit_module.fit(cand.spec, panel, **kwargs)
                 bayes.save(path)
                 what = "fitted"
+                detail = _timing_text(getattr(bayes, "timing", {}) or {})
+                say(f"{cand.label}: fitted in {time.perf_counter() - t0:.0f} s"
+                    + (f" ({detail})" if detail else ""))
             except BayeslongError as err:
                 notes.append(f"Bayesian fit failed: {err}")
                 say(f"{cand.label}: Bayesian fit failed: {err}")
@@ -1063,9 +1282,12 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
             problems = tuple(convergence_problems(bayes))
             if problems:
                 say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+    seconds = time.perf_counter() - t0
+    if job is not None and bayes is not None:
+        seconds = done["seconds"]  # the worker's time; this process only waited for it
     return ModelResult(candidate=cand, key=key, identification=ident, ml=ml, fit=bayes,
                        reused=what == "reused", notes=tuple(notes), problems=problems,
-                       seconds=time.perf_counter() - t0), what
+                       seconds=seconds, forecast=forecast), what
 
 
 def _convergence_warning():
@@ -1173,6 +1395,22 @@ def _ml_comparison(models) -> Step:
     return Step(ran=True, value=table)
 
 
+def _step_path(study: Study, name: str, parts: dict) -> Path:
+    """Where :func:`_cached` saves the value of step ``name`` for ``parts``."""
+    key = hashlib.sha256(json.dumps({"step": name, **parts, "version": package_version()},
+                                    sort_keys=True, default=str).encode()).hexdigest()[:16]
+    return study.output / "steps" / f"{name}-{key}.pkl"
+
+
+def _compare_parts(keys: dict, future: bool) -> dict:
+    """What the saved comparison depends on: the fits, and how leave-future-out refits."""
+    # "lfo": the refits take each fit's priors and may hide wave T (compare.forecast_score)
+    parts = {"fits": keys, "future": future}
+    if future:
+        parts["lfo"] = "fit priors, wave T hidden"
+    return parts
+
+
 def _cached(study: Study, name: str, parts: dict, compute: Callable[[], Any], say=None,
             message: str = "") -> Callable[[], Any]:
     """Wrap ``compute`` so its value is saved under ``<output>/steps`` and reused by content.
@@ -1183,9 +1421,7 @@ def _cached(study: Study, name: str, parts: dict, compute: Callable[[], Any], sa
     say = say or (lambda m: None)
     import pickle
 
-    key = hashlib.sha256(json.dumps({"step": name, **parts, "version": package_version()},
-                                    sort_keys=True, default=str).encode()).hexdigest()[:16]
-    path = study.output / "steps" / f"{name}-{key}.pkl"
+    path = _step_path(study, name, parts)
 
     def run():
         if path.exists():
@@ -1230,8 +1466,12 @@ def _timed(step: Callable[[], Any], what: str, say, strict: bool = False) -> Ste
 _LFO_COLUMNS = ("elpd_lfo", "se_lfo", "lfo_diff", "lfo_dse")
 
 
-def _compare(study, panel, models, method, say, strict=False) -> tuple[Step, Step]:
-    """Compare the candidates by LOO/WAIC (and leave-future-out when asked)."""
+def _compare(study, panel, models, method, say, strict=False,
+             scores: dict | None = None) -> tuple[Step, Step]:
+    """Compare the candidates by LOO/WAIC (and leave-future-out when asked).
+
+    ``scores``: leave-future-out scores the workers made, by label (not refitted here).
+    """
     want_future = study.comparison["future"]
     if method != "bayes":
         ml = _ml_comparison(models)
@@ -1250,15 +1490,17 @@ def _compare(study, panel, models, method, say, strict=False) -> tuple[Step, Ste
     keys = {m.label: m.key for m in models if m.fit is not None}
     kwargs = {}
     if want_future:
-        sm = study.sampling
-        kwargs = {"future": True, "fit_kwargs": {
-            "draws": sm["draws"], "tune": sm["tune"], "chains": sm["chains"], "seed": sm["seed"],
-            "progressbar": False, **({"sampler": sm["sampler"]} if sm["sampler"] != "auto" else {})}}
-        message = ("comparing candidates by PSIS-LOO, WAIC and leave-future-out "
-                   "(one refit per candidate on all but the last wave)")
+        given = {k: v for k, v in (scores or {}).items() if k in fits}
+        kwargs = {"future": True, "fit_kwargs": {**_fit_settings(study), "progressbar": False},
+                  "future_scores": given}
+        left = len(fits) - len(given)
+        message = ("comparing candidates by PSIS-LOO, WAIC and leave-future-out ("
+                   + (f"{left} refit{'s' if left != 1 else ''} on all but the last wave"
+                      if left else "no refit")
+                   + (f"; {len(given)} made by the worker processes" if given else "") + ")")
     else:
         message = "comparing candidates by PSIS-LOO and WAIC"
-    comparison = _timed(_cached(study, "compare", {"fits": keys, "future": want_future},
+    comparison = _timed(_cached(study, "compare", _compare_parts(keys, want_future),
                                 lambda: module.compare(fits, **kwargs), say, message),
                         "comparison", say, strict)
     future = Step.skipped("not requested (set `comparison.future = true`)")
@@ -1318,21 +1560,32 @@ def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
             specs.append(spec)
     if not specs:
         return Step.skipped("no fitted candidate has a constant lag")
-    message = ("lag sensitivity: " + ", ".join(axes) + " (refits "
-               + ", ".join(str(spec) for spec in specs) + " and their variations, default priors)")
+    message = ("lag sensitivity: " + ", ".join(axes) + " around "
+               + ", ".join(str(spec) for spec in specs) + " with the study's priors "
+               "(settings equal to a candidate's fit reuse it; the others are refitted)")
     on = study.sensitivity
-    s = study.sampling
-    fit_kwargs = {"draws": s["draws"], "tune": s["tune"], "chains": s["chains"],
-                  "seed": s["seed"], "progressbar": False}
-    if s["sampler"] != "auto":
-        fit_kwargs["sampler"] = s["sampler"]
+    # the candidates' own sampling settings (as in _run_candidate), so that a setting equal
+    # to a candidate is that candidate's fit and needs no refit
+    fit_kwargs = {**_fit_settings(study), "progressbar": False}
+    fits = [m.fit for m in models if m.fit is not None]
     keys = {m.label: m.key for m in models if m.fit is not None}
-    return _timed(_cached(study, "sensitivity", {"fits": keys, "axes": axes},
+    return _timed(_cached(study, "sensitivity", {"fits": keys, "axes": axes,
+                                                 "priors": "study", "kwargs": fit_kwargs},
                           lambda: module.lag_sensitivity(
                               panel, models=specs,
                               prior_grid=None if on["prior_grid"] else False,
                               variance_scales=None if on["prior_grid"] else False,
                               initial=on["initial"], specification=on["specification"],
-                              power_scaling=on["power_scaling"], fit_kwargs=fit_kwargs),
+                              power_scaling=on["power_scaling"], fit_kwargs=fit_kwargs,
+                              priors=study.priors, fits=fits),
                           say, message),
                   "lag sensitivity", say, strict)
+
+
+def _fit_settings(study: Study) -> dict:
+    """Keyword arguments of :func:`bayeslong.fit` from ``[sampling]`` (without priors)."""
+    s = study.sampling
+    kwargs = {"draws": s["draws"], "tune": s["tune"], "chains": s["chains"], "seed": s["seed"]}
+    if s["sampler"] != "auto":
+        kwargs["sampler"] = s["sampler"]
+    return kwargs

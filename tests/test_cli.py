@@ -288,3 +288,84 @@ def test_report_before_run_says_to_run_first(tmp_path, capsys):
     assert line.startswith("error: candidate 'ar' has no saved results for the current study "
                            "and data")
     assert line.endswith("run `bayeslong run s.toml` first")
+
+
+def test_sensitivity_reads_the_candidates_fits_instead_of_refitting(tmp_path, capsys, monkeypatch):
+    pytest.importorskip("pymc")
+    import importlib
+
+    path = _study(tmp_path, extra='draws = 60\ntune = 60\nchains = 1\nsampler = "pymc"\n'
+                                  "[checks]\nppc = false\n[sensitivity]\nspecification = true\n"
+                                  '[priors]\nlag = ["normal", 0.2, 0.4]\n')
+    path.write_text(path.read_text().replace('method = "ml"', 'method = "bayes"'))
+    fit_module = importlib.import_module("bayeslong.fit")  # the module, not bl.fit
+    real, calls = fit_module.fit, []
+
+    def counted(spec, panel, **kwargs):  # the real fit, counted
+        calls.append((spec.name, panel.n_waves, kwargs.get("priors")))
+        return real(spec, panel, **kwargs)
+
+    monkeypatch.setattr(fit_module, "fit", counted)
+    assert main(["run", str(path), "--json", "--quiet"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    # one fit, the candidate's (with the study's prior); the sensitivity made none of its own
+    assert calls == [("ar", 4, {"lag": ("normal", 0.2, 0.4)})]
+    rows = out["sensitivity"]["table"]
+    default = next(r for r in rows.values() if r["axis"] == "default")
+    assert default["setting"] == "priors as given"
+    # reference: the candidate's saved draws, summarised with NumPy (the JSON keeps 10 digits)
+    from bayeslong.fit import load_fit
+
+    (saved,) = (tmp_path / "out" / "fits").glob("*.nc")
+    lag = load_fit(saved).idata.posterior["lag"].values.ravel()
+    assert default["mean"] == pytest.approx(lag.mean(), rel=1e-8)
+    assert default["sd"] == pytest.approx(lag.std(ddof=1), rel=1e-8)
+    assert default["q5"] == pytest.approx(np.quantile(lag, 0.05), rel=1e-8)
+    # where the time went: every step is listed, and the report says the row was not refitted
+    steps = [s["step"] for s in out["stages"]]
+    assert steps[0] == "intake" and steps[-1] == "report" and "lag sensitivity" in steps
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert "read from that fit instead of refitted (default)" in page
+    assert "Time spent by step" in page
+
+
+def test_nutpie_sampler_without_nutpie_is_a_user_error_before_any_fit(tmp_path, capsys, monkeypatch):
+    import bayeslong.study as study_module
+
+    path = _study(tmp_path, extra='sampler = "nutpie"\n')
+    path.write_text(path.read_text().replace('method = "ml"', 'method = "bayes"'))
+    real = study_module._installed
+    monkeypatch.setattr(study_module, "_installed", lambda name: name != "nutpie" and real(name))
+    assert main(["run", str(path)]) == 1
+    (line,) = [x for x in capsys.readouterr().err.splitlines() if x.startswith("error:")]
+    assert line.startswith('error: study file s.toml: `sampling.sampler = "nutpie"` needs the '
+                           "nutpie package, which is not installed; install it with")
+    assert not (tmp_path / "out" / "fits").exists() or not any((tmp_path / "out" / "fits").iterdir())
+
+
+def test_worker_processes_give_the_fits_and_forecasts_of_a_run_in_one_process(tmp_path, capsys):
+    pytest.importorskip("pymc")
+    # reference: the same study run with `workers = 1` (everything in this process); the
+    # seeds are the same, so the draws, LOO and leave-future-out scores must be the same
+    tables = {}
+    for workers in (2, 1):
+        folder = tmp_path / f"w{workers}"
+        folder.mkdir()
+        path = _study(folder, extra=f'draws = 60\ntune = 60\nchains = 1\nsampler = "pymc"\n'
+                                    f"workers = {workers}\n[checks]\nppc = false\n"
+                                    "[comparison]\nfuture = true\n",
+                      model_lines='model = "ar"\n[[models]]\nmodel = "linear-growth"')
+        path.write_text(path.read_text().replace('method = "ml"', 'method = "bayes"'))
+        # --quiet where this process samples: PyMC's progress bar would write to the
+        # stream an earlier test captured (workers sample without one)
+        assert main(["run", str(path), "--json"] + (["--quiet"] if workers == 1 else [])) == 0
+        captured = capsys.readouterr()
+        out = json.loads(captured.out)
+        assert out["fitted"] == 2, [m["notes"] for m in out["models"]]
+        tables[workers] = out["comparison"]["table"]
+        if workers == 2:
+            assert "in one of 2 worker processes" in captured.err
+            assert "candidates (all)" in [s["step"] for s in out["stages"]]
+    for name in ("ar", "linear-growth"):
+        for column in ("elpd_loo", "elpd_waic", "elpd_lfo", "se_lfo"):
+            assert tables[2][name][column] == pytest.approx(tables[1][name][column], rel=1e-9)

@@ -251,9 +251,12 @@ def test_leave_future_out_ranks_alt_above_linear_growth_on_alt_data(alt_fits, al
     # the module, not the function `bayeslong.fit` that the package namespace exports
     fit_module = importlib.import_module("bayeslong.fit")
 
-    made = {}
+    made, given = {}, {}
 
     def stand_in(spec, panel, *, seed=1, **kwargs):  # the normal approximation in place of NUTS
+        given[spec.name] = panel
+        if np.isnan(panel.y[:, -1]).all():  # last wave hidden: the (T-1)-wave posterior (the
+            panel = panel.head(T - 1)       # hidden-wave test below); ML needs observed waves
         if spec.name not in made:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", bl.BoundaryWarning)  # a zero variance on 4 waves
@@ -263,6 +266,23 @@ def test_leave_future_out_ranks_alt_above_linear_growth_on_alt_data(alt_fits, al
     monkeypatch.setattr(fit_module, "fit", stand_in)
     table = compare(alt_fits, future=True, fit_kwargs={"draws": 200})
     assert all(f.panel.n_waves == T - 1 for f in made.values())  # refits on waves 1..T-1
+    # alt has a wave-5-only parameter (resid_var[5]), so its refit is on the first 4 waves;
+    # linear-growth has none, so its refit keeps the 5-wave design with wave 5 hidden, as
+    # long as the sampler's data-based start values exist without wave 5
+    from bayeslong.compare import last_wave_hidden
+    from bayeslong.ml import start_values
+    from bayeslong.structure import structure_for
+
+    assert given["alt"].n_waves == T - 1
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # NumPy's "mean of empty slice"
+        starts = start_values(structure_for(bl.model("linear-growth"), alt_data),
+                              last_wave_hidden(alt_data))
+    if np.isfinite(starts).all():
+        assert given["linear-growth"].n_waves == T
+        assert np.isnan(given["linear-growth"].y[:, -1]).all()
+    else:
+        assert given["linear-growth"].n_waves == T - 1
     lg = table.loc["linear-growth"]
     # the one-step forecast of a lag-0.5 process: the lag model wins by > 2 SE (common practice)
     assert lg["lfo_diff"] > 2 * lg["lfo_dse"] > 0
@@ -274,6 +294,112 @@ def test_leave_future_out_ranks_alt_above_linear_growth_on_alt_data(alt_fits, al
     assert score.se == pytest.approx(np.sqrt(300) * score.pointwise.std(ddof=1))
     with pytest.raises(DataError, match="at least 4 waves"):
         bl.forecast_score(bl.model("alt"), alt_data.head(3))
+
+
+def test_leave_future_out_refits_with_each_fits_priors_and_records_non_convergence(alt_fits, monkeypatch):
+    import importlib
+
+    from bayeslong._approx import ApproxFit
+    from bayeslong.priors import resolve_priors
+
+    @dataclasses.dataclass(frozen=True, kw_only=True, eq=False)
+    class WithPriors(ApproxFit):  # an approximate fit that carries a prior set, as Fit does
+        prior_set: object = None
+
+    lag_prior = {"lag": ("normal", 0.3, 0.2)}
+    fits = {}
+    for name, f in alt_fits.items():
+        fields = {k.name: getattr(f, k.name) for k in dataclasses.fields(f)}
+        overrides = lag_prior if name == "alt" else None
+        fits[name] = WithPriors(**fields, prior_set=resolve_priors(f.structure, f.panel, overrides))
+    fit_module = importlib.import_module("bayeslong.fit")
+    seen, made = {}, {}
+
+    def stand_in(spec, panel, *, seed=1, priors=None, **kwargs):
+        seen[spec.name] = priors
+        if np.isnan(panel.y[:, -1]).all():  # the hidden-wave refit (see the test above)
+            panel = panel.head(T - 1)
+        if spec.name == "alt":  # as bl.fit warns for a run that has not converged
+            warnings.warn("the fit has not converged: lag: r_hat 1.200 >= 1.01", bl.ConvergenceWarning)
+        if spec.name not in made:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", bl.BoundaryWarning)  # a zero variance on 4 waves
+                made[spec.name] = approximate_fit(spec, panel, draws=200, chains=2, seed=seed)
+        return made[spec.name]
+
+    monkeypatch.setattr(fit_module, "fit", stand_in)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", bl.ConvergenceWarning)  # recorded, not issued
+        table = compare(fits, future=True, fit_kwargs={"draws": 200})
+    # each refit got its own fit's overrides: alt's lag prior (alt refits on waves 1..4);
+    # linear-growth has none: refitted on waves 1..4 it gets none, and refitted with wave 5
+    # hidden (see the test above) the 4-wave fit's whole prior table written out (the
+    # defaults of the 4-wave panel, not of the 5-wave one)
+    from bayeslong.structure import structure_for
+
+    assert seen["alt"] == lag_prior
+    panel = alt_fits["linear-growth"].panel
+    past = panel.head(T - 1)
+    if seen["linear-growth"] is not None:
+        table4 = resolve_priors(structure_for(bl.model("linear-growth"), past), past)
+        assert seen["linear-growth"] == {p.parameter: (p.family, *p.args) for p in table4.priors}
+    assert table.attrs["lfo_problems"] == {"alt": "the fit has not converged: lag: r_hat 1.200 >= 1.01"}
+    assert "The leave-future-out refit of 'alt' did not converge" in table.attrs["reading"]
+    assert set(table.attrs["lfo_timing"]) == {"alt", "linear-growth"}
+    # called directly, forecast_score still warns, and keeps the message with the score
+    with pytest.warns(bl.ConvergenceWarning, match="r_hat 1.200"):
+        score = bl.forecast_score(bl.model("alt"), fits["alt"].panel)
+    assert score.problems == ("the fit has not converged: lag: r_hat 1.200 >= 1.01",)
+
+
+def _panel_with_covariate(n=80, seed=21):
+    """A 5-wave panel with a time-varying covariate and some missing outcomes (NumPy only)."""
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(n, T, 1))
+    y = rng.normal(size=(n, T, 1)).cumsum(axis=1) + 0.5 * x
+    y[rng.uniform(size=(n, T)) < 0.15] = np.nan
+    y[:, 0] = np.where(np.isnan(y[:, 0]), 0.0, y[:, 0])
+    return bl.Panel(units=tuple(range(n)), waves=tuple(range(1, T + 1)), outcomes=("y",),
+                    time_varying=("x",), y=y, x=x)
+
+
+@pytest.mark.parametrize("name, options, expected", [
+    ("linear-growth", {}, True),
+    ("alt", {"residuals": "equal"}, True),
+    ("ar", {}, True),
+    ("alt", {}, False),            # resid_var[5] exists only with wave 5
+    ("fixed-effects", {}, False),  # the level is regressed on x at every wave, x[5] too
+], ids=["linear-growth", "alt-equal", "ar", "alt-free", "fixed-effects"])
+def test_hidden_last_wave_model_is_the_past_model_exactly_when_claimed(name, options, expected):
+    from bayeslong.build import build_model
+    from bayeslong.compare import contains_past, last_wave_hidden
+    from bayeslong.priors import resolve_priors
+    from bayeslong.structure import structure_for
+
+    panel = _panel_with_covariate()
+    spec = bl.model(name, **options)
+    past, hidden = panel.head(T - 1), last_wave_hidden(panel)
+    assert hidden.n_waves == T and np.isnan(hidden.y[:, -1]).all()
+    before, after = structure_for(spec, past), structure_for(spec, panel)
+    assert contains_past(before, after) is expected
+    if not expected:
+        return
+    # reference: the (T-1)-wave model itself. With the same priors written out, the T-wave
+    # model on the panel whose last wave is hidden has the same log posterior density at
+    # every point of the shared parameter space (checked at random points)
+    prior_set = resolve_priors(before, past)
+    priors = {p.parameter: (p.family, *p.args) for p in prior_set.priors}
+    m_past, m_hidden = build_model(spec, past, priors), build_model(spec, hidden, priors)
+    assert [v.name for v in m_past.value_vars] == [v.name for v in m_hidden.value_vars]
+    f_past, f_hidden = m_past.compile_logp(), m_hidden.compile_logp()
+    rng = np.random.default_rng(5)
+    start = m_past.initial_point()
+    for _ in range(3):
+        point = {k: v + rng.normal(scale=0.3, size=np.shape(v)) for k, v in start.items()}
+        assert f_hidden(point) == pytest.approx(f_past(point), rel=1e-9, abs=1e-8)
+    # and against hiding nothing, the density differs (the check can fail)
+    f_full = build_model(spec, panel, priors).compile_logp()
+    assert f_full(point) != pytest.approx(f_past(point), rel=1e-6)
 
 
 # --------------------------------------------------------------------------------------------

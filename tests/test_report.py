@@ -184,26 +184,47 @@ def test_loo_reading_follows_the_two_se_rule(diff, dse, verdict):
     assert verdict in line
 
 
-CHROMIUM = Path("/usr/bin/chromium")
+CHROMIUM = Path("/usr/bin/chromium")  # Debian's package (apt-get install chromium)
+
+
+def _open_in_chromium(page: Path, profile: Path) -> tuple[int, list[str], str]:
+    """Load ``page`` in headless Chromium; return (exit code, console lines, rendered DOM).
+
+    The flags are the machine notes' (no sandbox, GPU, QUIC, first-run, background
+    networking, component updates or sync; a fresh profile). With ``--enable-logging=stderr``
+    Chromium writes every console message of the page to stderr as a ``CONSOLE`` line
+    (uncaught exceptions as "Uncaught ...").
+    """
+    result = subprocess.run(
+        [str(CHROMIUM), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+         "--no-first-run", "--disable-background-networking", "--disable-component-update",
+         "--disable-sync", f"--user-data-dir={profile}", "--enable-logging=stderr",
+         "--v=0", "--dump-dom", page.resolve().as_uri()],
+        capture_output=True, text=True, timeout=120)
+    console = [line for line in result.stderr.splitlines() if "CONSOLE" in line or "Uncaught" in line]
+    return result.returncode, console, result.stdout
 
 
 @pytest.mark.skipif(not CHROMIUM.exists(), reason="/usr/bin/chromium is not installed here")
 def test_report_opens_in_headless_chromium_without_console_errors(rendered, tmp_path):
-    paths, _ = rendered
-    result = subprocess.run(
-        [str(CHROMIUM), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
-         "--no-first-run", "--disable-background-networking", "--disable-component-update",
-         "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", "--enable-logging=stderr",
-         "--v=0", "--dump-dom", paths["html"].resolve().as_uri()],
-        capture_output=True, text=True, timeout=120)
-    assert result.returncode == 0, result.stderr[-2000:]
-    # the page has no script, so any console message (Chromium logs them as CONSOLE lines,
-    # errors as "Uncaught ...") means something went wrong
-    console = [line for line in result.stderr.splitlines() if "CONSOLE" in line or "Uncaught" in line]
-    assert console == []
-    assert "Lag sensitivity" in result.stdout  # the DOM was rendered
-    assert EVIL_COLUMN not in result.stdout  # still escaped after parsing
+    # control: the same check sees a page's console error, so an empty list below means
+    # the report logged nothing (not that Chromium stopped reporting console messages)
+    control = tmp_path / "control.html"
+    control.write_text("<!DOCTYPE html><html><head><title>c</title></head><body>"
+                       "<script>console.error('control-error'); undefinedName;</script>"
+                       "</body></html>", encoding="utf-8")
+    code, console, _ = _open_in_chromium(control, tmp_path / "profile-control")
+    assert code == 0
+    assert any("control-error" in line for line in console)
+    assert any("Uncaught ReferenceError" in line for line in console)
 
+    paths, _ = rendered
+    code, console, dom = _open_in_chromium(paths["html"], tmp_path / "profile")
+    assert code == 0, console
+    assert console == []  # the report has no script: any console message is a fault
+    assert "Lag sensitivity" in dom  # the DOM was rendered
+    assert EVIL_COLUMN not in dom  # still escaped after parsing
+    assert dom.count('src="data:image/png;base64,') >= 1  # figures embedded, nothing fetched
 
 
 @pytest.mark.parametrize("d_aic, verdict", [(1.5, "about equally supported"),
@@ -216,3 +237,31 @@ def test_aic_reading_follows_the_two_point_rule(d_aic, verdict):
     table = pd.DataFrame({"d_aic": [0.0, d_aic]}, index=["a", "b"])
     (line,) = _aic_reading(table)
     assert line == f"b: AIC {d_aic:.1f} above a: {verdict} by this criterion."
+
+
+def test_leave_future_out_problems_and_time_spent_are_reported(tmp_path):
+    import dataclasses
+
+    from bayeslong.study import _LFO_COLUMNS
+
+    base = _results(tmp_path)
+    table = pd.DataFrame({"elpd_loo": [-10.0, -12.0], "elpd_diff": [0.0, 2.0], "dse": [0.0, 1.5],
+                          "elpd_lfo": [-3.0, -4.0], "se_lfo": [1.0, 1.0], "lfo_diff": [0.0, 1.0],
+                          "lfo_dse": [0.0, 0.8]}, index=pd.Index(["a", "b"], name="model"))
+    table.attrs["lfo_problems"] = {"b": "lag: r_hat 1.300 >= 1.01; " + EVIL_COLUMN}
+    stages = (("intake", 0.2, ""), ("comparison", 12.5, "leave-future-out refit of b: compile 9 s"))
+    results = dataclasses.replace(
+        base, comparison=Step(ran=True, value=table),
+        future=Step(ran=True, value=table[list(_LFO_COLUMNS)]), stages=stages, seconds=13.0)
+    paths = write_report(results, tmp_path / "out")
+    page = paths["html"].read_text(encoding="utf-8")
+    parser = _Collector()
+    parser.feed(page)
+    text = "".join(parser.text)
+    assert "These refits did not converge by the stated criteria" in text
+    assert "b: lag: r_hat 1.300 >= 1.01; " + EVIL_COLUMN in text  # shown, and escaped:
+    assert EVIL_COLUMN not in page
+    assert "Time spent by step (the run took 13 s" in text
+    assert "leave-future-out refit of b: compile 9 s" in text
+    md = paths["markdown"].read_text(encoding="utf-8")
+    assert "| comparison | 12.5 | leave-future-out refit of b: compile 9 s |" in md

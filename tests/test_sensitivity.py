@@ -283,3 +283,50 @@ def test_plan_with_bayes_small():
     assert list(out["n_ok"]) == [4, 4, 4]
     # posterior SD of the lag shrinks with N (roughly 1/sqrt(N): common practice)
     assert out["post_sd"].is_monotonic_decreasing
+
+
+def test_settings_equal_to_a_given_fit_are_read_from_it_others_are_refitted(monkeypatch):
+    pytest.importorskip("bayeslong.fit")
+    import importlib
+    import warnings
+
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=60, n_waves=4, seed=2).panel()
+    kw = dict(draws=60, tune=60, chains=1, seed=4, sampler="pymc", progressbar=False)
+    priors = {"lag": ("normal", 0.2, 0.4)}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)  # a tiny run; not the point
+        given = bl.fit(bl.model("ar"), panel, priors=priors, **kw)
+    fit_module = importlib.import_module("bayeslong.fit")
+    asked = []
+
+    def stand_in(spec, panel, **kwargs):  # records each refit instead of sampling
+        asked.append(kwargs.get("priors"))
+        raise RuntimeError("refit asked for")
+
+    monkeypatch.setattr(fit_module, "fit", stand_in)
+    result = bl.lag_sensitivity(panel, models=["ar"], prior_grid=[("normal", 0.0, 0.1)],
+                                variance_scales=False, initial=False, specification=True,
+                                power_scaling=True, fit_kwargs=kw, priors=priors, fits=[given])
+    # the default setting (and its specification row) is the given fit: no refit, and its
+    # row is the given draws summarised with NumPy; power-scaling came from it too
+    assert result.reused == ("default",)
+    lag = given.idata.posterior["lag"].values.ravel()
+    t = result.table
+    for axis in ("default", "specification"):
+        row = t[t["axis"] == axis].iloc[0]
+        assert row["mean"] == pytest.approx(lag.mean(), rel=1e-12)
+        assert row["q95"] == pytest.approx(np.quantile(lag, 0.95), rel=1e-12)
+    assert t[t["axis"] == "default"].iloc[0]["setting"] == "priors as given"
+    assert set(t[t["axis"] == "power-scaling"]["setting"]) == {"prior", "likelihood"}
+    # the prior-grid setting differs from the given fit (its lag prior), so it was refitted,
+    # with the lag's prior replaced on top of the given overrides
+    assert asked == [{"lag": ("normal", 0.0, 0.1)}]
+    assert list(result.failed) == ["prior: lag ~ normal(0, 0.1)"]
+
+    # another seed is another fit: nothing is read from the given one
+    asked.clear()
+    with pytest.raises(SpecError, match="the default fit of model 'ar' failed"):
+        bl.lag_sensitivity(panel, models=["ar"], prior_grid=False, variance_scales=False,
+                           initial=False, specification=True, power_scaling=False,
+                           fit_kwargs={**kw, "seed": 5}, priors=priors, fits=[given])
+    assert asked == [priors]

@@ -76,7 +76,7 @@ def test_defaults_fill_what_the_file_leaves_out(tmp_path):
     study = load_study(_write(tmp_path))
     # defaults documented in the module docstring of bayeslong.study
     assert study.sampling == {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4,
-                              "seed": 1, "sampler": "auto"}
+                              "seed": 1, "sampler": "auto", "workers": 1}
     assert study.data.layout == "long"
     assert study.output == tmp_path.resolve() / "bayeslong-output"
     assert not any(study.sensitivity.values())
