@@ -1,11 +1,9 @@
 """bayeslong: Bayesian estimation of longitudinal panel models that join growth and lag.
 
-The public API, nothing else (see DESIGN section 5).
+The public API, nothing else (docs/architecture.md).
 """
 
 import os as _os
-import sys as _sys
-import types as _types
 
 # PyTensor looks for a BLAS to link its C code against and warns when a pip install has
 # none; the matrices here are small, so NumPy's C-API fallback serves. Saying so up front
@@ -18,24 +16,28 @@ if "blas__ldflags" not in _os.environ.get("PYTENSOR_FLAGS", ""):
 # and SciPy only. Everything that needs PyMC or ArviZ (several seconds to import) loads on
 # first use, so `bayeslong models`, `check-data`, `identify` and `fit_ml` start quickly.
 from bayeslong.data import Panel, Patterns
-from bayeslong.spec import Spec, catalog, model, load_model
-from bayeslong.ml import MLResult, fit_ml
-from bayeslong.identify import Identification, identify
+from bayeslong.model.spec import Spec, catalog, model, load_model
+from bayeslong.model.identification import Identification, identify
+from bayeslong.infer.ml import MLResult, fit_ml
 
 _LAZY = {
-    "Fit": "fit", "fit": "fit", "load_fit": "fit",
-    "Prior": "priors", "PriorSet": "priors", "prior_predictive": "priors",
-    "Study": "study", "StudyResults": "study", "load_study": "study", "run_study": "study",
-    "ForecastScore": "compare", "compare": "compare", "explain_comparison": "compare",
-    "forecast_score": "compare", "pareto_k": "compare",
-    "Simulation": "simulate", "simulate": "simulate",
-    "Task": "batch", "TaskResult": "batch", "BatchResult": "batch", "run_many": "batch",
-    "LagSensitivity": "sensitivity", "lag_sensitivity": "sensitivity", "plan": "sensitivity",
-    "power_scaling": "sensitivity",
-    "build_model": "build",
-    "write_report": "report",
-    "ppc": "check", "replicate": "check", "trajectories": "check",
-    "plot_compare": "plots", "plot_ppc": "plots", "plot_trajectories": "plots",
+    "Fit": "infer.sampling", "fit": "infer.sampling", "load_fit": "infer.sampling",
+    "Prior": "infer.priors", "PriorSet": "infer.priors", "prior_predictive": "infer.priors",
+    "build_model": "infer.pymc_model",
+    "Task": "infer.batch", "TaskResult": "infer.batch", "BatchResult": "infer.batch",
+    "run_many": "infer.batch",
+    "Simulation": "model.simulation", "simulate": "model.simulation",
+    "ForecastScore": "evaluate.comparison", "compare": "evaluate.comparison",
+    "explain_comparison": "evaluate.comparison", "forecast_score": "evaluate.comparison",
+    "pareto_k": "evaluate.comparison",
+    "LagSensitivity": "evaluate.sensitivity", "lag_sensitivity": "evaluate.sensitivity",
+    "power_scaling": "evaluate.sensitivity", "plan": "evaluate.sensitivity",
+    "ppc": "evaluate.checks", "replicate": "evaluate.checks", "trajectories": "evaluate.checks",
+    "plot_compare": "evaluate.plots", "plot_ppc": "evaluate.plots",
+    "plot_trajectories": "evaluate.plots",
+    "Study": "workflow.study_file", "load_study": "workflow.study_file",
+    "StudyResults": "workflow.results", "run_study": "workflow.runner",
+    "write_report": "workflow.report",
 }
 
 
@@ -51,19 +53,6 @@ def __getattr__(name):
 
 def __dir__():
     return sorted(set(globals()) | set(_LAZY))
-
-
-class _Package(_types.ModuleType):
-    # Importing a submodule sets it as an attribute of the package; for `fit`, `compare`
-    # and `simulate` that would hide the function of the same name (bl.fit would become
-    # the module). Such module attributes are not stored; the function loads on first use.
-    def __setattr__(self, name, value):
-        if name in _LAZY and isinstance(value, _types.ModuleType):
-            return
-        super().__setattr__(name, value)
-
-
-_sys.modules[__name__].__class__ = _Package
 
 
 # --- errors ----------------------------------------------------------------------------

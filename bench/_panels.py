@@ -4,8 +4,8 @@ import numpy as np
 import pandas as pd
 
 import bayeslong as bl
-from bayeslong.moments import moments_at
-from bayeslong.structure import build_structure
+from bayeslong.model.moments import moments_at
+from bayeslong.model.structure import build_structure
 
 ALT_VALUES = {"level_mean": 5.0, "slope_mean": 0.5, "lag": 0.3, "initial_mean": 5.0,
               "level_var": 1.0, "level_slope_cov": 0.1, "slope_var": 0.2, "initial_var": 1.5,

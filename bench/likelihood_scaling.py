@@ -1,6 +1,6 @@
 """Cost of one log-likelihood + gradient evaluation of `alt` at N = 100 and N = 100,000.
 
-The engine works on pattern-grouped cross-products (DESIGN section 2), so one evaluation
+The engine works on pattern-grouped cross-products (docs/engine.md), so one evaluation
 should cost the same whatever the number of units. Prints the median time of repeated
 evaluations at each N and their ratio (target: below 2), for both engines side by side:
 the NumPy one that maximum likelihood calls and the compiled PyTensor graph the sampler
@@ -20,10 +20,10 @@ sys.path.insert(0, str(Path(__file__).parent))
 from _panels import ALT_VALUES, alt_panel  # noqa: E402
 
 import bayeslong as bl  # noqa: E402
-from bayeslong._threads import single_thread  # noqa: E402
-from bayeslong.likelihood import (compiled_loglik_function, loglik_function,  # noqa: E402
-                                  pattern_arrays)
-from bayeslong.structure import structure_for  # noqa: E402
+from bayeslong.threads import single_thread  # noqa: E402
+from bayeslong.infer.likelihood import loglik_function, pattern_arrays  # noqa: E402
+from bayeslong.infer.loglik_op import compiled_loglik_function  # noqa: E402
+from bayeslong.model.structure import structure_for  # noqa: E402
 
 
 ENGINES = {"numpy": loglik_function, "pytensor": compiled_loglik_function}

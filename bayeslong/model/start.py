@@ -1,0 +1,54 @@
+"""Data-based start values for optimisation, sampling and the identification check.
+
+Documented rules, no fitting: a point inside the parameter space near the data, from which
+maximum likelihood starts, NUTS chains start, and the identification check draws its
+random points (docs/engine.md, "Start values").
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from bayeslong.model.structure import Structure
+
+
+def start_values(structure: Structure, panel) -> np.ndarray:
+    """Data-based start values, one per parameter (documented rules, no fitting).
+
+    Means start at the first wave's mean (level, initial) or the overall mean
+    (intercepts); slope means at the average change per wave; lags, effects and
+    covariances at 0; variances at half the outcome's variance (the slope's divided by
+    (T-1)^2); free time scores at their linear values.
+    """
+    y = panel.y  # (N, T, K)
+    T = panel.n_waves
+    first = np.nanmean(y[:, 0, :], axis=0)
+    last = np.nanmean(y[:, -1, :], axis=0)
+    overall = np.nanmean(y, axis=(0, 1))
+    var = np.nanvar(y.reshape(-1, y.shape[2]), axis=0)
+    proc = {name: k for k, name in enumerate(panel.outcomes)}
+
+    def which(name: str) -> int:
+        if "[" in name:
+            for key in name[name.index("[") + 1:-1].replace("<-", ",").split(","):
+                if key in proc:
+                    return proc[key]
+        return 0
+
+    theta = np.zeros(structure.n_params)
+    for i, (name, kind) in enumerate(zip(structure.names, structure.kinds)):
+        k = which(name)
+        if kind == "mean":
+            theta[i] = {"level": first[k], "initial": first[k],
+                        "slope": (last[k] - first[k]) / max(T - 1, 1)}.get(name.split("_")[0], 0.0)
+        elif kind == "intercept":
+            theta[i] = overall[k] if name.startswith("intercept") else 0.0
+        elif kind == "loading":
+            if name.startswith("slope_score"):
+                theta[i] = float(name.rsplit(",", 1)[-1].rstrip("]").split("[")[-1]) - 1.0
+            elif name.startswith("initial_on_level"):
+                theta[i] = 1.0
+        elif kind == "var":
+            scale = 1.0 / max(T - 1, 1) ** 2 if name.startswith(("slope", "curve")) else 1.0
+            theta[i] = 0.5 * var[k] * scale
+    return theta

@@ -1,0 +1,424 @@
+"""The parameter table: which entry of which model matrix each free parameter fills.
+
+A :class:`Structure` turns a :class:`~bayeslong.spec.Spec` and the panel's dimensions
+(waves, outcome names, covariate names) into the matrices of the engine (docs/engine.md, "Matrix form"):
+
+    eta = a + B eta + G w + zeta,  zeta ~ N(0, Psi);   y = nu + Lam eta + eps,  eps ~ N(0, Theta)
+
+Every matrix is stored as a fixed part and an index array: entry ``[i, j]`` equals
+``fixed[i, j] + theta[index[i, j]]`` where the index is not -1. A parameter that fills
+several entries is an equality restriction. Variances and covariances come in *blocks*
+(sets of variables whose covariance is free), which the optimiser and the priors use to
+keep covariance matrices positive definite.
+
+No code here branches on a model's name: everything follows from the spec's fields.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+
+from bayeslong.errors import SpecError
+from bayeslong.model.spec import Spec
+
+#: Parameter kinds, used by priors and start values.
+KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
+
+
+@dataclass(frozen=True, eq=False)
+class Matrix:
+    """One model matrix: ``fixed + theta[index]`` where ``index >= 0``."""
+
+    fixed: np.ndarray
+    index: np.ndarray
+
+    @classmethod
+    def zeros(cls, *shape) -> "Matrix":
+        return cls(np.zeros(shape), np.full(shape, -1, dtype=np.int64))
+
+
+@dataclass(frozen=True, eq=False)
+class Block:
+    """A free covariance block: ``index[r, c]`` is the parameter of entry (r, c), -1 if fixed 0."""
+
+    index: np.ndarray  # (q, q) symmetric
+
+
+@dataclass(frozen=True, eq=False)
+class Structure:
+    """Parameter table of one spec on one panel design (see module docstring)."""
+
+    spec: Spec
+    names: tuple[str, ...]
+    kinds: tuple[str, ...]
+    latents: tuple[str, ...]
+    observed: tuple[str, ...]
+    covariates: tuple[str, ...]
+    matrices: dict
+    blocks: tuple[Block, ...]
+    n_waves: int
+    outcomes: tuple[str, ...]
+
+    @property
+    def n_params(self) -> int:
+        return len(self.names)
+
+    def position(self, name: str) -> int:
+        try:
+            return self.names.index(name)
+        except ValueError:
+            raise SpecError(
+                f"model '{self.spec.name}' has no parameter {name!r}; its parameters are "
+                + ", ".join(self.names)
+            ) from None
+
+    @cached_property
+    def variance_params(self) -> np.ndarray:
+        """Indices of parameters that are variances (diagonal of some block)."""
+        return np.array(sorted({int(i) for b in self.blocks for i in np.diag(b.index) if i >= 0}),
+                        dtype=np.int64)
+
+    @cached_property
+    def path_depth(self) -> int:
+        """Smallest k with B^k = 0 for every value of the parameters (1 when B is zero).
+
+        The longest chain of regressions among the latents plus one; it bounds the series
+        (I - B)^-1 = I + B + ... + B^(k-1) (:func:`bayeslong.moments._total_effects`).
+        """
+        m = self.matrices["B"]
+        pattern = ((m.index >= 0) | (m.fixed != 0)).astype(np.int64)
+        power, k = pattern, 1
+        while power.any():
+            if k > len(pattern):
+                raise SpecError(f"model '{self.spec.name}': the latent regressions form a loop "
+                                "(the model is not recursive)")
+            power = np.minimum(power @ pattern, 1)
+            k += 1
+        return k
+
+    def fill(self, theta: np.ndarray, which: str) -> np.ndarray:
+        """Numeric matrix ``which`` at parameter vector ``theta`` (NumPy; for checks and starts)."""
+        m = self.matrices[which]
+        ext = np.append(np.asarray(theta, dtype=float), 0.0)
+        return m.fixed + np.where(m.index >= 0, ext[m.index], 0.0)
+
+
+class _Table:
+    """Accumulates parameters and matrix entries while a structure is built."""
+
+    def __init__(self, n_latent, n_obs, n_cov):
+        self.names: list[str] = []
+        self.kinds: list[str] = []
+        self.m = {
+            "a": Matrix.zeros(n_latent), "B": Matrix.zeros(n_latent, n_latent),
+            "G": Matrix.zeros(n_latent, n_cov), "Psi": Matrix.zeros(n_latent, n_latent),
+            "nu": Matrix.zeros(n_obs), "Lam": Matrix.zeros(n_obs, n_latent),
+            "Theta": Matrix.zeros(n_obs, n_obs),
+        }
+        self.blocks: dict[tuple, Block] = {}
+
+    def param(self, name: str, kind: str) -> int:
+        if name in self.names:
+            return self.names.index(name)
+        self.names.append(name)
+        self.kinds.append(kind)
+        return len(self.names) - 1
+
+    def put(self, which: str, pos, name: str, kind: str, offset: float = 0.0) -> None:
+        self.m[which].index[pos] = self.param(name, kind)
+        self.m[which].fixed[pos] = offset
+
+    def fix(self, which: str, pos, value: float) -> None:
+        self.m[which].index[pos] = -1
+        self.m[which].fixed[pos] = value
+
+    def block(self, which: str, rows: list[int], names: list[list[str | None]]) -> None:
+        """Place a free covariance block on ``rows`` of Psi or Theta."""
+        q = len(rows)
+        idx = np.full((q, q), -1, dtype=np.int64)
+        for r in range(q):
+            for c in range(r + 1):
+                if names[r][c] is None:
+                    continue
+                k = self.param(names[r][c], "var" if r == c else "cov")
+                idx[r, c] = idx[c, r] = k
+                self.m[which].index[rows[r], rows[c]] = k
+                self.m[which].index[rows[c], rows[r]] = k
+        self.blocks.setdefault(tuple(idx.ravel()), Block(idx))
+
+
+def _label(base: str, *keys) -> str:
+    keys = [str(k) for k in keys if k is not None and k != ""]
+    return f"{base}[{','.join(keys)}]" if keys else base
+
+
+def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time_invariant=()) -> Structure:
+    """Build the parameter table of ``spec`` for a panel design.
+
+    Parameters
+    ----------
+    spec : Spec
+    outcomes : sequence of str
+        Outcome (process) names; their number must equal ``spec.processes``.
+    n_waves : int
+        Number of waves T (equally spaced).
+    time_varying, time_invariant : sequence of str
+        Covariate names x (one column per wave) and z.
+
+    Returns
+    -------
+    Structure
+
+    Notes
+    -----
+    Latent order: growth factors (process-major), then eta[k, t] (process-major, wave
+    minor). Observed order: y[k, t], process-major. Covariate order: x[., 1..T] for each
+    x, then z. These match :meth:`bayeslong.data.Panel.outcome_matrix` and
+    :meth:`~bayeslong.data.Panel.covariate_matrix`.
+    """
+    outcomes = tuple(outcomes)
+    if len(outcomes) != spec.processes:
+        raise SpecError(
+            f"model '{spec.name}' is for {spec.processes} outcome process(es) but the panel has "
+            f"{len(outcomes)} ({', '.join(outcomes)}); choose a model with processes = {len(outcomes)} "
+            "or give the panel that many outcomes"
+        )
+    T, K = int(n_waves), len(outcomes)
+    xs, zs = tuple(time_varying), tuple(time_invariant)
+    opts = spec.options
+    multi = K > 1
+    pk = (lambda k: outcomes[k]) if multi else (lambda k: None)
+    F = spec.factors
+    nF = len(F)
+    lag = opts["lag"]
+    within = spec.form == "within"
+    initial = opts["initial"] if lag != "none" else "none"
+    if spec.initial_is_level:
+        initial = "level"
+
+    latents = [_label(f, pk(k)) for k in range(K) for f in F]
+    latents += [_label("eta", pk(k), t) for k in range(K) for t in range(1, T + 1)]
+    observed = [_label(outcomes[k], t) for k in range(K) for t in range(1, T + 1)]
+    covariates = [_label(x, t) for x in xs for t in range(1, T + 1)] + list(zs)
+    fac = lambda k, f: k * nF + f  # noqa: E731
+    eta = lambda k, t: K * nF + k * T + (t - 1)  # noqa: E731
+    obs = lambda k, t: k * T + (t - 1)  # noqa: E731
+    xcol = lambda j, t: j * T + (t - 1)  # noqa: E731
+    zcol = lambda j: len(xs) * T + j  # noqa: E731
+    tab = _Table(len(latents), len(observed), len(covariates))
+
+    if spec.level_covariates == "every-wave" and not F:
+        raise SpecError(f"model '{spec.name}': level_covariates needs a level factor")
+
+    # Which waves follow the structural equation (growth + lag + effects).
+    first_eq = 1 if initial in ("none", "endogenous") else 2
+    eq_waves = range(first_eq, T + 1)
+
+    # --- time scores of the growth factors -------------------------------------------
+    def score(f: int, t: int, k: int):
+        """Fixed loading of factor f at wave t, or a parameter name for a free score."""
+        if f == 0:
+            return 1.0
+        if spec.scores == "constant":
+            return 1.0 if t >= 2 else 0.0
+        if spec.scores == "basis":
+            # the scores of the first two waves whose equation holds the growth factors are
+            # fixed at their linear values (they set the slope's origin and unit); the rest
+            # are free. With a predetermined first wave those are waves 2 and 3, since
+            # anchoring on wave 1, which does not load, would leave the slope's unit free.
+            if t < first_eq + 2:
+                return float(t - 1)
+            return _label("slope_score", pk(k), t)
+        return float(t - 1) ** f  # linear: t-1; quadratic adds (t-1)^2
+
+    # --- measurement part ------------------------------------------------------------
+    for k in range(K):
+        for t in range(1, T + 1):
+            tab.fix("Lam", (obs(k, t), eta(k, t)), 1.0)
+            if within:
+                for f in range(nF):
+                    s = score(f, t, k)
+                    if isinstance(s, str):
+                        tab.put("Lam", (obs(k, t), fac(k, f)), s, "loading")
+                    else:
+                        tab.fix("Lam", (obs(k, t), fac(k, f)), s)
+                name = _label("intercept", pk(k), t if opts["intercepts"] == "free" else None)
+                tab.put("nu", obs(k, t), name, "intercept")
+
+    # --- factor means ----------------------------------------------------------------
+    if not within:
+        for k in range(K):
+            for f in range(nF):
+                tab.put("a", fac(k, f), _label(f"{F[f]}_mean", pk(k)), "mean")
+
+    # --- structural equations ----------------------------------------------------------
+    for k in range(K):
+        anchored = False
+        for t in eq_waves:
+            row = eta(k, t)
+            # growth loadings (latent form only)
+            if not within:
+                for f in range(nF):
+                    s = score(f, t, k)
+                    if isinstance(s, str):
+                        tab.put("B", (row, fac(k, f)), s, "loading")
+                    elif s != 0.0:
+                        tab.fix("B", (row, fac(k, f)), s)
+            # wave intercepts
+            if not within:
+                has_level = nF > 0
+                if opts["intercepts"] == "free":
+                    if has_level and not anchored:
+                        anchored = True  # first equation wave anchors the level mean
+                    else:
+                        tab.put("a", row, _label("intercept", pk(k), t), "intercept")
+                elif not has_level:
+                    tab.put("a", row, _label("intercept", pk(k)), "intercept")
+            # lags
+            if lag != "none" and t >= 2:
+                for l in range(K):
+                    who = f"{outcomes[k]}<-{outcomes[l]}" if multi else None
+                    name = _label(spec.lag_name, who, t if lag == "time-varying" else None)
+                    tab.put("B", (row, eta(l, t - 1)), name, "lag",
+                            offset=spec.lag_offset if k == l else 0.0)
+            # covariate effects
+            for j, x in enumerate(xs):
+                who = f"{outcomes[k]}<-{x}" if multi else x
+                name = _label("effect", who, t if opts["effects"] == "time-varying" else None)
+                tab.put("G", (row, xcol(j, t)), name, "effect")
+            if within or not F or spec.level_covariates == "every-wave":
+                for j, zname in enumerate(zs):
+                    who = f"{outcomes[k]}<-{zname}" if multi else zname
+                    name = _label("effect", who, t if opts["effects"] == "time-varying" else None)
+                    tab.put("G", (row, zcol(j)), name, "effect")
+
+    # --- growth factors regressed on covariates ---------------------------------------
+    if F and not within:
+        for k in range(K):
+            for f in range(nF):
+                targets = []
+                if spec.level_covariates == "every-wave" and f == 0:
+                    targets = [(xcol(j, t), _label("level_on", pk(k), x, t)) for j, x in enumerate(xs)
+                               for t in range(1, T + 1)]
+                    targets += [(zcol(j), _label("level_on", pk(k), zname)) for j, zname in enumerate(zs)]
+                else:
+                    targets = [(zcol(j), _label(f"{F[f]}_effect", pk(k), zname)) for j, zname in enumerate(zs)]
+                for col, name in targets:
+                    tab.put("G", (fac(k, f), col), name, "effect")
+
+    # --- the first wave ------------------------------------------------------------------
+    if initial == "level":
+        for k in range(K):
+            tab.fix("B", (eta(k, 1), fac(k, 0)), 1.0)
+    elif initial == "predetermined":
+        for k in range(K):
+            row = eta(k, 1)
+            if not within:
+                tab.put("a", row, _label("initial_mean", pk(k)), "mean")
+            for j, x in enumerate(xs):
+                tab.put("G", (row, xcol(j, 1)), _label("initial_effect", pk(k), x), "effect")
+            for j, zname in enumerate(zs):
+                tab.put("G", (row, zcol(j)), _label("initial_effect", pk(k), zname), "effect")
+    elif initial == "endogenous":
+        for k in range(K):
+            row = eta(k, 1)
+            for f in range(nF):
+                tab.put("B", (row, fac(k, f)), _label(f"initial_on_{F[f]}", pk(k)), "loading")
+            tab.put("a", row, _label("initial_intercept", pk(k)), "intercept")
+
+    # --- covariance blocks ---------------------------------------------------------------
+    def pair_name(a, ka, b, kb, *, initial_var=None):
+        base = a if a == b else f"{a}_{b}"
+        same = a == b and ka == kb
+        suffix = "var" if same else "cov"
+        keys = [] if not multi else ([outcomes[ka]] if ka == kb else [outcomes[ka], outcomes[kb]])
+        return _label(f"{base}_{suffix}", *keys)
+
+    # growth factors (+ predetermined first wave in the latent form)
+    members = [(F[f], k, fac(k, f)) for k in range(K) for f in range(nF)]
+    if initial == "predetermined" and not within:
+        members += [("initial", k, eta(k, 1)) for k in range(K)]
+    if members:
+        rows = [m[2] for m in members]
+
+        def member_pair(r, c):
+            # the earlier member names first (level_slope_cov), except that the first
+            # wave reads first against a factor (initial_level_cov)
+            (a, ka, _), (b, kb, _) = members[c], members[r]
+            if b == "initial" and a != "initial":
+                return pair_name(b, kb, a, ka)
+            return pair_name(a, ka, b, kb)
+
+        names = [[member_pair(r, c) if c <= r else None for c in range(len(members))]
+                 for r in range(len(members))]
+        tab.block("Psi", rows, names)
+    # first wave's own block (within form predetermined; endogenous disturbance)
+    if initial == "predetermined" and within:
+        tab.block("Psi", [eta(k, 1) for k in range(K)],
+                  [[pair_name("initial", c, "initial", r) if c <= r else None for c in range(K)]
+                   for r in range(K)])
+    if initial == "endogenous":
+        tab.block("Psi", [eta(k, 1) for k in range(K)],
+                  [[pair_name("initial", c, "initial", r) if c <= r else None for c in range(K)]
+                   for r in range(K)])
+
+    # wave residuals: latent disturbances, or measurement errors (dual change)
+    resid_waves = range(1, T + 1) if spec.residuals_at == "indicator" else [
+        t for t in eq_waves if not (initial == "endogenous" and t == 1)]
+    for t in resid_waves:
+        tt = t if opts["residuals"] == "free" else None
+        names = [[(_label("resid_var", outcomes[r] if multi else None, tt) if r == c else
+                   _label("resid_cov", outcomes[c], outcomes[r], tt)) if c <= r else None
+                  for c in range(K)] for r in range(K)]
+        if spec.residuals_at == "indicator":
+            tab.block("Theta", [obs(k, t) for k in range(K)], names)
+        else:
+            tab.block("Psi", [eta(k, t) for k in range(K)], names)
+
+    structure = Structure(
+        spec=spec, names=tuple(tab.names), kinds=tuple(tab.kinds), latents=tuple(latents),
+        observed=tuple(observed), covariates=tuple(covariates), matrices=tab.m,
+        blocks=tuple(tab.blocks.values()), n_waves=T, outcomes=outcomes,
+    )
+    _check_recursive(structure)
+    return structure
+
+
+def structure_key(spec: Spec, *, outcomes, n_waves, time_varying=(), time_invariant=()) -> str:
+    """A string that is equal exactly when two designs give the same structure."""
+    import json
+
+    return json.dumps([spec.to_dict(), list(outcomes), int(n_waves), list(time_varying),
+                       list(time_invariant)], sort_keys=True)
+
+
+_CACHE: dict[str, Structure] = {}
+
+
+def structure_for(spec: Spec, panel) -> Structure:
+    """The (cached) structure of ``spec`` on ``panel``'s design.
+
+    Cached by content, so compiled functions keyed on the structure are reused by every
+    panel of the same design (docs/engine.md: compile once per model structure).
+    """
+    design = dict(outcomes=panel.outcomes, n_waves=panel.n_waves,
+                  time_varying=panel.time_varying, time_invariant=panel.time_invariant)
+    key = structure_key(spec, **design)
+    if key not in _CACHE:
+        _CACHE[key] = build_structure(spec, **design)
+    return _CACHE[key]
+
+
+def _check_recursive(structure: Structure) -> None:
+    """The engine assumes no loops among the latents (B nilpotent); a user file could break it."""
+    pattern = (structure.matrices["B"].index >= 0) | (structure.matrices["B"].fixed != 0)
+    reach = pattern.astype(float)
+    for _ in range(len(structure.latents)):
+        reach = reach @ pattern
+    if reach.any():
+        raise SpecError(
+            f"model '{structure.spec.name}' has a loop among its latent variables; the engine "
+            "needs a recursive model (every lag points to an earlier wave)")

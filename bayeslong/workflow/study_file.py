@@ -1,0 +1,694 @@
+"""The study file: one TOML file that says what data to read and which models to fit.
+
+A study file lets a researcher go from a CSV (or Parquet) file of panel data to a report
+without writing Python: ``bayeslong run study.toml``. :func:`load_study` reads and checks it
+and returns a frozen :class:`Study`; :func:`run_study` carries it out (intake,
+identification, fits, comparison, checks, sensitivity), saving every finished fit under the
+output folder so that a second run reuses it while the study and the data are unchanged.
+
+Layout
+------
+Paths are relative to the folder of the study file. Keys marked *required* must be given;
+every other key has the default shown. An unknown key is an error that names the key and
+the nearest valid one.
+
+Top level
+
+``title`` (text, required)
+    The study's title, printed at the head of the report.
+``output`` (text, default ``"bayeslong-output"``)
+    Folder for saved fits, tables and the report.
+
+``[data]``
+
+``path`` (text, required)
+    The data file: ``.csv`` or ``.parquet``.
+``layout`` (``"long"`` or ``"wide"``, default ``"long"``)
+    ``long``: one row per unit and wave. ``wide``: one row per unit, one column per
+    variable and wave.
+``unit`` (text, required)
+    Column holding the unit id.
+``wave`` (text, required when long)
+    Column holding the wave label (long layout only).
+``outcomes`` (required)
+    Long: a list of outcome columns, ``["quality"]``. Wide: a table from each outcome
+    to its columns in wave order, ``outcomes = { quality = ["q1", "q2", "q3"] }``.
+``time_varying`` (default none)
+    Time-varying covariates: a list of columns (long) or a table like ``outcomes`` (wide).
+``time_invariant`` (list of text, default none)
+    Time-invariant covariate columns.
+``waves`` (list, wide layout only, default 1..T)
+    Wave labels for the per-wave column lists.
+``drop_incomplete_covariates`` (true/false, default false)
+    Drop units with a missing covariate (with a warning naming them) instead of stopping.
+
+``[[models]]`` (one table per candidate model; at least one, required)
+
+``model`` (text, required)
+    A catalog name (``bayeslong models`` lists them) or a path to a model TOML file of
+    your own, in the catalog's format.
+``label`` (text, default the model name, plus the options when two candidates share it)
+    The name used in tables, plots and file names; labels must be unique.
+``options`` (table, default the model's own)
+    ``initial``, ``lag``, ``residuals``, ``effects``, ``intercepts``, as in
+    ``bayeslong.model(name, **options)``.
+
+``[priors]`` (default: the documented weakly informative defaults)
+
+``<parameter> = ["<family>", number, ...]``
+    A prior override by parameter name, e.g. ``lag = ["normal", 0.3, 0.1]``. It applies to
+    every candidate that has the parameter; a name no candidate has is an error.
+
+``[sampling]``
+
+``method`` (``"bayes"`` or ``"ml"``, default ``"bayes"``)
+    ``bayes``: NUTS posterior sampling. ``ml``: maximum likelihood only, a quick look
+    without posteriors, LOO or predictive checks.
+``draws`` (whole number, default 1000), ``tune`` (default 1000), ``chains`` (default 4),
+``seed`` (default 1)
+    Posterior draws kept per chain, warm-up draws per chain, chains, and the random seed.
+``sampler`` (text, default ``"auto"``)
+    Passed to :func:`bayeslong.fit` (``"auto"`` lets it choose).
+``workers`` (whole number, default 1)
+    Processes that sample candidates side by side (at most one per candidate to sample);
+    0 is one per CPU core, 1 samples them one after another in this process. Each worker
+    also makes its candidate's leave-future-out refit, with the model it has compiled.
+    ``bayeslong run`` needs nothing more; a Python script that calls :func:`run_study` on
+    such a study must guard its entry point with ``if __name__ == "__main__":`` (worker
+    processes import the script), or pass ``workers=1``.
+
+``[checks]``
+
+``ppc`` (true/false, default true), ``ppc_draws`` (whole number, default 200)
+    Posterior predictive checks and the number of posterior draws they use.
+``ml`` (true/false, default false)
+    Also fit each candidate by maximum likelihood and show the estimates beside the
+    posterior (always done when ``sampling.method = "ml"``).
+
+``[comparison]``
+
+``future`` (true/false, default false)
+    Also compare by leave-future-out: fit on all but the last wave, score the last.
+
+``[sensitivity]`` (each true/false; all default false)
+
+``prior_grid``
+    Refit with the lag's prior on a grid of locations and widths.
+``initial``
+    Refit with the other treatment of the first wave (predetermined / endogenous).
+``specification``
+    The lag across every candidate that has one.
+``power_scaling``
+    Power-scaling sensitivity of the prior and the likelihood.
+
+Example
+-------
+.. code-block:: toml
+
+    title = "Sleep quality of shift workers (invented data)"
+    output = "results"
+
+    [data]
+    path = "sleep.csv"
+    layout = "long"
+    unit = "worker"
+    wave = "week"
+    outcomes = ["quality"]
+    time_varying = ["night_shifts"]
+    time_invariant = ["age"]
+
+    [[models]]
+    model = "alt"
+
+    [[models]]
+    model = "alt"
+    label = "alt, first wave endogenous"
+    options = { initial = "endogenous" }
+
+    [[models]]
+    model = "linear-growth"
+
+    [priors]
+    lag = ["normal", 0.0, 0.5]
+
+    [sampling]
+    draws = 500
+    tune = 500
+    chains = 2
+    seed = 7
+
+    [comparison]
+    future = true
+
+    [sensitivity]
+    specification = true
+    initial = true
+
+Resuming
+--------
+Each candidate's fit is identified by a content hash of the data settings, the bytes of the
+data file, the sampling settings, the prior overrides, the model's full spec (catalog or
+user file, after options) and the package version. Changing the title, the checks or
+another candidate does not invalidate a saved fit; changing anything the fit depends on does.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import hashlib
+import json
+import numbers
+import tomllib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from bayeslong.errors import DataError, SpecError
+
+__all__ = ["Study", "Candidate", "DataSource", "load_study"]
+
+#: Default output folder (relative to the study file).
+DEFAULT_OUTPUT = "bayeslong-output"
+
+_TOP = ("title", "output", "data", "models", "priors", "sampling", "checks", "comparison",
+        "sensitivity")
+_DATA = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_invariant",
+         "waves", "drop_incomplete_covariates")
+_MODEL = ("model", "label", "options")
+_SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
+             "sampler": "auto", "workers": 1}
+_CHECKS = {"ppc": True, "ppc_draws": 200, "ml": False}
+_COMPARISON = {"future": False}
+_SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
+                "power_scaling": False}
+_LAYOUTS = ("long", "wide")
+_METHODS = ("bayes", "ml")
+_DATA_SUFFIXES = (".csv", ".parquet")
+
+
+# --------------------------------------------------------------------------------------------
+# checking helpers (each raises a SpecError that names the key and the fix)
+# --------------------------------------------------------------------------------------------
+
+
+def nearest_hint(word: str, choices) -> str:
+    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+class _Reader:
+    """Check one parsed study file, naming the file in every message."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, message: str, cls=SpecError) -> None:
+        raise cls(f"study file {self.source}: {message}")
+
+    def keys(self, table: dict, valid, where: str) -> None:
+        for key in table:
+            if key not in valid:
+                place = f"`{where}.{key}`" if where else f"`{key}`"
+                self.fail(f"unknown key {place}{nearest_hint(key, valid)} "
+                          f"(valid keys{' in [' + where + ']' if where else ''}: "
+                          f"{', '.join(valid)})")
+
+    def required(self, table: dict, key: str, where: str) -> Any:
+        if key not in table:
+            place = f"{where}.{key}" if where else key
+            section = f" in [{where}]" if where and "[" not in where else ""
+            self.fail(f"the required key `{place}` is missing; add it{section}"
+                      + (f" (see `{_EXAMPLES.get(key)}`)" if key in _EXAMPLES else ""))
+        return table[key]
+
+    def text(self, value: Any, where: str) -> str:
+        if not isinstance(value, str) or not value.strip():
+            self.fail(f"`{where}` must be text in quotes; got {value!r}")
+        return value
+
+    def texts(self, value: Any, where: str) -> tuple[str, ...]:
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            self.fail(f"`{where}` must be a list of column names, e.g. [\"a\", \"b\"]; got {value!r}")
+        return tuple(value)
+
+    def whole(self, value: Any, where: str, least: int) -> int:
+        if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+            self.fail(f"`{where}` must be a whole number; got {value!r}")
+        if value < least:
+            self.fail(f"`{where}` must be at least {least}; got {value}")
+        return int(value)
+
+    def flag(self, value: Any, where: str) -> bool:
+        if not isinstance(value, bool):
+            self.fail(f"`{where}` must be true or false (no quotes); got {value!r}")
+        return value
+
+    def choice(self, value: Any, choices, where: str) -> str:
+        if value not in choices:
+            self.fail(f"`{where}` must be one of {', '.join(repr(c) for c in choices)}; "
+                      f"got {value!r}{nearest_hint(value, choices)}")
+        return value
+
+    def table(self, value: Any, where: str) -> dict:
+        if not isinstance(value, dict):
+            self.fail(f"`{where}` must be a table ([{where}] or {{ key = value }}); got {value!r}")
+        return value
+
+    def settings(self, raw: dict, name: str, defaults: dict) -> dict:
+        """Fill a flat settings table from its defaults, checking each value's type."""
+        table = self.table(raw.get(name, {}), name)
+        self.keys(table, tuple(defaults), name)
+        out = dict(defaults)
+        for key, value in table.items():
+            where = f"{name}.{key}"
+            default = defaults[key]
+            if isinstance(default, bool):
+                out[key] = self.flag(value, where)
+            elif isinstance(default, int):
+                out[key] = self.whole(value, where, 0 if key in ("tune", "seed", "workers") else 1)
+            else:
+                out[key] = self.text(value, where)
+        return out
+
+
+_EXAMPLES = {
+    "title": 'title = "My study"',
+    "data": '[data] path = "panel.csv"',
+    "models": '[[models]] model = "alt"',
+    "path": 'path = "panel.csv"',
+    "unit": 'unit = "id"',
+    "wave": 'wave = "time"',
+    "outcomes": 'outcomes = ["y"]',
+    "model": 'model = "alt"',
+}
+
+
+# --------------------------------------------------------------------------------------------
+# value objects
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, kw_only=True)
+class DataSource:
+    """Where the panel data are and how to read them (the ``[data]`` table)."""
+
+    path: Path
+    layout: str = "long"
+    unit: str
+    wave: str | None = None
+    outcomes: Any
+    time_varying: Any = ()
+    time_invariant: tuple[str, ...] = ()
+    waves: tuple | None = None
+    drop_incomplete_covariates: bool = False
+
+    def settings(self) -> dict:
+        """Plain-data form without the absolute path (used in the content hash and report)."""
+        d = dataclasses.asdict(self)
+        d["path"] = self.path.name
+        for key in ("outcomes", "time_varying"):
+            value = getattr(self, key)
+            d[key] = {k: list(v) for k, v in value.items()} if isinstance(value, dict) else list(value)
+        d["time_invariant"] = list(self.time_invariant)
+        d["waves"] = None if self.waves is None else list(self.waves)
+        return d
+
+    def columns(self) -> list[tuple[str, str]]:
+        """Every column the study names, with the key that names it."""
+        cols = [(self.unit, "data.unit")]
+        if self.layout == "long":
+            cols.append((self.wave, "data.wave"))
+            cols += [(c, "data.outcomes") for c in self.outcomes]
+            cols += [(c, "data.time_varying") for c in self.time_varying]
+        else:
+            cols += [(c, f"data.outcomes.{k}") for k, v in self.outcomes.items() for c in v]
+            cols += [(c, f"data.time_varying.{k}") for k, v in self.time_varying.items() for c in v]
+        cols += [(c, "data.time_invariant") for c in self.time_invariant]
+        return cols
+
+
+@dataclass(frozen=True, kw_only=True)
+class Candidate:
+    """One candidate model of a study: the resolved spec and the label it is shown under."""
+
+    label: str
+    model: str
+    options: dict = field(default_factory=dict)
+    spec: Any = None  # bayeslong.spec.Spec, resolved at load time
+
+
+@dataclass(frozen=True, kw_only=True)
+class Study:
+    """A checked study file (see the module docstring for the layout).
+
+    Attributes
+    ----------
+    title : str
+    source : pathlib.Path
+        The study file.
+    output : pathlib.Path
+        The output folder (absolute).
+    data : DataSource
+    models : tuple of Candidate
+    priors : dict
+        Parameter name -> tuple (family, *numbers).
+    sampling, checks, comparison, sensitivity : dict
+        Settings with defaults filled in.
+    """
+
+    title: str
+    source: Path
+    output: Path
+    data: DataSource
+    models: tuple[Candidate, ...]
+    priors: dict = field(default_factory=dict)
+    sampling: dict = field(default_factory=lambda: dict(_SAMPLING))
+    checks: dict = field(default_factory=lambda: dict(_CHECKS))
+    comparison: dict = field(default_factory=lambda: dict(_COMPARISON))
+    sensitivity: dict = field(default_factory=lambda: dict(_SENSITIVITY))
+
+    # ---------------------------------------------------------------- data
+
+    def read_data(self):
+        """Read the data file into a pandas DataFrame and check the named columns exist."""
+        import pandas as pd
+
+        path = self.data.path
+        try:
+            if path.suffix.lower() == ".csv":
+                df = pd.read_csv(path)
+            else:
+                df = pd.read_parquet(path)
+        except (OSError, ValueError, ImportError) as err:
+            raise DataError(f"could not read the data file {str(path)!r} "
+                            f"(named in `data.path`): {err}") from err
+        columns = [str(c) for c in df.columns]
+        for name, key in self.data.columns():
+            if name not in df.columns:
+                close = difflib.get_close_matches(str(name), columns, n=1, cutoff=0.5)
+                hint = (f"did you mean {close[0]!r}?" if close
+                        else "its columns are " + ", ".join(repr(c) for c in columns[:20]))
+                raise DataError(f"`{key}` names the column {name!r}, which is not in "
+                                f"{path.name}; {hint}")
+        return df
+
+    def panel(self, *, record: list | None = None):
+        """Build the :class:`~bayeslong.Panel` the study describes.
+
+        Parameters
+        ----------
+        record : list, optional
+            Intake warnings (as text) are appended here instead of being issued.
+        """
+        from bayeslong.data import Panel
+
+        df = self.read_data()
+        d = self.data
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            if d.layout == "long":
+                panel = Panel.from_long(
+                    df, unit=d.unit, wave=d.wave, outcomes=list(d.outcomes),
+                    time_varying=list(d.time_varying), time_invariant=list(d.time_invariant),
+                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+            else:
+                panel = Panel.from_wide(
+                    df, unit=d.unit, outcomes={k: list(v) for k, v in d.outcomes.items()},
+                    time_varying={k: list(v) for k, v in d.time_varying.items()},
+                    time_invariant=list(d.time_invariant),
+                    waves=None if d.waves is None else list(d.waves),
+                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+        for w in caught:
+            if record is not None:
+                record.append(str(w.message))
+            else:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        return panel
+
+    # ---------------------------------------------------------------- identity of fits
+
+    def data_digest(self) -> str:
+        """SHA-256 of the data file's bytes."""
+        h = hashlib.sha256()
+        with open(self.data.path, "rb") as fh:
+            for chunk in iter(lambda: fh.read(1 << 20), b""):
+                h.update(chunk)
+        return h.hexdigest()
+
+    def fit_key(self, candidate: Candidate, *, extra: dict | None = None) -> str:
+        """Content hash identifying ``candidate``'s fit (see "Resuming" in the module notes).
+
+        Parameters
+        ----------
+        candidate : Candidate
+        extra : dict, optional
+            More settings the result depends on (e.g. ``{"kind": "ml"}``).
+        """
+        content = {
+            "data": self.data.settings(),
+            "data_sha256": self._digest(),
+            "sampling": self.sampling,
+            "priors": {k: list(v) for k, v in sorted(self.priors.items())},
+            "spec": candidate.spec.to_dict(),
+            "version": package_version(),
+            "extra": extra or {},
+        }
+        text = json.dumps(content, sort_keys=True, default=str)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+    def _digest(self) -> str:
+        # hashing a large file once per candidate would be wasteful; the study is frozen,
+        # but the file is not, so the digest is cached by (size, mtime).
+        st = self.data.path.stat()
+        key = (str(self.data.path), st.st_size, st.st_mtime_ns)
+        if key not in _DIGESTS:
+            _DIGESTS[key] = self.data_digest()
+        return _DIGESTS[key]
+
+    def to_dict(self) -> dict:
+        """Plain-data form of the settings (for the report and ``--json``)."""
+        return {
+            "title": self.title,
+            "source": str(self.source),
+            "output": str(self.output),
+            "data": self.data.settings(),
+            "models": [{"label": c.label, "model": c.model, "options": dict(c.spec.options)}
+                       for c in self.models],
+            "priors": {k: list(v) for k, v in self.priors.items()},
+            "sampling": dict(self.sampling),
+            "checks": dict(self.checks),
+            "comparison": dict(self.comparison),
+            "sensitivity": dict(self.sensitivity),
+        }
+
+
+_DIGESTS: dict = {}
+
+
+# --------------------------------------------------------------------------------------------
+# loading
+# --------------------------------------------------------------------------------------------
+
+
+def load_study(path) -> Study:
+    """Read and check a study file.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The study TOML file.
+
+    Returns
+    -------
+    Study
+
+    Raises
+    ------
+    SpecError
+        The file is missing or not valid TOML; a key is unknown (the nearest valid key is
+        suggested), missing, or of the wrong type; a model name is not in the catalog; a
+        label repeats; a prior is malformed.
+    DataError
+        The data file does not exist or is not CSV/Parquet.
+
+    Examples
+    --------
+    >>> study = load_study("examples/shift_sleep.toml")  # doctest: +SKIP
+    >>> [c.label for c in study.models]  # doctest: +SKIP
+    ['alt (growth + lag)', 'growth only', 'lag only']
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise SpecError(f"study file {str(path)!r} does not exist; check the path "
+                        "(`bayeslong demo` writes an example study to start from)")
+    source = path.name
+    r = _Reader(source)
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as err:
+        r.fail(f"is not valid TOML: {err}")
+    except UnicodeDecodeError as err:
+        r.fail(f"is not UTF-8 text: {err}")
+    r.keys(raw, _TOP, "")
+    base = path.resolve().parent
+
+    title = r.text(r.required(raw, "title", ""), "title")
+    output = base / r.text(raw.get("output", DEFAULT_OUTPUT), "output")
+    data = _read_data(r, r.table(r.required(raw, "data", ""), "data"), base)
+    models = _read_models(r, r.required(raw, "models", ""), base)
+    priors = _read_priors(r, r.table(raw.get("priors", {}), "priors"))
+    sampling = r.settings(raw, "sampling", _SAMPLING)
+    r.choice(sampling["method"], _METHODS, "sampling.method")
+    checks = r.settings(raw, "checks", _CHECKS)
+    comparison = r.settings(raw, "comparison", _COMPARISON)
+    sensitivity = r.settings(raw, "sensitivity", _SENSITIVITY)
+    return Study(title=title, source=path.resolve(), output=output, data=data, models=models,
+                 priors=priors, sampling=sampling, checks=checks, comparison=comparison,
+                 sensitivity=sensitivity)
+
+
+def _read_data(r: _Reader, raw: dict, base: Path) -> DataSource:
+    r.keys(raw, _DATA, "data")
+    rel = r.text(r.required(raw, "path", "data"), "data.path")
+    path = (base / rel).resolve()
+    if path.suffix.lower() not in _DATA_SUFFIXES:
+        r.fail(f"`data.path` must name a .csv or .parquet file; got {rel!r}", DataError)
+    if not path.is_file():
+        r.fail(f"the data file {rel!r} (`data.path`) does not exist; looked for {str(path)!r}. "
+               "Paths are relative to the study file's folder.", DataError)
+    layout = r.choice(raw.get("layout", "long"), _LAYOUTS, "data.layout")
+    unit = r.text(r.required(raw, "unit", "data"), "data.unit")
+    invariant = r.texts(raw.get("time_invariant", []), "data.time_invariant")
+    drop = r.flag(raw.get("drop_incomplete_covariates", False), "data.drop_incomplete_covariates")
+    if layout == "long":
+        if "waves" in raw:
+            r.fail("`data.waves` is for the wide layout only; in the long layout the wave "
+                   "labels come from the `data.wave` column: remove `data.waves`")
+        wave = r.text(r.required(raw, "wave", "data"), "data.wave")
+        outcomes = r.texts(r.required(raw, "outcomes", "data"), "data.outcomes")
+        varying = r.texts(raw.get("time_varying", []), "data.time_varying")
+        waves = None
+    else:
+        if "wave" in raw:
+            r.fail("`data.wave` is for the long layout only; in the wide layout give the "
+                   "columns per wave in `data.outcomes` (and optional labels in `data.waves`)")
+        wave = None
+
+        def per_wave(value, where):
+            value = r.table(value, where)
+            return {name: r.texts(cols, f"{where}.{name}") for name, cols in value.items()}
+
+        outcomes = per_wave(r.required(raw, "outcomes", "data"), "data.outcomes")
+        varying = per_wave(raw.get("time_varying", {}), "data.time_varying")
+        waves = raw.get("waves")
+        if waves is not None:
+            if not isinstance(waves, list):
+                r.fail(f"`data.waves` must be a list of wave labels; got {waves!r}")
+            waves = tuple(waves)
+    if not outcomes:
+        r.fail("`data.outcomes` is empty; name at least one outcome column")
+    return DataSource(path=path, layout=layout, unit=unit, wave=wave, outcomes=outcomes,
+                      time_varying=varying, time_invariant=invariant, waves=waves,
+                      drop_incomplete_covariates=drop)
+
+
+def _read_models(r: _Reader, raw: Any, base: Path) -> tuple[Candidate, ...]:
+    from bayeslong.model.spec import OPTION_VALUES, catalog, model
+
+    if isinstance(raw, dict):
+        raw = [raw]
+    if not isinstance(raw, list) or not raw or not all(isinstance(m, dict) for m in raw):
+        r.fail("`models` must be one or more [[models]] tables, each with a `model` key, e.g. "
+               '[[models]] model = "alt"')
+    found = []
+    for i, entry in enumerate(raw, start=1):
+        where = f"models[{i}]"
+        r.keys(entry, _MODEL, where)
+        if "model" not in entry:
+            r.fail(f"the required key `model` is missing from the {_ordinal(i)} [[models]] "
+                   f"table; add e.g. model = \"alt\" (the catalog: {', '.join(catalog())})")
+        name = r.text(entry["model"], f"{where}.model")
+        options = r.table(entry.get("options", {}), f"{where}.options")
+        r.keys(options, tuple(OPTION_VALUES), f"{where}.options")
+        for key, value in options.items():
+            r.text(value, f"{where}.options.{key}")
+        if name.endswith(".toml"):
+            file = (base / name).resolve()
+            if not file.is_file():
+                r.fail(f"`{where}.model` names the model file {name!r}, which does not exist "
+                       f"(looked for {str(file)!r}; paths are relative to the study file)")
+            target = str(file)
+        else:
+            if name not in catalog():
+                r.fail(f"`{where}.model` is {name!r}, which is not in the catalog"
+                       f"{nearest_hint(name, catalog())} (the catalog has: {', '.join(catalog())}; "
+                       "or give a path ending in .toml to a model file of your own)")
+            target = name
+        try:
+            spec = model(target, **options)
+        except SpecError as err:
+            r.fail(f"`{where}`: {err}")
+        label = entry.get("label")
+        if label is not None:
+            label = r.text(label, f"{where}.label")
+        found.append((label, name, options, spec))
+    names = [spec.name for _, _, _, spec in found]
+    candidates = []
+    for label, name, options, spec in found:
+        if label is None:
+            label = spec.name
+            if names.count(spec.name) > 1 and options:
+                label += " (" + ", ".join(f"{k}={v}" for k, v in options.items()) + ")"
+        candidates.append(Candidate(label=label, model=name, options=dict(options), spec=spec))
+    labels = [c.label for c in candidates]
+    for label in labels:
+        if labels.count(label) > 1:
+            r.fail(f"two candidates are labelled {label!r}; give each [[models]] table its own "
+                   "`label`")
+    return tuple(candidates)
+
+
+def _read_priors(r: _Reader, raw: dict) -> dict:
+    priors = {}
+    for name, value in raw.items():
+        where = f"priors.{name}"
+        if (not isinstance(value, list) or not value or not isinstance(value[0], str)
+                or not all(isinstance(v, numbers.Real) and not isinstance(v, bool)
+                           for v in value[1:])):
+            r.fail(f"`{where}` must be a list of a distribution name and its numbers, e.g. "
+                   f'{name} = ["normal", 0.0, 0.5]; got {value!r}')
+        priors[name] = (value[0], *[float(v) for v in value[1:]])
+    return priors
+
+
+def _ordinal(i: int) -> str:
+    return {1: "first", 2: "second", 3: "third", 4: "fourth", 5: "fifth"}.get(i, f"{i}th")
+
+
+# --------------------------------------------------------------------------------------------
+# running a study
+# --------------------------------------------------------------------------------------------
+
+
+def package_version(name: str = "bayeslong") -> str:
+    """Installed version of a distribution, or ``"not installed"`` (no import needed)."""
+    from importlib import metadata
+
+    try:
+        return metadata.version(name)
+    except metadata.PackageNotFoundError:
+        return "not installed"
+
+
+def software_versions() -> dict[str, str]:
+    """Versions of Python and of the packages a result depends on (for reproducibility)."""
+    import platform
+
+    out = {"python": platform.python_version()}
+    for name in ("bayeslong", "pymc", "pytensor", "arviz", "numpy", "pandas", "scipy", "nutpie"):
+        out[name] = package_version(name)
+    return out

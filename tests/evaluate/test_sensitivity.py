@@ -1,0 +1,332 @@
+"""Lag sensitivity, power-scaling and small-sample planning.
+
+References used below: a naive re-implementation of the cumulative Jensen-Shannon
+power-scaling diagnostic written from the paper (Kallioinen, Paananen, Bürkner & Vehtari
+2024, Statistics and Computing 34, eqs. for CJS and the log2-derivative), scipy densities,
+the Beta form of the 2x2 LKJ density, and direct calls of `bl.fit_ml`.
+"""
+
+import types
+
+import arviz as az
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from scipy import stats
+
+import bayeslong as bl
+from bayeslong.infer.batch import SerialExecutor
+from bayeslong.errors import SpecError
+from bayeslong.infer.priors import prior_draws, resolve_priors
+from bayeslong.evaluate.sensitivity import (
+    LagSensitivity,
+    lag_models,
+    lag_parameter,
+    log_prior_draws,
+    plan,
+    power_scaling,
+    scaled_variance_priors,
+)
+from bayeslong.model.simulation import Simulation
+from bayeslong.model.structure import structure_for
+
+AR = {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0, "initial_var": 1.0, "resid_var": 1.0}
+
+
+# --- power-scaling ---------------------------------------------------------------------------
+def _naive_cjs(x, w):
+    """CJS distance between the ECDF of draws x and their w-weighted ECDF, straight from
+    Kallioinen et al. (2024), eq. (8)-(9) (after Nguyen & Vreeken 2015), symmetrised over
+    x and -x as the paper does for the two tails."""
+    def one(x, w):
+        o = np.argsort(x)
+        x, w = x[o], w[o] / w.sum()
+        dx = np.diff(x)
+        P = np.arange(1, len(x)) / len(x)
+        Q = np.cumsum(w)[:-1]
+        M = 0.5 * (P + Q)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pq = np.nansum(dx * P * np.log2(np.where(P > 0, P / M, 1.0)))
+            qp = np.nansum(dx * Q * np.log2(np.where(Q > 0, Q / M, 1.0)))
+        pq += (np.sum(dx * Q) - np.sum(dx * P)) / (2 * np.log(2))
+        qp += (np.sum(dx * P) - np.sum(dx * Q)) / (2 * np.log(2))
+        return np.sqrt((max(pq, 0) + max(qp, 0)) / (np.sum(dx * P) + np.sum(dx * Q)))
+    return max(one(x, w), one(-x, w))
+
+
+def _naive_psens(x, log_component, delta=0.01):
+    """Sensitivity = [CJS(alpha = 1/(1+d)) + CJS(alpha = 1+d)] / (2 log2(1+d)), with plain
+    importance weights p^(alpha-1) (no smoothing: with d = 0.01 they are near uniform)."""
+    out = 0.0
+    for alpha in (1 / (1 + delta), 1 + delta):
+        lw = (alpha - 1) * log_component
+        out += _naive_cjs(x, np.exp(lw - lw.max()))
+    return out / (2 * np.log2(1 + delta))
+
+
+def _conjugate_fit(tau, n=50, seed=0):
+    """Exact posterior draws of mu in y_i ~ N(mu, 1), mu ~ N(0, tau^2) (conjugate by hand:
+    precision n + 1/tau^2, mean sum(y) / precision), wrapped as a Fit-shaped object."""
+    rng = np.random.default_rng(seed)
+    y = rng.normal(1.0, 1.0, size=n)
+    prec = n + 1 / tau ** 2
+    mu = rng.normal(y.sum() / prec, 1 / np.sqrt(prec), size=(2, 1000))
+    ll = stats.norm.logpdf(y[None, None, :], mu[..., None], 1.0)
+    lp = stats.norm.logpdf(mu, 0.0, tau)
+    idata = az.from_dict(posterior={"mu": mu}, log_likelihood={"y": ll}, dims={"y": ["unit"]})
+    idata.add_groups(log_prior=xr.Dataset({"mu": (("chain", "draw"), lp)},
+                                          coords={"chain": [0, 1], "draw": np.arange(1000)}))
+    structure = types.SimpleNamespace(names=("mu",))
+    return types.SimpleNamespace(idata=idata, structure=structure), mu.ravel(), lp.ravel(), ll.sum(-1).ravel()
+
+
+@pytest.mark.parametrize("tau", [0.05, 10.0], ids=["strong-prior", "vague-prior"])
+def test_power_scaling_matches_the_paper_formula(tau):
+    fit, mu, lp, ll = _conjugate_fit(tau)
+    table = power_scaling(fit)
+    # naive re-implementation from the paper; PSIS smoothing vs raw weights differ by
+    # O(1e-3) relative at delta = 0.01, so 5% is ample and still catches a wrong formula
+    assert table.loc["mu", "prior"] == pytest.approx(_naive_psens(mu, lp), rel=0.05)
+    assert table.loc["mu", "likelihood"] == pytest.approx(_naive_psens(mu, ll), rel=0.05)
+
+
+def test_power_scaling_flags_a_strong_prior_not_a_vague_one():
+    # tau = 0.05 against n = 50 observations of SD 1 (data SE 0.14): the prior carries most
+    # of the information, so the posterior moves when it is scaled; tau = 10 does not.
+    strong = power_scaling(_conjugate_fit(0.05)[0]).loc["mu"]
+    vague = power_scaling(_conjugate_fit(10.0)[0]).loc["mu"]
+    assert strong["prior"] >= 0.05 > vague["prior"]  # 0.05: the paper's threshold
+    assert strong["diagnosis"] == "prior-data conflict"  # prior pulls mu from ~1 to ~0.1
+    assert vague["diagnosis"] == ""
+
+
+def test_log_prior_draws_match_scipy_densities():
+    # clpm has 2x2 covariance blocks: the LKJ(eta) density of a 2x2 correlation r is that of
+    # (r + 1)/2 ~ Beta(eta, eta) (Lewandowski et al. 2009, sect. 3.2), independent of our kernel
+    sim = Simulation(spec=bl.model("clpm"), params={
+        "intercept[y1]": 1.0, "intercept[y2]": 0.0, "lag[y1<-y1]": 0.5, "lag[y1<-y2]": 0.1,
+        "lag[y2<-y1]": 0.0, "lag[y2<-y2]": 0.4, "initial_mean[y1]": 0.0, "initial_mean[y2]": 0.0,
+        "initial_var[y1]": 1.0, "initial_cov[y1,y2]": 0.2, "initial_var[y2]": 1.0,
+        "resid_var[y1]": 1.0, "resid_cov[y1,y2]": 0.1, "resid_var[y2]": 1.0},
+        n_units=60, n_waves=4, seed=2)
+    panel = sim.panel()
+    structure = structure_for(sim.spec, panel)
+    prior_set = resolve_priors(structure, panel, {"lag[y1<-y1]": ("student_t", 4, 0.2, 0.3),
+                                                  "initial_cov[y1,y2]": ("lkj", 3.0)})
+    theta = prior_draws(prior_set, draws=40, seed=1)
+    posterior = {n: theta[:, j].reshape(2, 20) for j, n in enumerate(structure.names)}
+    fit = types.SimpleNamespace(structure=structure, panel=panel, prior_set=prior_set,
+                                idata=az.from_dict(posterior=posterior), theta_draws=lambda: theta)
+    ours = log_prior_draws(fit).ravel()
+    naive = np.zeros(len(theta))
+    for j, (name, p) in enumerate(zip(structure.names, prior_set.priors)):
+        x = theta[:, j]
+        if p.family == "normal":
+            naive += stats.norm.logpdf(x, *p.args)
+        elif p.family == "student_t":
+            naive += stats.t.logpdf(x, p.args[0], p.args[1], p.args[2])
+        elif p.family == "halfnormal":  # the prior is on the SD
+            naive += stats.halfnorm.logpdf(np.sqrt(x), scale=p.args[0])
+    for cov, v1, v2 in (("initial_cov[y1,y2]", "initial_var[y1]", "initial_var[y2]"),
+                        ("resid_cov[y1,y2]", "resid_var[y1]", "resid_var[y2]")):
+        i, a, b = (structure.names.index(k) for k in (cov, v1, v2))
+        r = theta[:, i] / np.sqrt(theta[:, a] * theta[:, b])
+        eta = prior_set[cov].args[0]
+        naive += stats.beta.logpdf((r + 1) / 2, eta, eta)
+    # equal up to one constant (normalising constants are irrelevant to power-scaling weights)
+    diff = ours - naive
+    np.testing.assert_allclose(diff, diff[0], atol=1e-8)
+
+
+# --- pieces of the sensitivity table ---------------------------------------------------------
+def test_lag_models_and_parameters():
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=20, n_waves=4, seed=1).panel()
+    names = lag_models(panel)
+    # every univariate catalog model with a constant lag (models/*.toml), alt first
+    assert names == ["alt", "ar", "dual-change", "free-growth-lag", "level-lag"]
+    assert lag_parameter(bl.model("dual-change"), ["y"]) == "proportional_change"
+    assert lag_parameter(bl.model("clpm"), ["a", "b"]) == "lag[a<-a]"
+    assert lag_parameter(bl.model("alt", lag="time-varying"), ["y"]) is None
+
+
+def test_variance_prior_scaling():
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=40, n_waves=4, seed=1).panel()
+    spec = bl.model("ar")
+    base = resolve_priors(structure_for(spec, panel), panel)
+    scaled = scaled_variance_priors(spec, panel, 2.0, {"lag": ("normal", 0, 1)})
+    # default SD priors are HalfNormal(pooled SD) (bayeslong.priors rule): doubled here
+    assert scaled["resid_var"] == ("halfnormal", 2.0 * base["resid_var"].args[0])
+    assert scaled["initial_var"] == ("halfnormal", 2.0 * base["initial_var"].args[0])
+    assert scaled["lag"] == ("normal", 0, 1)  # other overrides kept
+    assert set(scaled) == {"lag", "resid_var", "initial_var"}
+
+
+def test_plot_and_flags_from_a_table():
+    table = pd.DataFrame({
+        "axis": ["default", "prior", "prior", "power-scaling"],
+        "setting": ["default priors", "lag ~ normal(0, 0.1)", "lag ~ normal(0, 10)", "prior"],
+        "model": ["alt"] * 4, "parameter": ["lag"] * 4, "mean": [0.3, 0.1, 0.31, 0.3],
+        "sd": [0.1, 0.05, 0.1, 0.1], "q5": [0.14, 0.02, 0.15, 0.14],
+        "q95": [0.46, 0.18, 0.47, 0.46], "shift": [0, -2, 0.1, 0],
+        "sign_change": [False] * 4, "flag": [False, True, False, False]})
+    fig = LagSensitivity(table=table, reference="alt").plot()
+    ax = fig.axes[0]
+    assert len(ax.get_yticklabels()) == 3  # power-scaling rows are not intervals
+    assert ax.get_yticklabels()[0].get_text() == "default: default priors (alt)"
+
+
+# --- planning with maximum likelihood (fast) --------------------------------------------------
+def test_plan_with_ml_matches_a_hand_loop():
+    spec = bl.model("ar")
+    out = plan(spec, AR, n_units=[40], n_waves=[4], replications=3, kind="fit_ml", seed=5,
+               fit_kwargs={"starts": 1, "check": False},
+               executor=SerialExecutor(),
+               progress=False)
+    # reference: the same three panels (same seeds, drawn by plan's rule) fitted by hand
+    seeds = np.random.SeedSequence(5).generate_state(6)
+    est, se = [], []
+    for r in range(3):
+        panel = Simulation(spec=spec, params=AR, n_units=40, n_waves=4, seed=int(seeds[2 * r])).panel()
+        ml = bl.fit_ml(spec, panel, starts=1, check=False, seed=int(seeds[2 * r + 1]) % 2**31)
+        est.append(ml.params["lag"])
+        se.append(ml.se["lag"])
+    est, se = np.array(est), np.array(se)
+    z = stats.norm.ppf(0.95)  # Wald 90% interval
+    row = out.iloc[0]
+    assert row["truth"] == 0.5 and row["n_ok"] == 3 and row["n_failed"] == 0
+    assert row["bias"] == pytest.approx(est.mean() - 0.5, abs=1e-9)
+    assert row["bias_se"] == pytest.approx(est.std(ddof=1) / np.sqrt(3), abs=1e-9)
+    assert row["coverage"] == pytest.approx(np.mean((est - z * se <= 0.5) & (0.5 <= est + z * se)))
+    assert row["power"] == pytest.approx(np.mean(est - z * se > 0))
+    assert row["post_sd"] == pytest.approx(se.mean(), abs=1e-9)
+
+
+def test_plan_and_sensitivity_refuse_models_without_a_lag():
+    with pytest.raises(SpecError, match="model 'linear-growth' has no constant lag"):
+        plan(bl.model("linear-growth"), {}, replications=2)
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=20, n_waves=4, seed=1).panel()
+    with pytest.raises(SpecError, match="model 'linear-growth' has no constant lag"):
+        bl.lag_sensitivity(panel, models=["linear-growth"])
+
+
+# --- with bl.fit ---------------------------------------------------------------------------
+ALT = dict(level_mean=2.0, slope_mean=0.5, lag=0.3, initial_mean=2.0, level_var=1.0,
+           level_slope_cov=0.1, slope_var=0.1, initial_level_cov=0.5, initial_slope_cov=0.05,
+           initial_var=1.5, resid_var=0.5)
+#: Tiny runs (one chain of 200 draws, ~100 effective): the Monte Carlo error of a posterior
+#: mean is then ~sd/10, small beside the prior-driven moves compared below (worked by
+#: conjugate-normal arithmetic: ~0.2 at N = 40, ~0.03 at N = 800, for Normal(0, 0.1)).
+SMALL = dict(draws=200, tune=200, chains=1, seed=3)
+
+
+def _study(n_units, seed):
+    return Simulation(spec=bl.model("alt"), params=ALT, n_units=n_units, n_waves=5,
+                      seed=seed).panel()
+
+
+def _check_flags(table):
+    # the flag rule re-derived here: the 90% interval's side of zero differs from the
+    # default fit's, or the mean moved by more than one posterior SD of the default fit
+    ref = table[table["axis"] == "default"].iloc[0]
+    side = lambda lo, hi: "above" if lo > 0 else ("below" if hi < 0 else "across")  # noqa: E731
+    for _, row in table[table["axis"] != "power-scaling"].iterrows():
+        moved = abs(row["mean"] - ref["mean"]) > ref["sd"]
+        sign = side(row["q5"], row["q95"]) != side(ref["q5"], ref["q95"])
+        assert row["flag"] == (moved or sign)
+
+
+def test_prior_axis_moves_the_lag_more_in_a_small_study():
+    pytest.importorskip("bayeslong.infer.sampling")
+    moves = {}
+    for n, seed in ((40, 11), (800, 12)):
+        result = bl.lag_sensitivity(_study(n, seed), models=["alt"],
+                                    prior_grid=[("normal", 0.0, 0.1)], variance_scales=False,
+                                    initial=False, specification=False, power_scaling=(n == 40),
+                                    fit_kwargs=SMALL)
+        t = result.table
+        assert list(t["axis"]) == (["default", "prior", "power-scaling", "power-scaling"]
+                                   if n == 40 else ["default", "prior"])
+        _check_flags(t)
+        default = t[t["axis"] == "default"].iloc[0]
+        tight = t[t["axis"] == "prior"].iloc[0]
+        moves[n] = abs(tight["mean"] - default["mean"])
+        if n == 40:
+            # Normal(0, 0.1) against ~0.1 posterior SD at N = 40: pulled toward 0 by far
+            # more than one SD (conjugate-normal arithmetic: weight ~1/2 on the prior mean)
+            assert tight["flag"]
+            assert set(result.power_scaling.columns) == {"prior", "likelihood", "diagnosis"}
+            assert result.power_scaling.loc["lag", "prior"] >= 0.0
+    # the sensible direction: the same prior moves the lag more with less data
+    # (expected ~0.2 against ~0.03; the tiny chains' Monte Carlo noise forbids a tighter ratio)
+    assert moves[40] > moves[800]
+
+
+@pytest.mark.slow
+def test_full_sensitivity_on_a_small_study(tmp_path):
+    pytest.importorskip("bayeslong.infer.sampling")
+    result = bl.lag_sensitivity(_study(40, 11), fit_kwargs=SMALL)
+    t = result.table
+    assert set(t["axis"]) == {"default", "prior", "first wave", "specification", "power-scaling"}
+    # the dual change model's lag is 1 + proportional_change (docs/model-family.md, dual change)
+    dual = t[(t["axis"] == "specification") & (t["model"] == "dual-change")]
+    assert dual.empty or dual["parameter"].iloc[0] == "1 + proportional_change"
+    _check_flags(t)
+    result.plot().savefig(tmp_path / "forest.png")
+
+
+@pytest.mark.slow
+def test_plan_with_bayes_small():
+    pytest.importorskip("bayeslong.infer.sampling")
+    out = plan(bl.model("alt"), ALT, n_units=[30, 60, 120], n_waves=[5], replications=4,
+               fit_kwargs=dict(draws=300, tune=300, chains=2), progress=False)
+    assert list(out["n_ok"]) == [4, 4, 4]
+    # posterior SD of the lag shrinks with N (roughly 1/sqrt(N): common practice)
+    assert out["post_sd"].is_monotonic_decreasing
+
+
+def test_settings_equal_to_a_given_fit_are_read_from_it_others_are_refitted(monkeypatch):
+    pytest.importorskip("bayeslong.infer.sampling")
+    import importlib
+    import warnings
+
+    panel = Simulation(spec=bl.model("ar"), params=AR, n_units=60, n_waves=4, seed=2).panel()
+    kw = dict(draws=60, tune=60, chains=1, seed=4, sampler="pymc", progressbar=False)
+    priors = {"lag": ("normal", 0.2, 0.4)}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)  # a tiny run; not the point
+        given = bl.fit(bl.model("ar"), panel, priors=priors, **kw)
+    fit_module = importlib.import_module("bayeslong.infer.sampling")
+    asked = []
+
+    def stand_in(spec, panel, **kwargs):  # records each refit instead of sampling
+        asked.append(kwargs.get("priors"))
+        raise RuntimeError("refit asked for")
+
+    monkeypatch.setattr(fit_module, "fit", stand_in)
+    result = bl.lag_sensitivity(panel, models=["ar"], prior_grid=[("normal", 0.0, 0.1)],
+                                variance_scales=False, initial=False, specification=True,
+                                power_scaling=True, fit_kwargs=kw, priors=priors, fits=[given])
+    # the default setting (and its specification row) is the given fit: no refit, and its
+    # row is the given draws summarised with NumPy; power-scaling came from it too
+    assert result.reused == ("default",)
+    lag = given.idata.posterior["lag"].values.ravel()
+    t = result.table
+    for axis in ("default", "specification"):
+        row = t[t["axis"] == axis].iloc[0]
+        assert row["mean"] == pytest.approx(lag.mean(), rel=1e-12)
+        assert row["q95"] == pytest.approx(np.quantile(lag, 0.95), rel=1e-12)
+    assert t[t["axis"] == "default"].iloc[0]["setting"] == "priors as given"
+    assert set(t[t["axis"] == "power-scaling"]["setting"]) == {"prior", "likelihood"}
+    # the prior-grid setting differs from the given fit (its lag prior), so it was refitted,
+    # with the lag's prior replaced on top of the given overrides
+    assert asked == [{"lag": ("normal", 0.0, 0.1)}]
+    assert list(result.failed) == ["prior: lag ~ normal(0, 0.1)"]
+
+    # another seed is another fit: nothing is read from the given one
+    asked.clear()
+    with pytest.raises(SpecError, match="the default fit of model 'ar' failed"):
+        bl.lag_sensitivity(panel, models=["ar"], prior_grid=False, variance_scales=False,
+                           initial=False, specification=True, power_scaling=False,
+                           fit_kwargs={**kw, "seed": 5}, priors=priors, fits=[given])
+    assert asked == [priors]

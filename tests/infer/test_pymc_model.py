@@ -1,0 +1,128 @@
+"""Tests of bayeslong.build: the PyMC model's log density against hand-written references."""
+
+import numpy as np
+import pymc as pm
+import pytest
+from scipy import stats
+
+import bayeslong as bl
+from bayeslong.infer.pymc_model import build_model
+from bayeslong.errors import SpecError
+
+
+def _ar_moments(intercept, lag, initial_mean, initial_var, resid_var, T):
+    """Naive AR(1) moments with a predetermined first wave, by recursion (written here).
+
+    eta_1 ~ N(initial_mean, initial_var); eta_t = intercept + lag eta_(t-1) + zeta_t,
+    Var(zeta_t) = resid_var, zeta independent of the past.
+    """
+    mean = np.empty(T)
+    cov = np.empty((T, T))
+    mean[0], cov[0, 0] = initial_mean, initial_var
+    for t in range(1, T):
+        mean[t] = intercept + lag * mean[t - 1]
+        cov[t, :t] = lag * cov[t - 1, :t]
+        cov[:t, t] = cov[t, :t]
+        cov[t, t] = lag**2 * cov[t - 1, t - 1] + resid_var
+    return mean, cov
+
+
+@pytest.fixture(scope="module")
+def sleep_missing(sleepstudy):
+    # Drop some days of some subjects, so several missing-data patterns occur.
+    d = sleepstudy.copy()
+    drop = ((d["Subject"] == d["Subject"].unique()[0]) & (d["Days"] >= 7)) | \
+           ((d["Subject"] == d["Subject"].unique()[3]) & (d["Days"].isin([2, 5])))
+    d.loc[drop, "Reaction"] = np.nan
+    return bl.Panel.from_long(d, unit="Subject", wave="Days", outcomes=["Reaction"])
+
+
+def test_ar_log_density_equals_scipy(sleep_missing):
+    # log p(theta, y) without Jacobians = sum of the prior log densities (scipy, on the
+    # standard deviations for variances) + sum over units of the multivariate normal log
+    # density of the observed waves (scipy), with moments from the naive recursion above.
+    panel = sleep_missing
+    spec = bl.model("ar")
+    model = build_model(spec, panel, {"lag": ("normal", 0.3, 0.2)})
+    point = {"intercept": 120.0, "lag": 0.55, "initial_mean": 250.0, "initial_var__sd": 30.0,
+             "resid_var__sd": 35.0}
+    value = model.compile_logp(jacobian=False)(
+        {**{k: v for k, v in point.items() if "__sd" not in k},
+         "initial_var__sd_log__": np.log(30.0), "resid_var__sd_log__": np.log(35.0)})
+    # jacobian=False with log-transformed values still evaluates the densities at the
+    # natural values; the log-Jacobian terms are left out.
+    scale = panel.summary_scale()["Reaction"]
+    m, s = scale["mean"], scale["sd"]
+    prior = (stats.norm(m, 3 * s + abs(m)).logpdf(120.0) + stats.norm(0.3, 0.2).logpdf(0.55)
+             + stats.norm(m, 3 * s + abs(m)).logpdf(250.0)
+             + stats.halfnorm(scale=s).logpdf(30.0) + stats.halfnorm(scale=s).logpdf(35.0))
+    mean, cov = _ar_moments(120.0, 0.55, 250.0, 30.0**2, 35.0**2, panel.n_waves)
+    y = panel.y[:, :, 0]
+    loglik = sum(stats.multivariate_normal(mean[~np.isnan(r)], cov[np.ix_(~np.isnan(r), ~np.isnan(r))])
+                 .logpdf(r[~np.isnan(r)]) for r in y)
+    # tolerance: both sides are double-precision sums of ~200 terms of size ~1e3
+    assert value == pytest.approx(prior + loglik, abs=1e-6)
+
+
+def test_posterior_names_and_data(sleep_panel):
+    model = build_model(bl.model("linear-growth"), sleep_panel)
+    names = {v.name for v in model.free_RVs} | {v.name for v in model.deterministics}
+    assert {"level_mean", "slope_mean", "level_var", "level_slope_cov", "slope_var",
+            "resid_var"} <= names
+    assert {"counts", "cross", "masks", "prior_hyper"} <= set(model.named_vars)
+
+
+def _lkj_point(sd1, sd2, r):
+    # packed lower Cholesky factor (L11, L21, L22) of [[sd1^2, r sd1 sd2], [., sd2^2]]
+    return np.array([sd1, sd2 * r, sd2 * np.sqrt(1 - r**2)])
+
+
+@pytest.mark.parametrize("eta", [2.0, 4.0])
+def test_lkj_block_density_closed_form(sleep_panel, eta):
+    # With the data switched off (counts and cross-products 0, so the likelihood is 0)
+    # the model's log density is the prior. For a 2 x 2 block with half-normal SD priors
+    # and LKJ(eta) correlation, the density of the packed Cholesky factor
+    # L = (sd1, sd2 r, sd2 sqrt(1 - r^2)) is, worked by hand (Jacobian of (sd1, sd2, r) -> L
+    # is sd2 / sqrt(1 - r^2), and LKJ(eta) for 2 x 2 is c (1 - r^2)^(eta - 1)):
+    #   log HN(sd1) + log HN(sd2) + (eta - 1) log(1 - r^2) + 1/2 log(1 - r^2) - log sd2 + c.
+    # Differences between two points remove c.
+    model = build_model(bl.model("linear-growth"), sleep_panel,
+                        {"level_slope_cov": ("lkj", 3.0)})
+    s = sleep_panel.summary_scale()["Reaction"]["sd"]
+    lkj = "lkj__level_var__slope_var"
+    with model:
+        pm.set_data({"counts": np.zeros(1), "cross": np.zeros((1, 11, 11))})
+    from bayeslong.infer.priors import resolve_priors
+    from bayeslong.model.structure import structure_for
+    ps = resolve_priors(structure_for(bl.model("linear-growth"), sleep_panel), sleep_panel,
+                        {"level_slope_cov": ("lkj", eta)})
+    with model:
+        pm.set_data({"prior_hyper": ps.hyper})  # a new prior value, same compiled graph
+    f = model.compile_logp(vars=[model[lkj]] + list(model.potentials)[:1], jacobian=False)
+
+    def hand(sd1, sd2, r):
+        return (stats.halfnorm(scale=s).logpdf(sd1) + stats.halfnorm(scale=s).logpdf(sd2)
+                + (eta - 1) * np.log(1 - r**2) + 0.5 * np.log(1 - r**2) - np.log(sd2))
+
+    base = {v.name: np.asarray(model.initial_point()[v.name]) for v in model.value_vars}
+    vv = model.rvs_to_values[model[lkj]].name
+
+    def at(sd1, sd2, r):
+        point = dict(base)
+        packed = _lkj_point(sd1, sd2, r)
+        packed[[0, 2]] = np.log(packed[[0, 2]])  # PyMC's packed-Cholesky transform: log diagonal
+        point[vv] = packed
+        return f(point)
+
+    got = at(20.0, 5.0, 0.6) - at(30.0, 8.0, -0.2)
+    # tolerance: double precision arithmetic on O(10) log densities
+    assert got == pytest.approx(hand(20.0, 5.0, 0.6) - hand(30.0, 8.0, -0.2), abs=1e-8)
+
+
+def test_factory_prior_and_wrong_name(sleep_panel):
+    model = build_model(bl.model("linear-growth"), sleep_panel,
+                        {"slope_mean": lambda name: pm.Normal(name, 10.0, 5.0)})
+    assert model["slope_mean"].owner.op.name == "normal"
+    with pytest.raises(SpecError, match="must use the name it is given, 'slope_mean'"):
+        build_model(bl.model("linear-growth"), sleep_panel,
+                    {"slope_mean": lambda name: pm.Normal("other", 10.0, 5.0)})

@@ -1,0 +1,27 @@
+"""The optimiser's unconstrained parameterisation: round trip and chain rule."""
+
+import numpy as np
+import pytest
+
+import bayeslong as bl
+from bayeslong.model.transform import Unconstrained
+from bayeslong.model.structure import build_structure
+
+
+@pytest.mark.parametrize("name", ["linear-growth", "alt", "ri-clpm"])
+def test_round_trip_and_chain_rule(name):
+    K = 2 if name == "ri-clpm" else 1
+    s = build_structure(bl.model(name), outcomes=["y", "v"][:K], n_waves=5)
+    tr = Unconstrained(s)
+    rng = np.random.default_rng(0)
+    u = rng.normal(0, 0.5, s.n_params)
+    theta = tr.to_natural(u)
+    for b in s.blocks:  # every block positive definite
+        assert np.linalg.eigvalsh(theta[b.index]).min() > 0
+    np.testing.assert_allclose(tr.from_natural(theta), u, atol=1e-10)
+    # chain rule against central differences of a linear functional a . theta(u)
+    a = rng.normal(size=s.n_params)
+    h = 1e-6
+    fd = np.array([(a @ tr.to_natural(u + h * e) - a @ tr.to_natural(u - h * e)) / (2 * h)
+                   for e in np.eye(s.n_params)])
+    np.testing.assert_allclose(tr.grad_to_u(u, a), fd, rtol=1e-6, atol=1e-8)

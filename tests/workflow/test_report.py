@@ -1,0 +1,268 @@
+"""Tests of the HTML and Markdown report: escaping, self-containedness, banners, readings.
+
+Reports are rendered from hand-built results (no fitting), so these tests are fast. The
+HTML is parsed with the standard library's ``html.parser`` (an outside reference), and
+opened in headless Chromium when it is installed.
+"""
+
+import html
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from bayeslong.workflow.report import _loo_reading, write_report
+from bayeslong.workflow.results import ModelResult, Step, StudyResults
+from bayeslong.workflow.study_file import load_study, software_versions
+
+EVIL_COLUMN = "<script>alert(1)</script>"
+EVIL_TITLE = 'Title with <b>tags</b> & "quotes"'
+EVIL_LABEL = "<img src=x onerror=alert(2)>"
+VOID = {"meta", "img", "br", "hr", "input", "link"}
+
+
+class _Collector(HTMLParser):
+    """Collect tags, attributes and text; check that non-void tags nest properly."""
+
+    def __init__(self):
+        super().__init__()
+        self.stack, self.tags, self.errors, self.text = [], [], [], []
+        self.bad_text: list[str] = []
+        self._in_bad = 0
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+        if tag not in VOID:
+            self.stack.append(tag)
+            if dict(attrs).get("class") == "bad" or self._in_bad:
+                self._in_bad += 1
+
+    def handle_endtag(self, tag):
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(f"unexpected </{tag}> with open {self.stack[-3:]}")
+            return
+        self.stack.pop()
+        if self._in_bad:
+            self._in_bad -= 1
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._in_bad:
+            self.bad_text.append(data)
+
+
+def _results(tmp_path: Path, problems=()) -> StudyResults:
+    rng = np.random.default_rng(5)
+    n, t = 12, 3
+    frame = pd.DataFrame({"id": np.repeat(np.arange(n), t), "w": np.tile(np.arange(t), n),
+                          EVIL_COLUMN: rng.normal(size=n * t)})
+    frame.to_csv(tmp_path / "evil.csv", index=False)
+    toml = tmp_path / "evil.toml"
+    toml.write_text(f"""
+title = '{EVIL_TITLE}'
+[data]
+path = "evil.csv"
+unit = "id"
+wave = "w"
+outcomes = ['{EVIL_COLUMN}']
+[[models]]
+model = "ar"
+label = '{EVIL_LABEL}'
+""")
+    study = load_study(toml)
+    model = ModelResult(candidate=study.models[0], key="0123456789abcdef", problems=tuple(problems),
+                        notes=("a note naming " + EVIL_COLUMN,),
+                        check=Step.skipped("no posterior fit"))
+    return StudyResults(study=study, panel=study.panel(), models=(model,),
+                        comparison=Step.skipped("needs two or more fitted candidates; 1 fitted"),
+                        versions=software_versions(), started="2026-12-01 00:00 UTC")
+
+
+@pytest.fixture(scope="module")
+def rendered(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("report")
+    results = _results(folder, problems=("lag: r_hat 1.200 >= 1.01",))
+    paths = write_report(results, folder / "out")
+    return paths, paths["html"].read_text(encoding="utf-8")
+
+
+def test_user_text_is_escaped_never_raw(rendered):
+    _, page = rendered
+    for raw in (EVIL_COLUMN, EVIL_LABEL, "<b>tags</b>"):
+        assert raw not in page
+        assert html.escape(raw) in page  # the standard library's escaping, as rendered
+    assert "<script" not in page.lower()  # no script of ours either: none is needed
+
+
+def test_html_is_well_formed_and_self_contained(rendered):
+    _, page = rendered
+    parser = _Collector()
+    parser.feed(page)
+    parser.close()
+    assert parser.errors == [] and parser.stack == []
+    images = [a for tag, a in parser.tags if tag == "img"]
+    assert images, "the data figure should be embedded"
+    assert all(a["src"].startswith("data:image/png;base64,") for a in images)
+    for tag, attrs in parser.tags:
+        assert tag not in ("script", "link", "iframe", "object")
+        for value in attrs.values():
+            assert "http:" not in (value or "") and "https:" not in (value or "")
+
+
+def test_nonconvergence_is_in_a_red_banner(rendered):
+    _, page = rendered
+    parser = _Collector()
+    parser.feed(page)
+    banner = " ".join(parser.bad_text)
+    assert "lag: r_hat 1.200 >= 1.01" in banner
+    assert EVIL_LABEL in banner  # the parser unescapes: the model is named beside its problem
+    # the banner comes before the first section heading, i.e. at the top
+    assert page.index('class="bad"') < page.index('id="run"')
+
+
+def test_markdown_has_the_same_sections(rendered):
+    paths, page = rendered
+    md = paths["markdown"].read_text(encoding="utf-8")
+    parser = _Collector()
+    parser.feed(page)
+    html_headings = []
+    collecting = None
+
+    class Headings(HTMLParser):
+        def handle_starttag(self, tag, attrs):
+            nonlocal collecting
+            if tag in ("h1", "h2", "h3"):
+                collecting = []
+
+        def handle_endtag(self, tag):
+            nonlocal collecting
+            if tag in ("h1", "h2", "h3") and collecting is not None:
+                html_headings.append("".join(collecting))
+                collecting = None
+
+        def handle_data(self, data):
+            if collecting is not None:
+                collecting.append(data)
+
+    Headings().feed(page)
+    md_headings = [line.lstrip("#").strip() for line in md.splitlines() if line.startswith("#")]
+    assert md_headings == html_headings
+    for section in ("Data", "Candidate models", "Model comparison", "Posterior predictive checks",
+                    "Lag sensitivity", "Identification", "Reproducibility", "Caution"):
+        assert section in md_headings
+    figures = list(paths["figures"].glob("*.png"))
+    assert figures and all(f"report_figures/{f.name}" in md for f in figures)
+
+
+def test_steps_not_run_say_why(rendered):
+    _, page = rendered
+    assert "Comparison not run: needs two or more fitted candidates; 1 fitted." in page
+    assert "not run: no posterior fit." in page
+    assert "Not run: not requested" in page  # sensitivity, off by default
+
+
+def test_versions_and_seed_are_reported(rendered):
+    _, page = rendered
+    import numpy
+
+    assert f"<td>numpy</td><td>{numpy.__version__}</td>" in page
+    assert "<td>seed</td><td>1</td>" in page  # the default seed of the study file
+
+
+@pytest.mark.parametrize("diff, dse, verdict", [
+    (1.0, 1.5, "too small or too uncertain"),   # 1.0 < 2 x 1.5 (and < 4): no preference
+    (5.0, 3.0, "too small or too uncertain"),   # 5.0 < 2 x 3.0 = 6: no preference
+    (10.0, 2.0, "expected to predict better"),  # 10 > 2 x 2 and > 4: a preference
+], ids=["small", "within-2se", "clear"])
+def test_loo_reading_follows_the_two_se_rule(diff, dse, verdict):
+    # rule of thumb (common practice; Sivula, Magnusson & Vehtari 2020)
+    table = pd.DataFrame({"elpd_diff": [0.0, diff], "dse": [0.0, dse]}, index=["a", "b"])
+    (line,) = _loo_reading(table)
+    assert line.startswith("a vs b: difference")
+    assert verdict in line
+
+
+CHROMIUM = Path("/usr/bin/chromium")  # Debian's package (apt-get install chromium)
+
+
+def _open_in_chromium(page: Path, profile: Path) -> tuple[int, list[str], str]:
+    """Load ``page`` in headless Chromium; return (exit code, console lines, rendered DOM).
+
+    The flags are the machine notes' (no sandbox, GPU, QUIC, first-run, background
+    networking, component updates or sync; a fresh profile). With ``--enable-logging=stderr``
+    Chromium writes every console message of the page to stderr as a ``CONSOLE`` line
+    (uncaught exceptions as "Uncaught ...").
+    """
+    result = subprocess.run(
+        [str(CHROMIUM), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+         "--no-first-run", "--disable-background-networking", "--disable-component-update",
+         "--disable-sync", f"--user-data-dir={profile}", "--enable-logging=stderr",
+         "--v=0", "--dump-dom", page.resolve().as_uri()],
+        capture_output=True, text=True, timeout=120)
+    console = [line for line in result.stderr.splitlines() if "CONSOLE" in line or "Uncaught" in line]
+    return result.returncode, console, result.stdout
+
+
+@pytest.mark.skipif(not CHROMIUM.exists(), reason="/usr/bin/chromium is not installed here")
+def test_report_opens_in_headless_chromium_without_console_errors(rendered, tmp_path):
+    # control: the same check sees a page's console error, so an empty list below means
+    # the report logged nothing (not that Chromium stopped reporting console messages)
+    control = tmp_path / "control.html"
+    control.write_text("<!DOCTYPE html><html><head><title>c</title></head><body>"
+                       "<script>console.error('control-error'); undefinedName;</script>"
+                       "</body></html>", encoding="utf-8")
+    code, console, _ = _open_in_chromium(control, tmp_path / "profile-control")
+    assert code == 0
+    assert any("control-error" in line for line in console)
+    assert any("Uncaught ReferenceError" in line for line in console)
+
+    paths, _ = rendered
+    code, console, dom = _open_in_chromium(paths["html"], tmp_path / "profile")
+    assert code == 0, console
+    assert console == []  # the report has no script: any console message is a fault
+    assert "Lag sensitivity" in dom  # the DOM was rendered
+    assert EVIL_COLUMN not in dom  # still escaped after parsing
+    assert dom.count('src="data:image/png;base64,') >= 1  # figures embedded, nothing fetched
+
+
+@pytest.mark.parametrize("d_aic, verdict", [(1.5, "about equally supported"),
+                                            (7.0, "less supported than a")],
+                         ids=["close", "far"])
+def test_aic_reading_follows_the_two_point_rule(d_aic, verdict):
+    from bayeslong.workflow.report import _aic_reading
+
+    # rule of thumb (common practice; Burnham & Anderson 2002): under 2 AIC points is close
+    table = pd.DataFrame({"d_aic": [0.0, d_aic]}, index=["a", "b"])
+    (line,) = _aic_reading(table)
+    assert line == f"b: AIC {d_aic:.1f} above a: {verdict} by this criterion."
+
+
+def test_leave_future_out_problems_and_time_spent_are_reported(tmp_path):
+    import dataclasses
+
+    from bayeslong.evaluate.comparison import LFO_COLUMNS
+
+    base = _results(tmp_path)
+    table = pd.DataFrame({"elpd_loo": [-10.0, -12.0], "elpd_diff": [0.0, 2.0], "dse": [0.0, 1.5],
+                          "elpd_lfo": [-3.0, -4.0], "se_lfo": [1.0, 1.0], "lfo_diff": [0.0, 1.0],
+                          "lfo_dse": [0.0, 0.8]}, index=pd.Index(["a", "b"], name="model"))
+    table.attrs["lfo_problems"] = {"b": "lag: r_hat 1.300 >= 1.01; " + EVIL_COLUMN}
+    stages = (("intake", 0.2, ""), ("comparison", 12.5, "leave-future-out refit of b: compile 9 s"))
+    results = dataclasses.replace(
+        base, comparison=Step(ran=True, value=table),
+        future=Step(ran=True, value=table[list(LFO_COLUMNS)]), stages=stages, seconds=13.0)
+    paths = write_report(results, tmp_path / "out")
+    page = paths["html"].read_text(encoding="utf-8")
+    parser = _Collector()
+    parser.feed(page)
+    text = "".join(parser.text)
+    assert "These refits did not converge by the stated criteria" in text
+    assert "b: lag: r_hat 1.300 >= 1.01; " + EVIL_COLUMN in text  # shown, and escaped:
+    assert EVIL_COLUMN not in page
+    assert "Time spent by step (the run took 13 s" in text
+    assert "leave-future-out refit of b: compile 9 s" in text
+    md = paths["markdown"].read_text(encoding="utf-8")
+    assert "| comparison | 12.5 | leave-future-out refit of b: compile 9 s |" in md
