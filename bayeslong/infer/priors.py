@@ -211,7 +211,8 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     parameter                                     default prior
     ============================================  =====================================
     level / initial means, intercepts             Normal(m, 3 s + |m|)
-    slope and curve means                         Normal(0, s)
+    slope and curve means (dual change: the       Normal(0, s)
+    constant change per wave)
     lag (autoregression, proportional change)     Normal(0, 0.5)
     cross-lag y <- y'                             Normal(0, 0.5 s / s')
     covariate effects on y (any wave, factor)     Normal(0, 2.5 s / s_x)
@@ -221,6 +222,9 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     covariances of a block of q > 1 variables     correlation matrix ~ LKJ(eta = 2)
     ============================================  =====================================
 
+    A slope mean is a change per wave (per unit of time score); in the dual change model
+    it is the constant change added at every wave, so 0 with scale s (the pooled SD, which
+    also holds the change of the mean over waves) is a wide, neutral centre for both.
     The location scale ``3 s + |m|`` keeps both the first-wave mean and 0 within about one
     prior SD, because with a lag part of the mean moves into the lag term. The scale 2.5 for
     effects on the standardised scale follows Gelman et al. (2008). LKJ(2) puts mild weight

@@ -88,7 +88,10 @@ class Spec:
         Where the wave-specific variance sits: the latent disturbance, or a measurement
         error on the observed outcome with a disturbance-free latent (dual change).
     initial_is_level : bool
-        The first wave's latent is the level factor itself (latent change score).
+        The first wave's latent is the level factor itself, and the level reaches later
+        waves only through it, carried by the lag (latent change score: each change is
+        slope + beta x previous latent score, so ``slope`` is the constant change).
+        Needs a level factor, the latent form and a lag.
     options : dict
         Resolved options: initial, lag, residuals, effects, intercepts.
     allowed : dict
@@ -144,6 +147,19 @@ class Spec:
                     f"{_nearest(value, values)}"
                 )
         object.__setattr__(self, "options", options)
+        if self.initial_is_level:
+            # the lag is what carries the level (the first wave) to later waves
+            if "level" not in factors or self.form != "latent":
+                raise SpecError(
+                    f"`initial_is_level = true`{where} needs a level factor in the latent form "
+                    f"(factors = [\"level\", ...], form = \"latent\"); got factors = {list(factors)}, "
+                    f"form = {self.form!r}")
+            if options["lag"] == "none":
+                raise SpecError(
+                    f"`initial_is_level = true`{where} needs a lag: the level enters only the "
+                    "first wave and reaches later waves through the lag on the previous latent "
+                    "score; choose lag = \"constant\" or \"time-varying\" (and leave \"none\" out of "
+                    "[allowed] lag)")
 
     # --- conveniences -----------------------------------------------------------------
     @property

@@ -221,7 +221,14 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     def score(f: int, t: int, k: int):
         """Fixed loading of factor f at wave t, or a parameter name for a free score."""
         if f == 0:
-            return 1.0
+            # when the first wave is the level (latent change score), the level is the
+            # initial true score and reaches later waves only through it, carried forward
+            # by the lag, so the slope is the constant change itself (McArdle & Hamagami
+            # 2001, in Collins & Sayer, New Methods for the Analysis of Change; McArdle
+            # 2009, Annu. Rev. Psychol. 60, 577-605). Loading the level on every change
+            # too would make the slope "constant change minus level": same likelihood,
+            # other meaning.
+            return 0.0 if spec.initial_is_level else 1.0
         if spec.scores == "constant":
             return 1.0 if t >= 2 else 0.0
         if spec.scores == "basis":
