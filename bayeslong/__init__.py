@@ -16,9 +16,9 @@ if "blas__ldflags" not in _os.environ.get("PYTENSOR_FLAGS", ""):
 # and SciPy only. Everything that needs PyMC or ArviZ (several seconds to import) loads on
 # first use, so `bayeslong models`, `check-data`, `identify` and `fit_ml` start quickly.
 from bayeslong.data import Panel, Patterns
-from bayeslong.model.spec import Spec, catalog, model, load_model
-from bayeslong.model.identification import Identification, identify
 from bayeslong.infer.ml import MLResult, fit_ml
+from bayeslong.model.identification import Identification, identify
+from bayeslong.model.spec import Spec, catalog, load_model, model
 
 _LAZY = {
     "Fit": "infer.sampling", "fit": "infer.sampling", "load_fit": "infer.sampling",
@@ -31,7 +31,7 @@ _LAZY = {
     "explain_comparison": "evaluate.comparison", "forecast_score": "evaluate.comparison",
     "pareto_k": "evaluate.comparison",
     "LagSensitivity": "evaluate.sensitivity", "lag_sensitivity": "evaluate.sensitivity",
-    "power_scaling": "evaluate.sensitivity", "plan": "evaluate.sensitivity",
+    "power_scaling": "evaluate.sensitivity", "plan": "evaluate.planning",
     "ppc": "evaluate.checks", "replicate": "evaluate.checks", "trajectories": "evaluate.checks",
     "plot_compare": "evaluate.plots", "plot_ppc": "evaluate.plots",
     "plot_trajectories": "evaluate.plots",

@@ -41,10 +41,10 @@ import pandas as pd
 from scipy.special import logsumexp
 
 from bayeslong.dims import UNIT
+from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.evaluate.checks import conditional_normal
 from bayeslong.infer.likelihood import mvn_logpdf
 from bayeslong.model.moments import moment_draws, unit_means
-from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import structure_for
 
@@ -536,8 +536,8 @@ def contains_past(past, full, *, points: int = 3, seed: int = 0) -> bool:
     depend on wave-T covariates (the level of ``fixed-effects`` is regressed on x at
     every wave).
     """
-    from bayeslong.model.transform import Unconstrained
     from bayeslong.model.moments import moments_at
+    from bayeslong.model.transform import Unconstrained
 
     if past.names != full.names:
         return False
@@ -616,9 +616,9 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
     :func:`bayeslong.model.start.start_values` has no value without wave T) the refit is on
     ``panel.head(T - 1)``.
     """
+    from bayeslong.infer.priors import resolve_priors
     from bayeslong.infer.sampling import fit as run_fit
     from bayeslong.model.start import start_values
-    from bayeslong.infer.priors import resolve_priors
 
     if panel.n_waves < 4:
         raise DataError(

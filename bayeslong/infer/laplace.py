@@ -16,9 +16,9 @@ import numpy as np
 import pandas as pd
 
 from bayeslong.dims import UNIT
-from bayeslong.model.moments import moment_draws, unit_means
 from bayeslong.infer.likelihood import loglik_function, mvn_logpdf, pattern_arrays
-from bayeslong.infer.ml import hessian, fit_ml
+from bayeslong.infer.ml import fit_ml, hessian
+from bayeslong.model.moments import moment_draws, unit_means
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import Structure, structure_for
 

@@ -220,7 +220,10 @@ def _kernel():
 
 
 try:  # the numba backend (nutpie) inlines the kernel instead of calling back into Python
-    from pytensor.link.numba.dispatch.basic import numba_njit, register_funcify_default_op_cache_key
+    from pytensor.link.numba.dispatch.basic import (
+        numba_njit,
+        register_funcify_default_op_cache_key,
+    )
 
     @register_funcify_default_op_cache_key(PatternLogLik)
     def _numba_pattern_loglik(op, node, **kwargs):

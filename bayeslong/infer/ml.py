@@ -18,13 +18,17 @@ import numpy as np
 import pandas as pd
 from scipy import optimize
 
-from bayeslong.threads import single_thread
-from bayeslong.model.transform import Unconstrained
 from bayeslong.errors import BoundaryWarning, IdentificationError
-from bayeslong.infer.likelihood import loglik_function, loglik_grad_information, pattern_arrays
+from bayeslong.infer.likelihood import (
+    loglik_function,
+    loglik_grad_information,
+    pattern_arrays,
+)
 from bayeslong.model.spec import Spec
 from bayeslong.model.start import start_values
 from bayeslong.model.structure import Structure, structure_for
+from bayeslong.model.transform import Unconstrained
+from bayeslong.threads import single_thread
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)

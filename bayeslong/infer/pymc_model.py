@@ -24,8 +24,8 @@ from bayeslong.dims import PARAMETER
 from bayeslong.errors import SpecError
 from bayeslong.infer.likelihood import pattern_arrays
 from bayeslong.infer.loglik_op import pattern_loglik
-from bayeslong.model.moments import implied_moments
 from bayeslong.infer.priors import PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.model.moments import implied_moments
 from bayeslong.model.structure import structure_for
 
 #: Names of the data inputs of every model built here.

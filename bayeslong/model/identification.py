@@ -20,12 +20,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from bayeslong.threads import single_thread
-from bayeslong.model.transform import Unconstrained
 from bayeslong.model.moments import moment_jacobian
 from bayeslong.model.spec import Spec
 from bayeslong.model.start import start_values
 from bayeslong.model.structure import Structure, structure_for
+from bayeslong.model.transform import Unconstrained
+from bayeslong.threads import single_thread
 
 _RESULTS: dict = {}
 

@@ -271,7 +271,7 @@ def cmd_simulate(args) -> int:
 
 
 def cmd_plan(args) -> int:
-    from bayeslong.evaluate.sensitivity import plan
+    from bayeslong.evaluate.planning import plan
 
     spec = _model_from_args(args)
     waves = [int(t) for t in args.waves_grid.split(",")]

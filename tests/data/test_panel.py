@@ -10,8 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from bayeslong.dims import UNIT, WAVE
 from bayeslong.data import Panel, Patterns
+from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import DataError
 
 # --------------------------------------------------------------------------------------------

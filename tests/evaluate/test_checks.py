@@ -14,13 +14,17 @@ import pandas as pd
 import pytest
 
 import bayeslong as bl
-from bayeslong.infer.laplace import ApproxFit, approximate_fit
-from bayeslong.model.moments import moment_draws
-from bayeslong.evaluate.checks import (conditional_normal, panel_statistics, ppc, replicate,
-                             trajectories)
 from bayeslong.errors import DataError
-from bayeslong.model.moments import moments_at
+from bayeslong.evaluate.checks import (
+    conditional_normal,
+    panel_statistics,
+    ppc,
+    replicate,
+    trajectories,
+)
 from bayeslong.evaluate.plots import plot_compare, plot_ppc, plot_trajectories
+from bayeslong.infer.laplace import ApproxFit, approximate_fit
+from bayeslong.model.moments import moment_draws, moments_at
 from bayeslong.model.structure import build_structure, structure_for
 
 T = 5

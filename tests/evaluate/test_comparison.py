@@ -16,9 +16,15 @@ import pytest
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.infer.laplace import approximate_fit, unit_loglik
-from bayeslong.evaluate.comparison import compare, explain_comparison, extend_draws, last_wave_logpdf, pareto_k
 from bayeslong.errors import DataError, SpecError
+from bayeslong.evaluate.comparison import (
+    compare,
+    explain_comparison,
+    extend_draws,
+    last_wave_logpdf,
+    pareto_k,
+)
+from bayeslong.infer.laplace import approximate_fit, unit_loglik
 from bayeslong.infer.likelihood import pattern_values, unit_cross
 from bayeslong.model.moments import moments_at
 from bayeslong.model.structure import build_structure
@@ -371,9 +377,9 @@ def _panel_with_covariate(n=80, seed=21):
     ("fixed-effects", {}, False),  # the level is regressed on x at every wave, x[5] too
 ], ids=["linear-growth", "alt-equal", "ar", "alt-free", "fixed-effects"])
 def test_hidden_last_wave_model_is_the_past_model_exactly_when_claimed(name, options, expected):
-    from bayeslong.infer.pymc_model import build_model
     from bayeslong.evaluate.comparison import contains_past, last_wave_hidden
     from bayeslong.infer.priors import resolve_priors
+    from bayeslong.infer.pymc_model import build_model
     from bayeslong.model.structure import structure_for
 
     panel = _panel_with_covariate()

@@ -16,18 +16,18 @@ import xarray as xr
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.infer.batch import SerialExecutor
 from bayeslong.errors import SpecError
-from bayeslong.infer.priors import prior_draws, resolve_priors
+from bayeslong.evaluate.planning import plan
 from bayeslong.evaluate.sensitivity import (
     LagSensitivity,
     lag_models,
     lag_parameter,
     log_prior_draws,
-    plan,
     power_scaling,
     scaled_variance_priors,
 )
+from bayeslong.infer.batch import SerialExecutor
+from bayeslong.infer.priors import prior_draws, resolve_priors
 from bayeslong.model.simulation import Simulation
 from bayeslong.model.structure import structure_for
 

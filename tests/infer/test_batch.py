@@ -12,8 +12,8 @@ import pandas as pd
 import pytest
 
 import bayeslong as bl
-from bayeslong.infer.batch import Task, run_many
 from bayeslong.errors import SpecError
+from bayeslong.infer.batch import Task, run_many
 from bayeslong.model.simulation import Simulation
 
 AR = {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0, "initial_var": 1.0, "resid_var": 1.0}

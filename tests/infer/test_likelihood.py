@@ -6,7 +6,12 @@ import pytest
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.infer.likelihood import loglik_function, pattern_arrays, pattern_values, unit_cross
+from bayeslong.infer.likelihood import (
+    loglik_function,
+    pattern_arrays,
+    pattern_values,
+    unit_cross,
+)
 from bayeslong.infer.loglik_op import compiled_loglik_function
 from bayeslong.model.moments import moments_at
 from bayeslong.model.structure import structure_for

@@ -6,8 +6,8 @@ import pytest
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.infer.pymc_model import build_model
 from bayeslong.errors import SpecError
+from bayeslong.infer.pymc_model import build_model
 
 
 def _ar_moments(intercept, lag, initial_mean, initial_var, resid_var, T):

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 
 import bayeslong as bl
-from bayeslong.model.transform import Unconstrained
 from bayeslong.model.structure import build_structure
+from bayeslong.model.transform import Unconstrained
 
 
 @pytest.mark.parametrize("name", ["linear-growth", "alt", "ri-clpm"])

@@ -274,7 +274,9 @@ def test_unknown_sampler_is_a_user_error_before_any_fit(tmp_path, capsys):
     path.write_text(path.read_text().replace('method = "ml"', 'method = "bayes"'))
     assert main(["run", str(path)]) == 1
     err = capsys.readouterr().err
-    from bayeslong.infer.sampling import SAMPLERS  # the fit module's own list is the reference
+    from bayeslong.infer.sampling import (
+        SAMPLERS,  # the fit module's own list is the reference
+    )
 
     listed = ", ".join(repr(s) for s in SAMPLERS)
     assert f"error: study file s.toml: `sampling.sampler` must be one of {listed}; got 'hmc2'" in err

@@ -25,11 +25,11 @@ import pandas as pd
 import pytest
 
 import bayeslong as bl
-from bayeslong._transform import Unconstrained
 from bayeslong.errors import SpecError
-from bayeslong.moments import moments_at
-from bayeslong.simulate import parameter_vector
-from bayeslong.structure import build_structure
+from bayeslong.model.moments import moments_at
+from bayeslong.model.simulation import parameter_vector
+from bayeslong.model.structure import build_structure
+from bayeslong.model.transform import Unconstrained
 
 
 # --- a linear variable: constant + covariate coefficients + disturbance coefficients -------
