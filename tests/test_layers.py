@@ -16,7 +16,7 @@ import pytest
 PACKAGE = Path(__file__).resolve().parents[1] / "bayeslong"
 
 #: Rank of each top-level part of the package; a module imports only equal or lower ranks.
-LAYERS = {"errors": 0, "dims": 0, "threads": 0, "wording": 0, "models": 0,
+LAYERS = {"errors": 0, "dims": 0, "threads": 0, "wording": 0, "arguments": 0, "models": 0,
           "data": 1, "model": 2, "infer": 3, "evaluate": 4, "workflow": 5}
 
 #: Largest module, in lines (a file that grows past it is two concepts).

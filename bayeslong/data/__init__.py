@@ -3,6 +3,6 @@
 Imports nothing from the other layers (see docs/architecture.md).
 """
 
-from bayeslong.data.panel import Panel, Patterns
+from bayeslong.data.panel import Panel, Patterns, check_panel
 
-__all__ = ["Panel", "Patterns"]
+__all__ = ["Panel", "Patterns", "check_panel"]

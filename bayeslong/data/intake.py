@@ -11,6 +11,7 @@ wave, and says how to fix it.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Hashable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -25,6 +26,7 @@ from bayeslong.data.validation import (
     check_roles,
     check_wave_count,
     name_tuple,
+    numbered_text_order,
     numeric_column,
     settle_covariates,
     sorted_labels,
@@ -122,6 +124,16 @@ def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
 
     waves = sorted_labels(df[wave].drop_duplicates().tolist(), "wave", wave)
     warn_text_waves(waves, wave, stacklevel=_USER - 1)
+    numbered = numbered_text_order(waves)
+    if numbered is not None:
+        # 't10' before 't2' as text would put the waves out of time order, silently
+        # reversing lags; the numbers in the labels are what a person means
+        warnings.warn(
+            f"the wave labels in column {show(wave)} are text with numbers in them; they are "
+            f"ordered by those numbers ({show_list(numbered)}), not as text (where "
+            f"{show(sorted(waves)[1])} would come second). Give the waves as numbers to make "
+            "the order explicit.", UserWarning, stacklevel=_USER - 1)
+        waves = numbered
     units = sorted_labels(df[unit].drop_duplicates().tolist(), "unit", unit)
 
     unit_pos = pd.Index(units).get_indexer(df[unit])

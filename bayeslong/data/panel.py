@@ -25,6 +25,7 @@ from bayeslong.data.patterns import Patterns
 from bayeslong.data.validation import (
     MIN_WAVES,
     arrays_equal,
+    check_magnitudes,
     check_roles,
     check_wave_count,
     name_tuple,
@@ -145,17 +146,6 @@ class Panel:
                 f"{show(waves[w])}; replace infinite values with NaN to treat them as missing."
             )
         observed = ~np.isnan(y)
-        empty = ~observed.any(axis=(1, 2))
-        if empty.any():
-            ids = [units[i] for i in np.flatnonzero(empty)]
-            subject = (
-                f"unit {show(ids[0])} has" if len(ids) == 1 else f"units {show_list(ids)} have"
-            )
-            raise DataError(
-                f"{subject} no observed outcome at any wave; drop "
-                f"{'its' if len(ids) == 1 else 'their'} rows from the data (a unit without "
-                "outcomes carries no information about them)."
-            )
         for k, name in enumerate(outcomes):
             values = y[:, :, k][observed[:, :, k]]
             if values.size == 0:
@@ -168,6 +158,29 @@ class Panel:
                     f"entry ({values.size}); a constant outcome has no variance to model: remove "
                     "it from `outcomes` or check the column."
                 )
+        empty = ~observed.any(axis=(1, 2))
+        if empty.any():
+            ids = [units[i] for i in np.flatnonzero(empty)]
+            subject = (
+                f"unit {show(ids[0])} has" if len(ids) == 1 else f"units {show_list(ids)} have"
+            )
+            raise DataError(
+                f"{subject} no observed outcome at any wave; drop "
+                f"{'its' if len(ids) == 1 else 'their'} rows from the data (a unit without "
+                "outcomes carries no information about them)."
+            )
+        for name, array, names in (("x", x, time_varying), ("z", z, time_invariant)):
+            for q, column in enumerate(names):
+                values = array[..., q].ravel()
+                if values.size and np.all(values == values[0]):
+                    kind = "time-varying" if name == "x" else "time-invariant"
+                    raise DataError(
+                        f"{kind} covariate {show(column)} takes the single value {values[0]:g} "
+                        "for every unit and wave; a constant covariate cannot be told apart "
+                        "from the intercept (its effect is not identified): remove it from "
+                        f"`{'time_varying' if name == 'x' else 'time_invariant'}`."
+                    )
+        check_magnitudes(y, x, z, outcomes, time_varying, time_invariant)
         for name, value in (
             ("units", units),
             ("waves", waves),
@@ -588,3 +601,17 @@ class Panel:
             sd = float(np.std(pooled, ddof=1)) if pooled.size > 1 else float("nan")
             scales[name] = {"mean": float(values[seen[:, first], first].mean()), "sd": sd}
         return scales
+
+
+def check_panel(panel: Any) -> Panel:
+    """Return ``panel`` if it is a :class:`Panel`; otherwise raise saying how to make one."""
+    if isinstance(panel, Panel):
+        return panel
+    if isinstance(panel, pd.DataFrame):
+        raise DataError(
+            "`panel` must be a bayeslong Panel; got a pandas DataFrame. Build one with "
+            "bl.Panel.from_long(df, unit=..., wave=..., outcomes=[...]) (one row per unit and "
+            "wave) or bl.Panel.from_wide(df, unit=..., outcomes={...}) (one row per unit).")
+    raise DataError(f"`panel` must be a bayeslong Panel (bl.Panel.from_long or "
+                    f"bl.Panel.from_wide); got a {type(panel).__name__}.")
+

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import difflib
 import numbers
+import re
 import warnings
 from collections.abc import Hashable, Iterable, Mapping, Sequence
 from typing import Any
@@ -80,6 +81,29 @@ def check_roles(
                 )
 
 
+#: ``df.attrs`` key naming the file a frame was read from (set by the study file's reader):
+#: messages then name the file and its lines, and give advice for editing a file rather
+#: than pandas code.
+SOURCE = "bayeslong_source"
+
+
+def source_of(df: pd.DataFrame) -> str | None:
+    """The name of the file ``df`` was read from, if a bayeslong reader read it."""
+    return df.attrs.get(SOURCE)
+
+
+def row_name(df: pd.DataFrame, label: Any) -> str:
+    """How a message names a row: ``line 7 of data.csv`` for a file, ``row 5`` for a frame."""
+    if source_of(df) and df.index.name == "line":
+        return f"line {show(label)} of {source_of(df)}"
+    return f"row {show(label)}"
+
+
+def advice(df: pd.DataFrame, pandas_code: str, in_file: str) -> str:
+    """The fix, as pandas code for a frame or as an edit for a file the study file named."""
+    return in_file if source_of(df) else pandas_code
+
+
 def check_frame(df: Any) -> None:
     """Reject anything but a non-empty DataFrame."""
     if not isinstance(df, pd.DataFrame):
@@ -88,6 +112,12 @@ def check_frame(df: Any) -> None:
             "Wrap it with pd.DataFrame(...) first."
         )
     if len(df) == 0:
+        if source_of(df):
+            raise DataError(
+                f"the data file {source_of(df)} has a header ({show_list(df.columns)}) but no "
+                "rows; put the panel's rows in it, one per unit and wave (long) or per unit "
+                "(wide), or point `data.path` at the right file."
+            )
         raise DataError(
             f"the data frame is empty (0 rows, columns: {show_list(df.columns)}); "
             "pass a data frame that holds the panel."
@@ -122,9 +152,10 @@ def check_no_missing_labels(df: pd.DataFrame, column: Hashable, what: str) -> No
     if missing.any():
         rows = df.index[missing]
         raise DataError(
-            f"column {show(column)} row {show(rows[0])} is missing; every row needs a {what} "
+            f"column {show(column)} {row_name(df, rows[0])} is missing; every row needs a {what} "
             f"({int(missing.sum())} {plural(int(missing.sum()), 'row lacks', 'rows lack')} one). "
-            f"Fill it in or drop those rows, e.g. df.dropna(subset=[{show(column)}])."
+            + advice(df, f"Fill it in or drop those rows, e.g. df.dropna(subset=[{show(column)}]).",
+                     "Fill it in or delete those rows from the file.")
         )
 
 
@@ -155,18 +186,20 @@ def numeric_column(df: pd.DataFrame, column: Hashable, role: str) -> np.ndarray:
             first = int(np.argmax(bad))
             n_bad = int(bad.sum())
             raise DataError(
-                f"column {show(column)} row {show(df.index[first])} holds {raw[first]!r}, not a number "
+                f"column {show(column)} {row_name(df, df.index[first])} holds {raw[first]!r}, not a number "
                 f"({n_bad} {plural(n_bad, 'entry', 'entries')} of this {role} column "
                 f"{'is' if n_bad == 1 else 'are'} not numbers). "
-                f"Fix those entries, or turn them into missing values with "
-                f"df[{show(column)}] = pd.to_numeric(df[{show(column)}], errors='coerce')."
+                + advice(df, "Fix those entries, or turn them into missing values with "
+                         f"df[{show(column)}] = pd.to_numeric(df[{show(column)}], errors='coerce').",
+                         "Fix those entries in the file, or leave them empty to mark them missing.")
             )
         if as_text.any():
             first = int(np.argmax(as_text))
             raise DataError(
-                f"column {show(column)} stores numbers as text (dtype {dtype}); row "
-                f"{show(df.index[first])} holds {raw[first]!r}. Convert it with "
-                f"df[{show(column)}] = pd.to_numeric(df[{show(column)}])."
+                f"column {show(column)} stores numbers as text (dtype {dtype}); "
+                f"{row_name(df, df.index[first])} holds {raw[first]!r}. "
+                + advice(df, f"Convert it with df[{show(column)}] = pd.to_numeric(df[{show(column)}]).",
+                         "Remove the quotes or other characters around the numbers in the file.")
             )
         values = np.array(
             [np.nan if m else float(v) for v, m in zip(raw, missing, strict=True)], dtype=float
@@ -181,7 +214,7 @@ def numeric_column(df: pd.DataFrame, column: Hashable, role: str) -> np.ndarray:
             else "fix the entry (covariates cannot be missing or infinite)"
         )
         raise DataError(
-            f"column {show(column)} row {show(df.index[first])} holds {values[first]}; infinite "
+            f"column {show(column)} {row_name(df, df.index[first])} holds {values[first]}; infinite "
             f"values cannot be used ({n_inf} in this column): {fix}."
         )
     return values
@@ -230,6 +263,32 @@ def warn_wave_spacing(waves: Sequence[Any], where: str, stacklevel: int) -> None
             UserWarning,
             stacklevel=stacklevel,
         )
+
+
+_NUMBER_IN_TEXT = re.compile(r"(\d+(?:\.\d+)?)")
+
+
+def _number_key(label: str):
+    """``'t10'`` -> ``('t', 10.0, '')``: text parts and numbers, for ordering numbered labels."""
+    parts = _NUMBER_IN_TEXT.split(label)
+    return tuple(float(p) if i % 2 else p for i, p in enumerate(parts))
+
+
+def numbered_text_order(labels: Sequence[Any]) -> list | None:
+    """Labels like ``t1 .. t10`` (text with a number, same text around it) in number order.
+
+    None when the labels are not all such text, or when the text order is already the
+    number order. Pure numbers stored as text are left to :func:`warn_text_waves`.
+    """
+    if not labels or not all(isinstance(w, str) and not is_text_number(w)
+                             and _NUMBER_IN_TEXT.search(w) for w in labels):
+        return None
+    keys = [_number_key(w) for w in labels]
+    shapes = {tuple(p for i, p in enumerate(k) if i % 2 == 0) for k in keys}
+    if len(shapes) != 1:
+        return None
+    ordered = [w for _, w in sorted(zip(keys, labels, strict=True))]
+    return None if ordered == sorted(labels) else ordered
 
 
 def warn_text_waves(waves: Sequence[Any], column: Hashable, stacklevel: int) -> None:
@@ -321,3 +380,42 @@ def readonly(values: Any, ndim: int, name: str) -> np.ndarray:
 def arrays_equal(a: np.ndarray, b: np.ndarray) -> bool:
     """Compare two arrays, shapes included, treating NaN as equal to NaN."""
     return a.shape == b.shape and bool(np.array_equal(a, b, equal_nan=a.dtype.kind == "f"))
+
+
+#: Largest magnitude a value may have: the engine works on cross-products of the data
+#: (sums of squares over units), which overflow double precision (about 1.8e308) well
+#: before the values themselves do.
+MAX_MAGNITUDE = 1e100
+
+#: Outside this range of SDs the estimates lose precision in double arithmetic
+#: (common practice: put variables on a scale near 1 before optimising).
+SCALE_RANGE = (1e-6, 1e6)
+
+
+def check_magnitudes(y, x, z, outcomes, time_varying, time_invariant) -> None:
+    """Refuse values whose squares overflow; warn about scales far from 1.
+
+    The likelihood uses sums of squares and cross-products of the data, so a value of
+    1e160 overflows to infinity and the fit ends in NaN; such data must be rescaled first.
+    """
+    columns = [(y[..., k], name, "outcome") for k, name in enumerate(outcomes)]
+    columns += [(x[..., q], name, "time-varying covariate") for q, name in enumerate(time_varying)]
+    columns += [(z[..., q], name, "time-invariant covariate") for q, name in enumerate(time_invariant)]
+    for values, name, kind in columns:
+        seen = values[np.isfinite(values)]
+        if not seen.size:
+            continue
+        top = float(np.max(np.abs(seen)))
+        if top > MAX_MAGNITUDE:
+            raise DataError(
+                f"{kind} {show(name)} has values as large as {top:.3g}; the fit works with "
+                "squares and cross-products of the data, which overflow at this size. Rescale "
+                f"it (divide by a power of ten, e.g. 1e{int(np.log10(top))}) before fitting."
+            )
+        sd = float(np.std(seen))
+        if sd > 0 and not SCALE_RANGE[0] <= sd <= SCALE_RANGE[1]:
+            warnings.warn(
+                f"{kind} {show(name)} has standard deviation {sd:.3g}; estimates lose precision "
+                "far from a scale near 1. Consider rescaling it (e.g. to thousands or "
+                "millionths) before fitting.", UserWarning, stacklevel=5)
+

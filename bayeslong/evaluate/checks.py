@@ -90,8 +90,12 @@ def conditional_normal(mean, cov, given, values):
 # --------------------------------------------------------------------------------------------
 
 
-def _check_fit(fit, where: str) -> None:
-    missing = [a for a in ("spec", "panel", "structure", "idata", "theta_draws") if not hasattr(fit, a)]
+_FIT_PARTS = ("spec", "panel", "structure", "idata", "theta_draws")
+
+
+def check_fit(fit, where: str, needs: tuple = _FIT_PARTS) -> None:
+    """Raise a DataError naming ``where`` unless ``fit`` has what a fit of bl.fit has."""
+    missing = [a for a in needs if not hasattr(fit, a)]
     if missing:
         raise DataError(
             f"{where} needs a fit made by bl.fit (with .spec, .panel, .structure, .idata and "
@@ -143,7 +147,7 @@ def replicate(fit, *, draws: int = 200, seed=0) -> np.ndarray:
     y_rep[s, i] = c_s + D_s w_i + L_s z_si with L_s L_s' = Sigma_s and z_si ~ N(0, I),
     all draws and units in one batched computation.
     """
-    _check_fit(fit, "replicate")
+    check_fit(fit, "replicate")
     draws = _check_draws(draws, "replicate")
     rng = np.random.default_rng(seed)
     panel = fit.panel
@@ -231,7 +235,7 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
     Replicates keep the data's missing entries, so a statistic is computed over the same
     units in the data and in every replicate.
     """
-    _check_fit(fit, "ppc")
+    check_fit(fit, "ppc")
     draws = _check_draws(draws, "ppc")
     panel = fit.panel
     obs = panel_statistics(panel.y)
@@ -321,7 +325,7 @@ def trajectories(fit, units=None, *, kind: str = "outcome", draws: int = 200, se
     Joint normality of (eta, y) given w with Cov[eta, y] = Phi Lam'
     (:func:`bayeslong.moments.latent_moments`) and :func:`conditional_normal`.
     """
-    _check_fit(fit, "trajectories")
+    check_fit(fit, "trajectories")
     if kind not in ("outcome", "latent"):
         raise DataError(f"`kind` in trajectories must be 'outcome' or 'latent'; got {kind!r}.")
     draws = _check_draws(draws, "trajectories")

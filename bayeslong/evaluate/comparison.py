@@ -40,12 +40,13 @@ import numpy as np
 import pandas as pd
 from scipy.special import logsumexp
 
+from bayeslong.data.panel import check_panel
 from bayeslong.dims import UNIT
 from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.evaluate.checks import conditional_normal
 from bayeslong.infer.likelihood import mvn_logpdf
 from bayeslong.model.moments import moment_draws, unit_means
-from bayeslong.model.spec import Spec
+from bayeslong.model.spec import Spec, check_spec
 from bayeslong.model.structure import structure_for
 
 #: Pareto k above which a unit's PSIS-LOO term is unreliable (Vehtari et al. 2017; 2024).
@@ -620,6 +621,7 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
     from bayeslong.infer.sampling import fit as run_fit
     from bayeslong.model.start import start_values
 
+    spec, panel = check_spec(spec), check_panel(panel)
     if panel.n_waves < 4:
         raise DataError(
             f"leave-future-out needs at least 4 waves (refit on T-1 >= 3); the panel has {panel.n_waves}."

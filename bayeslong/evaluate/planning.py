@@ -11,11 +11,12 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from bayeslong.arguments import number_grid, seed_value, whole_number
 from bayeslong.errors import SpecError
 from bayeslong.evaluate.sensitivity import lag_parameter
 from bayeslong.infer.batch import Task, run_many
 from bayeslong.model.simulation import Simulation, default_outcomes
-from bayeslong.model.spec import Spec
+from bayeslong.model.spec import Spec, check_spec
 
 
 def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
@@ -72,14 +73,17 @@ def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
     >>> if __name__ == "__main__":                                          # doctest: +SKIP
     ...     print(bl.plan(bl.model("alt"), truth, n_units=[30, 60, 120], n_waves=[5]))
     """
+    spec = check_spec(spec)
+    n_units = number_grid(n_units, "n_units", least=2, where="plan")
+    n_waves = number_grid(n_waves, "n_waves", least=3, where="plan")
+    replications = whole_number(replications, "replications", least=2, where="plan")
+    seed = seed_value(seed, where="plan")
     par = lag_parameter(spec, default_outcomes(spec))
     if par is None:
         raise SpecError(f"model '{spec.name}' has no constant lag (lag={spec.options['lag']!r}); "
                         "plan() reports on the lag, give a model with lag='constant'")
     if kind not in ("fit", "fit_ml"):
         raise SpecError(f"`kind` must be 'fit' or 'fit_ml'; got {kind!r}")
-    if not isinstance(replications, (int, np.integer)) or replications < 2:
-        raise SpecError(f"`replications` must be an integer of at least 2; got {replications!r}")
     designs = [(int(n), int(t)) for n in n_units for t in n_waves]
     seeds = np.random.SeedSequence(seed).generate_state(len(designs) * replications * 2)
     tasks, k, truths = [], 0, {}

@@ -33,7 +33,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
+from bayeslong.evaluate.checks import check_fit
 from bayeslong.infer.batch import (
     BatchResult,
     SerialExecutor,
@@ -43,7 +45,7 @@ from bayeslong.infer.batch import (
     run_many,
     summarise_draws,
 )
-from bayeslong.model.spec import Spec, catalog, model
+from bayeslong.model.spec import Spec, catalog, check_spec, model
 from bayeslong.model.structure import structure_for
 
 #: Default grid of lag priors: tight at 0, the default width, off-centre, and flat-ish.
@@ -203,6 +205,7 @@ def power_scaling(fit, *, delta: float = 0.01) -> pd.DataFrame:
     import arviz as az
     import xarray as xr
 
+    check_fit(fit, "power_scaling", needs=("structure", "idata"))
     idata = fit.idata
     names = [n for n in fit.structure.names if n in idata.posterior]
     if "log_prior" in idata.groups():
@@ -394,7 +397,8 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     >>> result.plot().savefig("lag-sensitivity.png")                        # doctest: +SKIP
     """
     fit_kwargs = dict(fit_kwargs or {})
-    specs = [model(m) if isinstance(m, str) else m for m in (models or lag_models(panel))]
+    panel = check_panel(panel)
+    specs = [check_spec(model(m) if isinstance(m, str) else m) for m in (models or lag_models(panel))]
     if not specs:
         raise SpecError("`models` is empty; give at least one model with a lag, e.g. ['alt']")
     lag_of = {}

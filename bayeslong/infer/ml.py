@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize
 
+from bayeslong.arguments import seed_value, whole_number
 from bayeslong.errors import BoundaryWarning, IdentificationError
 from bayeslong.infer.likelihood import (
     loglik_function,
@@ -119,6 +120,9 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
     ------
     IdentificationError
         The model is not locally identified; the message names the parameters.
+    SpecError, DataError
+        ``spec`` or ``panel`` is not what :func:`bayeslong.model` or ``Panel.from_long``
+        makes, or ``starts`` / ``seed`` are not whole numbers (at least 1 / 0).
 
     Warns
     -----
@@ -126,6 +130,8 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
         A variance sits at zero (the optimum is on the boundary; standard errors and the
         usual likelihood-ratio reference distributions do not apply there).
     """
+    starts = whole_number(starts, "starts", where="fit_ml")
+    seed = seed_value(seed, where="fit_ml")
     with single_thread():
         return _fit_ml(spec, panel, starts=starts, seed=seed, check=check)
 

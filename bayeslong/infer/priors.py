@@ -25,6 +25,7 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
+from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import SpecError
 from bayeslong.model.structure import Structure, structure_for
@@ -542,8 +543,8 @@ def prior_predictive(spec, panel, *, draws: int = 500, seed: int = 0, priors: di
 
     from bayeslong.model.moments import moments_at
 
-    if int(draws) < 1:
-        raise SpecError(f"`draws` must be a positive integer; got {draws!r}")
+    draws = whole_number(draws, "draws", where="prior_predictive")
+    seed = seed_value(seed, where="prior_predictive")
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)
     theta = prior_draws(prior_set, draws=int(draws), seed=seed)

@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import ConvergenceWarning, SpecError
 from bayeslong.infer.priors import PriorSet, resolve_priors
@@ -537,8 +538,8 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     Monte Carlo. arXiv:1604.00695
     """
     for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1)):
-        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-            raise SpecError(f"`{label}` must be an integer >= {low}; got {value!r}")
+        whole_number(value, label, least=low, where="fit")
+    seed_value(seed, where="fit")
     which = _choose(sampler)
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from bayeslong.arguments import seed_value, whole_number
 from bayeslong.model.moments import moment_jacobian
 from bayeslong.model.spec import Spec
 from bayeslong.model.start import start_values
@@ -80,6 +81,8 @@ def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 
     -------
     Identification
     """
+    points = whole_number(points, "points", where="identify")
+    seed = seed_value(seed, where="identify")
     structure = structure_for(spec, panel)
     key = (structure, points, seed, tol)
     if key not in _RESULTS:  # the answer depends on the design only, so it is kept

@@ -28,8 +28,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from bayeslong.arguments import whole_number
 from bayeslong.errors import SpecError
-from bayeslong.model.spec import Spec
+from bayeslong.model.spec import Spec, check_spec
 from bayeslong.model.structure import Structure, build_structure
 
 #: Generators of covariate values: family -> number of arguments and their meaning.
@@ -282,13 +283,9 @@ class Simulation:
     missing: dict | None = None
 
     def __post_init__(self):
-        if not isinstance(self.spec, Spec):
-            raise SpecError(f"`spec` must be a Spec from bl.model(...); got {type(self.spec).__name__}")
-        for what in ("n_units", "n_waves"):
-            value = getattr(self, what)
-            if not isinstance(value, (int, np.integer)) or value < (3 if what == "n_waves" else 1):
-                raise SpecError(f"`{what}` must be an integer of at least "
-                                f"{3 if what == 'n_waves' else 1}; got {value!r}")
+        check_spec(self.spec)
+        whole_number(self.n_units, "n_units", least=1)
+        whole_number(self.n_waves, "n_waves", least=3)
         outcomes = tuple(self.outcomes) if self.outcomes is not None else default_outcomes(self.spec)
         object.__setattr__(self, "outcomes", outcomes)
         _missing_rates(self.missing)

@@ -281,3 +281,15 @@ def describe_catalog() -> list[dict]:
                      **{k: s.options[k] for k in OPTION_VALUES},
                      "allowed": {k: list(v) for k, v in s.allowed.items() if len(v) > 1}})
     return rows
+
+
+def check_spec(spec: Any) -> Spec:
+    """Return ``spec`` if it is a :class:`Spec`; otherwise raise saying what to pass."""
+    if isinstance(spec, Spec):
+        return spec
+    if isinstance(spec, str):
+        raise SpecError(f"`spec` must be a model from bl.model(...); got the text {spec!r}. "
+                        f"Pass bl.model({spec!r}) (bl.catalog() lists the names).")
+    raise SpecError(f"`spec` must be a model from bl.model(...), e.g. bl.model('alt'); got a "
+                    f"{type(spec).__name__}.")
+

@@ -21,8 +21,9 @@ from functools import cached_property
 
 import numpy as np
 
+from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
-from bayeslong.model.spec import Spec
+from bayeslong.model.spec import Spec, check_spec
 
 #: Parameter kinds, used by priors and start values.
 KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
@@ -411,6 +412,7 @@ def structure_for(spec: Spec, panel) -> Structure:
     Cached by content, so compiled functions keyed on the structure are reused by every
     panel of the same design (docs/engine.md: compile once per model structure).
     """
+    spec, panel = check_spec(spec), check_panel(panel)
     design = dict(outcomes=panel.outcomes, n_waves=panel.n_waves,
                   time_varying=panel.time_varying, time_invariant=panel.time_invariant)
     key = structure_key(spec, **design)

@@ -27,7 +27,8 @@ import sys
 import time
 from pathlib import Path
 
-from bayeslong.errors import BayeslongError
+from bayeslong.errors import BayeslongError, SpecError
+from bayeslong.workflow.study_file import check_folder
 
 __all__ = ["main"]
 
@@ -263,6 +264,10 @@ def cmd_simulate(args) -> int:
     df = simulate(spec, params, args.units, args.waves, seed=args.seed, covariates=covariates,
                   time_invariant=invariant, missing=missing)
     out = Path(args.output)
+    if out.is_dir():
+        raise SpecError(f"`--output` {str(out)!r} is a folder; give a file name, e.g. "
+                        f"{str(out / 'simulated.csv')!r}")
+    check_folder(out.parent, "--output")
     out.parent.mkdir(parents=True, exist_ok=True)
     df.to_csv(out, index=False)
     _say(f"[bayeslong] wrote {len(df)} rows ({args.units} units x {args.waves} waves) of model "
@@ -270,12 +275,21 @@ def cmd_simulate(args) -> int:
     return OK
 
 
+def _grid(text: str, option: str, example: str) -> list[int]:
+    """Whole numbers separated by commas, or a SpecError that shows the value and an example."""
+    parts = [p.strip() for p in str(text).split(",")]
+    if not all(p.lstrip("-").isdigit() for p in parts):
+        raise SpecError(f"`{option}` takes whole numbers separated by commas, e.g. {example}; "
+                        f"got {text!r}")
+    return [int(p) for p in parts]
+
+
 def cmd_plan(args) -> int:
     from bayeslong.evaluate.planning import plan
 
     spec = _model_from_args(args)
-    waves = [int(t) for t in args.waves_grid.split(",")]
-    units = [int(n) for n in args.units_grid.split(",")]
+    waves = _grid(args.waves_grid, "--waves-grid", "4,6")
+    units = _grid(args.units_grid, "--units-grid", "30,60,120")
     params = {**default_params(spec, n_waves=max(waves)), **_read_params(args.params)}
     table = plan(spec, params, n_units=units, n_waves=waves, replications=args.replications,
                  fit_kwargs={"draws": args.draws, "tune": args.draws, "chains": 2,
@@ -404,7 +418,7 @@ def main(argv=None) -> int:
     _quiet_libraries()
     try:
         return args.func(args)
-    except (BayeslongError, FileNotFoundError, PermissionError, IsADirectoryError) as err:
+    except (BayeslongError, OSError) as err:
         if args.debug:
             raise
         message = " ".join(str(err).split())

@@ -165,6 +165,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from bayeslong.data.validation import SOURCE
 from bayeslong.errors import DataError, SpecError
 
 __all__ = ["Study", "Candidate", "DataSource", "load_study"]
@@ -386,6 +387,11 @@ class Study:
         except (OSError, ValueError, ImportError) as err:
             raise DataError(f"could not read the data file {str(path)!r} "
                             f"(named in `data.path`): {err}") from err
+        # messages name the file and its lines (the header is line 1), and give advice for
+        # editing the file rather than pandas code (bayeslong.data.validation.SOURCE)
+        first = 2 if path.suffix.lower() == ".csv" else 1
+        df.index = pd.RangeIndex(first, first + len(df), name="line" if first == 2 else "row")
+        df.attrs[SOURCE] = path.name
         columns = [str(c) for c in df.columns]
         for name, key in self.data.columns():
             if name not in df.columns:
@@ -538,6 +544,10 @@ def load_study(path) -> Study:
 
     title = r.text(r.required(raw, "title", ""), "title")
     output = base / r.text(raw.get("output", DEFAULT_OUTPUT), "output")
+    try:
+        check_folder(output, "output")
+    except SpecError as err:
+        r.fail(str(err))
     data = _read_data(r, r.table(r.required(raw, "data", ""), "data"), base)
     models = _read_models(r, r.required(raw, "models", ""), base)
     priors = _read_priors(r, r.table(raw.get("priors", {}), "priors"))
@@ -692,3 +702,16 @@ def software_versions() -> dict[str, str]:
     for name in ("bayeslong", "pymc", "pytensor", "arviz", "numpy", "pandas", "scipy", "nutpie"):
         out[name] = package_version(name)
     return out
+
+
+def check_folder(folder: Path, key: str) -> None:
+    """Refuse a folder path that is, or lies inside, an existing file (it could not be made)."""
+    for place in (folder, *folder.parents):
+        if place.exists():
+            if not place.is_dir():
+                inside = "" if place == folder else f" (inside {str(place)!r})"
+                raise SpecError(f"`{key}` names {str(folder)!r}{inside}, but {str(place)!r} is "
+                                "an existing file, not a folder; give a folder path (it is "
+                                "created when missing)")
+            return
+

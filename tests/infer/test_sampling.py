@@ -139,7 +139,7 @@ def test_priors_table_and_override(sleep_panel, sleep_fit):
         fit(bl.model("linear-growth"), sleep_panel, priors={"lag": ("normal", 0, 1)})
     with pytest.raises(SpecError, match="`sampler` must be one of auto, nutpie, pymc"):
         fit(bl.model("linear-growth"), sleep_panel, sampler="hmc")
-    with pytest.raises(SpecError, match="`draws` must be an integer >= 1"):
+    with pytest.raises(SpecError, match="`draws` of fit must be at least 1; got 0"):
         fit(bl.model("linear-growth"), sleep_panel, draws=0)
 
 
