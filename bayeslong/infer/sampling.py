@@ -391,16 +391,16 @@ def _choose(sampler: str) -> str:
 _COMPILED: dict = {}
 
 
-def _start_point(model, structure, panel, prior_set) -> dict:
-    """Start values on the model's variables from the data-based ML start values.
+def _start_point(model, structure, panel, prior_set, seed: int = 0) -> dict:
+    """Start values on the model's variables from :func:`bayeslong.model.start.sampler_start`.
 
     Variances start at the start values, correlations at 0 (the packed Cholesky factor of
     a block is then diagonal with the SDs).
     """
     from bayeslong.infer.pymc_model import lkj_name
-    from bayeslong.model.start import start_values
+    from bayeslong.model.start import sampler_start
 
-    theta = start_values(structure, panel)
+    theta = sampler_start(structure, panel, seed)
     sd = np.sqrt(np.maximum(theta, 1e-6))
     in_lkj = set()
     point = {}
@@ -549,7 +549,7 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     entry, built = _entry(spec, panel, structure, prior_set)
     build_s = time.perf_counter() - t0
     inputs = model_inputs(panel, prior_set)
-    start = _start_point(entry["model"], structure, panel, prior_set)
+    start = _start_point(entry["model"], structure, panel, prior_set, seed=int(seed))
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
     run = _sample_nutpie if which == "nutpie" else _sample_pymc
     settings = dict(draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,

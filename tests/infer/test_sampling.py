@@ -213,3 +213,65 @@ def test_nutpie_fit_agrees_with_mixedlm(sleep_panel, sleepstudy):
     # same criterion as the PyMC test: within 0.1 posterior SD of the ML estimate
     assert abs(draws.mean() - ref.fe_params["Days"]) < 0.1 * draws.std()
     assert result.idata.log_likelihood["y"].shape == (2, 500, sleep_panel.n_units)
+
+
+# --- the sampler's start point ---------------------------------------------------------------
+def _small_alt_panel(seed: int = 3, n_units: int = 50):
+    """An invented ALT panel, T = 5, drawn with NumPy at fixed values (bench/_panels.py's)."""
+    spec = bl.model("alt")
+    s = build_structure(spec, outcomes=["y"], n_waves=5)
+    truth = {"level_mean": 10.0, "slope_mean": 1.0, "lag": 0.4, "initial_mean": 10.0,
+             "level_var": 4.0, "level_slope_cov": 0.3, "slope_var": 0.5,
+             "initial_level_cov": 2.0, "initial_slope_cov": 0.2, "initial_var": 5.0}
+    c, _, sigma = moments_at(s, np.array([truth.get(n, 1.5) for n in s.names]))
+    y = np.random.default_rng(seed).multivariate_normal(c, sigma, size=n_units)
+    return spec, bl.Panel(units=tuple(range(n_units)), waves=tuple(range(1, 6)), outcomes=("y",),
+                          y=y[:, :, None])
+
+
+def _gradient_at(spec, panel, theta_of):
+    """The PyMC model's log-density gradient at the sampler's start built from ``theta_of``."""
+    from pymc.initial_point import make_initial_point_fn
+
+    from bayeslong.infer import sampling
+    from bayeslong.infer.priors import resolve_priors
+    from bayeslong.infer.pymc_model import build_model
+    from bayeslong.model import start
+    from bayeslong.model.structure import structure_for
+
+    s = structure_for(spec, panel)
+    ps = resolve_priors(s, panel, None)
+    model = build_model(spec, panel, ps)
+    real = start.sampler_start
+    start.sampler_start = lambda *a, **k: theta_of(s, panel)
+    try:
+        point = sampling._start_point(model, s, panel, ps, seed=1)
+    finally:
+        start.sampler_start = real
+    ip = make_initial_point_fn(model=model, overrides=point, jitter_rvs=set(),
+                               return_transformed=True)(0)
+    return model.compile_dlogp()(ip)
+
+
+def test_sampler_start_has_no_zero_gradient_entry():
+    # At the data-based start the first-wave mean is the sample mean of wave 1 and the
+    # centre of its default prior, so that gradient entry is 0.0 exactly on this panel
+    # (found by scanning seeds). A sampler that sets its first mass matrix from the
+    # gradient's magnitudes should not start on such a point.
+    from bayeslong.model.start import sampler_start, start_values
+
+    spec, panel = _small_alt_panel()
+    before = _gradient_at(spec, panel, start_values)
+    assert (before == 0).any()
+    now = _gradient_at(spec, panel, lambda s, p: sampler_start(s, p, seed=1))
+    assert np.all(np.isfinite(now)) and np.all(np.abs(now) > 1e-6)
+
+
+def test_nutpie_starts_on_a_small_panel_under_the_tight_lag_prior():
+    pytest.importorskip("nutpie")
+    spec, panel = _small_alt_panel()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        result = fit(spec, panel, draws=100, tune=100, chains=2, seed=3, sampler="nutpie",
+                     priors={"lag": ("normal", 0.0, 0.1)})
+    assert result.sampler == "nutpie"

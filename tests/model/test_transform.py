@@ -25,3 +25,31 @@ def test_round_trip_and_chain_rule(name):
     fd = np.array([(a @ tr.to_natural(u + h * e) - a @ tr.to_natural(u - h * e)) / (2 * h)
                    for e in np.eye(s.n_params)])
     np.testing.assert_allclose(tr.grad_to_u(u, a), fd, rtol=1e-6, atol=1e-8)
+
+
+def test_sampler_start_moves_each_value_by_the_documented_amount():
+    # bayeslong.model.start.NUDGE: means by 0.05-0.1 outcome SDs, variances by a factor
+    # exp(+-0.1 .. +-0.2), lags and effects by 0.025-0.05; never by zero
+    import numpy as np
+    import pandas as pd
+
+    import bayeslong as bl
+    from bayeslong.model.start import sampler_start, start_values
+    from bayeslong.model.structure import structure_for
+
+    rng = np.random.default_rng(0)
+    df = pd.DataFrame({"id": np.repeat(np.arange(40), 5), "t": np.tile(np.arange(5), 40),
+                       "y": rng.normal(size=200) * 2.0})
+    panel = bl.Panel.from_long(df, unit="id", wave="t", outcomes=["y"])
+    s = structure_for(bl.model("alt"), panel)
+    base, moved = start_values(s, panel), sampler_start(s, panel, seed=4)
+    sd = float(np.nanstd(panel.y))
+    for name, kind, b, m in zip(s.names, s.kinds, base, moved, strict=True):
+        if kind in ("mean", "intercept"):
+            assert 0.05 * sd - 1e-12 <= abs(m - b) <= 0.1 * sd + 1e-12, name
+        elif kind == "var":
+            assert 0.1 - 1e-12 <= abs(np.log(m / b)) <= 0.2 + 1e-12, name
+        elif kind in ("lag", "effect", "loading"):
+            assert 0.025 - 1e-12 <= abs(m - b) <= 0.05 + 1e-12, name
+        else:
+            assert m == b, name
