@@ -1,24 +1,23 @@
 """Does the fast sampler start on small samples? Count fallbacks to PyMC's NUTS.
 
-Measures: on 50 invented ALT panels (T = 5, N = 20-60, values of ``_panels.ALT_TRUE``,
-seeds 0-49), each fitted under the default priors and under the prior grid's tight lag
+Measures: on invented ALT panels (T = 5, N = 20-60, seeds 0..panels-1) of two kinds --
+"moderate" (``_panels.ALT_TRUE``) and "test scale" (mean 100, SD 15, slope variance 0.01,
+near zero) -- each fitted under the default priors and under the prior grid's tight lag
 prior Normal(0, 0.1), how many fits nutpie could not start (``Fit.sampler == "pymc"``
 after nutpie's "All initialization points failed"), with the start point of
 :func:`bayeslong.model.start.sampler_start` (now) and, in the same run, with the plain
-data-based :func:`bayeslong.model.start.start_values` (before), where the first-wave mean
-sits on a zero gradient entry. Also counts start points with a zero gradient entry.
+data-based :func:`bayeslong.model.start.start_values` (before). Each setting runs in a
+fresh process, so the compiled model starts from that setting's own first start.
 
 Command (2 chains x 200 draws per fit keep it short; the start is what is measured):
 
     PYTHONPATH=. .venv/bin/python bench/small_start.py [--panels 50]
-
-Measured (load average 2.9-4.2, numba cache warm): 100 fits each, 0 fallbacks with the
-data-based start and 0 with the nudged one (116 s and 101 s, the first including the
-compile). The start failure seen on other panels is not reproduced by these values.
 """
 
 import argparse
+import json
 import os
+import subprocess
 import sys
 import time
 import warnings
@@ -32,8 +31,27 @@ from bayeslong.model import start as start_module  # noqa: E402
 
 TIGHT = {"lag": ("normal", 0.0, 0.1)}
 
+#: Test-score scale with a slope variance near zero (the kind of panel where nutpie failed).
+TEST_SCALE = {"level_mean": 100.0, "slope_mean": 2.0, "lag": 0.3, "initial_mean": 100.0,
+              "level_var": 150.0, "level_slope_cov": 0.0, "slope_var": 0.01,
+              "initial_level_cov": 100.0, "initial_slope_cov": 0.0, "initial_var": 225.0}
 
-def run(panels: int, old: bool) -> dict:
+
+def _panel(kind: str, n: int, seed: int):
+    if kind == "moderate":
+        return simulate_alt(n, n_waves=5, seed=seed)
+    from bayeslong.model.moments import moments_at
+    from bayeslong.model.structure import build_structure
+
+    spec = bl.model("alt")
+    s = build_structure(spec, outcomes=["y"], n_waves=5)
+    c, _, sigma = moments_at(s, np.array([TEST_SCALE.get(k, 60.0) for k in s.names]))
+    y = np.random.default_rng(seed).multivariate_normal(c, sigma, size=n)
+    return spec, bl.Panel(units=tuple(range(n)), waves=tuple(range(1, 6)), outcomes=("y",),
+                          y=y[:, :, None])
+
+
+def run(panels: int, old: bool, kind: str) -> dict:
     real = start_module.sampler_start
     if old:  # the start point before the nudge: the data-based values themselves
         start_module.sampler_start = lambda s, p, seed=0: start_module.start_values(s, p)
@@ -41,7 +59,7 @@ def run(panels: int, old: bool) -> dict:
     try:
         for seed in range(panels):
             n = 20 + 10 * (seed % 5)
-            spec, panel = simulate_alt(n, n_waves=5, seed=seed)
+            spec, panel = _panel(kind, n, seed)
             for label, priors in (("default", None), ("tight lag", TIGHT)):
                 with warnings.catch_warnings(record=True) as caught:
                     warnings.simplefilter("always")
@@ -61,17 +79,27 @@ def run(panels: int, old: bool) -> dict:
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--panels", type=int, default=50)
+    ap.add_argument("--one", nargs=2, metavar=("KIND", "START"), help=argparse.SUPPRESS)
     args = ap.parse_args()
+    if args.one:  # a child process: one setting
+        print("RESULT " + json.dumps(run(args.panels, args.one[1] == "before", args.one[0])))
+        return
     print(f"load average: {os.getloadavg()}")
     rows = {}
-    for name, old in (("data-based start (before)", True), ("nudged start (now)", False)):
-        print(name, flush=True)
-        rows[name] = run(args.panels, old)
-    for name, r in rows.items():
-        print(f"{name:28s} fits {r['fits']:4d}  fallbacks to PyMC {r['fallbacks']:3d}  "
+    for kind in ("moderate", "test scale"):
+        for start in ("before", "now"):
+            out = subprocess.run([sys.executable, __file__, "--panels", str(args.panels),
+                                  "--one", kind, start], capture_output=True, text=True)
+            lines = out.stdout.splitlines()
+            print("\n".join(x for x in lines if x.startswith("  fallback")), flush=True)
+            rows[(kind, start)] = json.loads(next(x for x in lines if x.startswith("RESULT"))[7:])
+    for (kind, start), r in rows.items():
+        label = f"{kind}, {'data-based start' if start == 'before' else 'nudged start'}"
+        print(f"{label:36s} fits {r['fits']:4d}  fallbacks to PyMC {r['fallbacks']:3d}  "
               f"wall {r['seconds']:7.1f} s")
-    a, b = rows["data-based start (before)"], rows["nudged start (now)"]
-    print(f"wall ratio before/now: {a['seconds'] / max(b['seconds'], 1e-9):.2f}")
+    for kind in ("moderate", "test scale"):
+        a, b = rows[(kind, "before")], rows[(kind, "now")]
+        print(f"{kind}: wall ratio data-based/nudged {a['seconds'] / max(b['seconds'], 1e-9):.2f}")
 
 
 if __name__ == "__main__":
