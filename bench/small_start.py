@@ -24,6 +24,7 @@ import warnings
 
 sys.path.insert(0, os.path.dirname(__file__))
 
+import numpy as np  # noqa: E402
 from _panels import simulate_alt  # noqa: E402
 
 import bayeslong as bl  # noqa: E402
