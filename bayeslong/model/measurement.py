@@ -15,7 +15,9 @@ those means a structure (growth means, wave intercepts) is not identified there,
 :func:`bayeslong.identify` names the parameters. That is the sense in which latent means
 are comparable over waves only under scalar invariance (Meredith 1993). A release frees
 named indicators from the level's equalities (partial invariance; Byrne, Shavelson &
-Muthén 1989); as long as the marker keeps equal intercepts the growth means stay identified.
+Muthén 1989); as long as one indicator keeps its intercept equal over waves the growth means
+stay identified (the marker's origin at the first wave, that indicator's intercept for how
+the latent's mean moves).
 
 Unique factors of the same indicator may covary over waves (``unique_covariance =
 "same-indicator"``, the default): the specific part of an item recurs at every wave, and

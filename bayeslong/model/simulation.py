@@ -43,6 +43,10 @@ GENERATORS = {
 #: Kinds of missingness :func:`simulate` can impose.
 MISSING_KINDS = ("dropout", "intermittent")
 
+#: Measurement parts a bare name (or one naming only the indicator) sets for every
+#: indicator and wave in :func:`parameter_vector`.
+_EVERY_INDICATOR = ("loading", "unique_var", "unique_cov")
+
 _WAVE_SUFFIX = re.compile(r"^(?P<base>[^\[]+)\[(?:(?P<keys>.*),)?(?P<wave>\d+)\]$")
 
 
@@ -55,8 +59,15 @@ def _covered_by(name: str, given: str) -> bool:
     """True when the wave-indexed parameter ``name`` is covered by the wave-free ``given``.
 
     ``resid_var`` covers ``resid_var[3]``; ``resid_var[y1]`` covers ``resid_var[y1,3]``;
-    ``lag`` covers ``lag[4]`` (a time-varying lag) but not ``lag[y1<-y2]``.
+    ``lag`` covers ``lag[4]`` (a time-varying lag) but not ``lag[y1<-y2]``. For the
+    indicators' parts, ``unique_var`` covers every indicator's and ``unique_cov[b]``
+    every ``unique_cov[b,s,t]`` (likewise ``loading``).
     """
+    base = name.split("[")[0]
+    if base in _EVERY_INDICATOR and "[" in name:
+        indicator = name[len(base) + 1:-1].split(",")[0]
+        if given in (base, f"{base}[{indicator}]"):
+            return True
     m = _WAVE_SUFFIX.match(name)
     if m is None:
         return False
