@@ -6,7 +6,11 @@ For indicator j of process k at wave t (docs/model-family.md, "Several indicator
 
 Scale setting (marker indicator): the marker's loading is 1 at every wave, which gives each
 wave's latent the marker's unit, and its intercept is 0 at the first wave, which sets the
-latent's origin. Invariance over waves (Meredith 1993; Widaman & Reise 1997) makes parts
+latent's origin. Effects coding (``scale="effects"``; Little, Slegers & Card 2006) instead
+makes the loadings average 1 at every wave and the intercepts sum to 0 where the marker's
+would be 0, by writing the reference indicator's (the ``marker``, by default the first) as
+J minus the other loadings and minus the other intercepts: the latent then has the
+indicators' average unit and origin rather than one indicator's. Invariance over waves (Meredith 1993; Widaman & Reise 1997) makes parts
 equal over waves: ``metric`` the loadings, ``scalar`` also the intercepts (the marker's then
 0 at every wave), ``strict`` also the unique variances; ``configural`` none. Below scalar
 invariance every indicator's intercept is free from the second wave on, the marker's too, so
@@ -30,6 +34,9 @@ Byrne, B. M., Shavelson, R. J. & Muthén, B. (1989). Testing for the equivalence
 covariance and mean structures: the issue of partial measurement invariance. Psychological
 Bulletin 105(3), 456-466. doi:10.1037/0033-2909.105.3.456
 Little, T. D. (2013). Longitudinal Structural Equation Modeling. Guilford Press.
+Little, T. D., Slegers, D. W. & Card, N. A. (2006). A non-arbitrary method of identifying and
+scaling latent variables in SEM and MACS models. Structural Equation Modeling 13(1), 59-72.
+doi:10.1207/s15328007sem1301_3
 Meredith, W. (1993). Measurement invariance, factor analysis and factorial invariance.
 Psychometrika 58(4), 525-543. doi:10.1007/BF02294825
 Widaman, K. F. & Reise, S. P. (1997). Exploring the measurement invariance of psychological
@@ -104,6 +111,7 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
     """
     m = spec.measurement
     marker = marker_of(spec, names)
+    effects = m["scale"] == "effects"
     equal = set(EQUAL_PARTS[m["invariance"]])
     released = m["release"]
     for part in ("loading",):
@@ -115,23 +123,36 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
     def equal_over_waves(part: str, name: str) -> bool:
         return part in equal and name not in released[part]
 
+    def loading(name: str, t: int) -> str:
+        return _label("loading", name, None if equal_over_waves("loading", name) else t)
+
+    def intercept(name: str, t: int) -> str:
+        return _label("intercept", name, None if equal_over_waves("intercept", name) else t)
+
+    others = [n for n in names if n != marker]
     free_origin: set[int] = set()
     for j, name in enumerate(names):
         for t in range(1, T + 1):
             row = obs_row(j, t)
-            if name == marker:
+            if name == marker and effects:
+                # effects coding: the loadings average 1 at every wave, so this one is
+                # J - (sum of the others) (Little, Slegers & Card 2006)
+                tab.combine("Lam", (row, eta_row(t)), float(len(names)),
+                            [(loading(n, t), "loading", -1.0) for n in others])
+            elif name == marker:
                 tab.fix("Lam", (row, eta_row(t)), 1.0)
             else:
-                tab.put("Lam", (row, eta_row(t)),
-                        _label("loading", name, None if equal_over_waves("loading", name) else t),
-                        "loading")
+                tab.put("Lam", (row, eta_row(t)), loading(name, t), "loading")
             same = equal_over_waves("intercept", name)
             if name == marker and (same or t == 1):
-                tab.fix("nu", row, 0.0)
+                if effects:  # the intercepts sum to 0: this one is minus the others
+                    tab.combine("nu", row, 0.0, [(intercept(n, t), "intercept", -1.0) for n in others])
+                else:
+                    tab.fix("nu", row, 0.0)
                 continue
             if name == marker:
                 free_origin.add(t)
-            tab.put("nu", row, _label("intercept", name, None if same else t), "intercept")
+            tab.put("nu", row, intercept(name, t), "intercept")
         # unique variances and, if asked, their covariances over waves
         same = equal_over_waves("unique_var", name)
         var = [_label("unique_var", name, None if same else t) for t in range(1, T + 1)]

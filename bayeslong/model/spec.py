@@ -266,12 +266,6 @@ def _resolve_measurement(given, where: str = "") -> dict:
                             "or release={'intercept': ['fell_asleep']}; got " + repr(release))
         resolved[part] = tuple(dict.fromkeys(names))
     out["release"] = resolved
-    if out["scale"] == "effects":
-        # effects coding (Little, Slegers & Card 2006) needs a loading written as a linear
-        # combination of parameters, which the matrix form (fixed + theta[index]) cannot hold yet
-        raise SpecError(f"`scale = 'effects'`{where} (effects coding) is not available yet; use "
-                        "scale='marker' (the default), with marker='<indicator>' to choose the "
-                        "indicator that sets the latent's unit and origin")
     return out
 
 

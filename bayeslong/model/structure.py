@@ -16,7 +16,7 @@ No code here branches on a model's name: everything follows from the spec's fiel
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
@@ -32,10 +32,16 @@ KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
 
 @dataclass(frozen=True, eq=False)
 class Matrix:
-    """One model matrix: ``fixed + theta[index]`` where ``index >= 0``."""
+    """One model matrix: ``fixed + theta[index]`` where ``index >= 0``, plus ``terms``.
+
+    ``terms`` holds entries that are linear combinations of parameters, as triples
+    (flat position, parameter, coefficient) added to the fixed part: effects coding writes
+    one loading as J minus the others (model/measurement.py). Most matrices have none.
+    """
 
     fixed: np.ndarray
     index: np.ndarray
+    terms: list = field(default_factory=list)
 
     @classmethod
     def zeros(cls, *shape) -> "Matrix":
@@ -106,7 +112,10 @@ class Structure:
         """Numeric matrix ``which`` at parameter vector ``theta`` (NumPy; for checks and starts)."""
         m = self.matrices[which]
         ext = np.append(np.asarray(theta, dtype=float), 0.0)
-        return m.fixed + np.where(m.index >= 0, ext[m.index], 0.0)
+        out = m.fixed + np.where(m.index >= 0, ext[m.index], 0.0)
+        for pos, k, coef in m.terms:
+            out.flat[pos] += coef * ext[k]
+        return out
 
 
 class _Table:
@@ -137,6 +146,14 @@ class _Table:
     def fix(self, which: str, pos, value: float) -> None:
         self.m[which].index[pos] = -1
         self.m[which].fixed[pos] = value
+
+    def combine(self, which: str, pos, value: float, parts: list[tuple[str, str, float]]) -> None:
+        """Entry ``value + sum coef * theta[name]`` over ``parts`` = [(name, kind, coef)]."""
+        self.fix(which, pos, value)
+        flat = int(np.ravel_multi_index(pos, self.m[which].fixed.shape)) \
+            if isinstance(pos, tuple) else int(pos)
+        for name, kind, coef in parts:
+            self.m[which].terms.append((flat, self.param(name, kind), float(coef)))
 
     def block(self, which: str, rows: list[int], names: list[list[str | None]]) -> None:
         """Place a free covariance block on ``rows`` of Psi or Theta."""

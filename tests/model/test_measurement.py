@@ -166,9 +166,10 @@ def test_configural_growth_means_are_not_identified():
                                        r"same-indicator, none; got 'all'"),
         ({"release": {"loadings": ["b"]}}, r"`release` in model 'alt' must be one of loading, "
                                           r"intercept, unique_var; got 'loadings'"),
-        ({"scale": "effects"}, r"effects coding\) is not available yet"),
+        ({"scale": "reference"}, r"`scale` in model 'alt' must be one of marker, effects; got "
+                                 r"'reference'"),
     ],
-    ids=["invariance", "unique-covariance", "release-part", "effects"],
+    ids=["invariance", "unique-covariance", "release-part", "scale"],
 )
 def test_measurement_option_errors(options, message):
     with pytest.raises(SpecError, match=message):
@@ -197,3 +198,41 @@ def test_measurement_options_round_trip():
     assert spec.measurement["release"]["intercept"] == ("c",)
     assert bl.Spec.from_dict(spec.to_dict()) == spec
     assert spec.replace(invariance="strict").measurement["marker"] == ("b",)
+
+
+def test_effects_coding_is_the_marker_model_rescaled():
+    # Closed form: with marker coding y_j = nu_j + lambda_j eta_m + eps_j (lambda_a = 1,
+    # nu_a = 0). Effects coding (Little, Slegers & Card 2006) asks mean(lambda*) = 1 and
+    # sum(nu*) = 0, which holds for eta_e = c eta_m + d with c = mean(lambda_j),
+    # d = mean(nu_j), lambda*_j = lambda_j / c, nu*_j = nu_j - lambda*_j d. The two are one
+    # model (same maximum); the lag is unchanged, a growth mean is multiplied by c.
+    df = bl.simulate(bl.model("alt"), TRUTH, 300, T, seed=8, indicators={"y": ITEMS})
+    panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes={"y": ITEMS})
+    marker = bl.fit_ml(bl.model("alt"), panel)
+    effects = bl.fit_ml(bl.model("alt", scale="effects"), panel)
+    assert effects.loglik == pytest.approx(marker.loglik, abs=1e-6)
+    lam = np.array([1.0, marker.params["loading[b]"], marker.params["loading[c]"]])
+    nu = np.array([0.0, marker.params["intercept[b]"], marker.params["intercept[c]"]])
+    c, d = lam.mean(), nu.mean()
+    assert effects.params["lag"] == pytest.approx(marker.params["lag"], abs=1e-6)
+    assert effects.params["slope_mean"] == pytest.approx(c * marker.params["slope_mean"], abs=1e-6)
+    assert effects.params["loading[b]"] == pytest.approx(lam[1] / c, abs=1e-6)
+    assert effects.params["intercept[c]"] == pytest.approx(nu[2] - lam[2] / c * d, abs=1e-6)
+    assert "loading[a]" not in effects.params.index  # 'a' is J minus the others
+
+
+def test_effects_coding_numpy_and_pytensor_engines_agree():
+    # the entries that are linear combinations (effects coding) in both array backends: the
+    # NumPy moments against the compiled PyTensor graph the sampler uses
+    from bayeslong.infer.loglik_op import compiled_loglik_function
+
+    df = bl.simulate(bl.model("alt"), TRUTH, 80, 4, seed=9, indicators={"y": ITEMS})
+    df.loc[df.index % 7 == 3, "b"] = np.nan
+    panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes={"y": ITEMS})
+    s = structure_for(bl.model("alt", scale="effects", invariance="strict"), panel)
+    theta = parameter_vector(s, TRUTH)
+    data = pattern_arrays(panel.patterns())
+    ll_np, g_np = loglik_and_grad(s, theta, *data)
+    ll_pt, g_pt = compiled_loglik_function(s)(theta, *data)
+    assert ll_np == pytest.approx(float(ll_pt), rel=1e-12)
+    np.testing.assert_allclose(g_np, g_pt, rtol=1e-8, atol=1e-8 * np.abs(g_pt).max())
