@@ -314,6 +314,13 @@ def _block_membership(structure: Structure) -> dict[int, int]:
             raise SpecError(
                 f"model '{structure.spec.name}': a covariance block with fixed zero covariances "
                 "is not supported by the Bayesian fit; free those covariances in the model file")
+        if len(set(np.diag(idx).tolist())) < len(idx):
+            raise SpecError(
+                f"model '{structure.spec.name}': the variances "
+                f"{structure.names[int(idx[0, 0])]!r}... are held equal within one covariance "
+                "block (strict invariance with unique covariances over waves), which the "
+                "Bayesian fit's SD and LKJ priors cannot express yet; fit it by maximum "
+                "likelihood, or choose unique_covariance='none'")
         for k in np.unique(idx):
             if int(k) in member and member[int(k)] != b:
                 raise SpecError(

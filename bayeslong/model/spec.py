@@ -116,7 +116,7 @@ class Spec:
     measurement : dict
         Resolved options of the measurement part, used where a process has several
         indicators: ``invariance`` (configural | metric | scalar | strict, default scalar),
-        ``scale`` (marker), ``marker`` (None: each process's first listed indicator),
+        ``scale`` (marker | effects), ``marker`` (None: each process's first listed indicator),
         ``release`` (part -> indicator names freed from the level's equalities) and
         ``unique_covariance`` (same-indicator | none). See docs/model-family.md.
     """
@@ -314,7 +314,7 @@ def model(name: str, **options) -> Spec:
         time-varying), ``intercepts`` (equal | free); the model file narrows them.
         Measurement options (processes with several indicators): ``invariance``
         (configural | metric | scalar | strict), ``marker``, ``release``,
-        ``unique_covariance`` (same-indicator | none), ``scale`` (marker).
+        ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects).
 
     Raises
     ------
