@@ -26,6 +26,9 @@ from bayeslong.errors import SpecError
 from bayeslong.model.measurement import add_indicators, settle_design
 from bayeslong.model.spec import Spec, check_spec
 
+#: Names of the measurement part's parameters (model/measurement.py).
+_MEASUREMENT_BASES = ("loading", "intercept", "unique_var", "unique_cov")
+
 #: Parameter kinds, used by priors and start values.
 KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
 
@@ -154,6 +157,20 @@ class _Table:
             if isinstance(pos, tuple) else int(pos)
         for name, kind, coef in parts:
             self.m[which].terms.append((flat, self.param(name, kind), float(coef)))
+
+    def reorder(self, order: list[int]) -> None:
+        """Renumber the parameters so that old parameter ``order[n]`` becomes number n."""
+        if order == sorted(order):
+            return
+        new = np.empty(len(order) + 1, dtype=np.int64)
+        new[np.array(order)] = np.arange(len(order))
+        new[-1] = -1  # index -1 stays -1
+        self.names = [self.names[i] for i in order]
+        self.kinds = [self.kinds[i] for i in order]
+        for m in self.m.values():
+            m.index[...] = new[m.index]
+            m.terms[:] = [(pos, int(new[k]), coef) for pos, k, coef in m.terms]
+        self.blocks = {key: Block(new[b.index]) for key, b in self.blocks.items()}
 
     def block(self, which: str, rows: list[int], names: list[list[str | None]]) -> None:
         """Place a free covariance block on ``rows`` of Psi or Theta."""
@@ -429,6 +446,10 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         else:
             tab.block("Psi", [eta(k, t) for k in range(K)], names)
 
+    # the structural parameters first, the indicators' measurement parameters after them
+    tab.reorder(sorted(range(len(tab.names)), key=lambda i: tab.names[i].split("[")[0] in
+                       _MEASUREMENT_BASES and tab.names[i][tab.names[i].find("[") + 1:]
+                       .split(",")[0].rstrip("]") in obs_names and any(several)))
     structure = Structure(
         spec=spec, names=tuple(tab.names), kinds=tuple(tab.kinds), latents=tuple(latents),
         observed=tuple(observed), covariates=tuple(covariates), matrices=tab.m,
