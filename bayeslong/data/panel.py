@@ -191,7 +191,7 @@ class Panel:
                         "from the intercept (its effect is not identified): remove it from "
                         f"`{'time_varying' if name == 'x' else 'time_invariant'}`."
                     )
-        check_magnitudes(y, x, z, observed_names, time_varying, time_invariant)
+        check_magnitudes(y, x, z, observed_names, time_varying, time_invariant, labels=described)
         for name, value in (
             ("units", units),
             ("waves", waves),
@@ -258,6 +258,9 @@ class Panel:
             covariate value; two rows for one unit and wave; fewer than 3 waves; unorderable
             wave labels; a time-invariant covariate that varies within a unit; a missing
             covariate (unless dropping); a unit with no observed outcome; a constant outcome.
+            With indicators, every value check runs per indicator and names it; an indicator
+            listed for two processes (or twice), a process without indicators, and an
+            indicator that is also a covariate are refused.
 
         Warns
         -----

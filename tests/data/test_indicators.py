@@ -112,3 +112,10 @@ def test_value_checks_name_the_indicator(long_frame):
                                         r"in time_varying"):
         bl.Panel.from_long(long_frame, unit="id", wave="t", outcomes={"sleep": ITEMS},
                            time_varying=["rested"])
+
+
+def test_magnitude_check_names_the_indicator(long_frame):
+    huge = long_frame.assign(woke_rarely=long_frame["woke_rarely"] * 1e170)
+    with pytest.raises(DataError, match=r"indicator 'woke_rarely' of outcome 'sleep' has values as "
+                                        r"large as [0-9.]+e\+1[67][0-9]; .* Rescale it"):
+        bl.Panel.from_long(huge, unit="id", wave="t", outcomes={"sleep": ITEMS})
