@@ -236,3 +236,24 @@ def test_effects_coding_numpy_and_pytensor_engines_agree():
     ll_pt, g_pt = compiled_loglik_function(s)(theta, *data)
     assert ll_np == pytest.approx(float(ll_pt), rel=1e-12)
     np.testing.assert_allclose(g_np, g_pt, rtol=1e-8, atol=1e-8 * np.abs(g_pt).max())
+
+
+def test_simulated_indicators_have_the_implied_moments():
+    # Simulation solves the structural equations and draws the indicators from
+    # y = nu + Lam eta + eps; the moment code writes the reduced form. Over N = 100,000 units
+    # the sample mean and covariance must match the implied ones to sampling error: the
+    # largest implied variance is about 9, so a sample mean's SD is at most sqrt(9/N) = 0.01
+    # and a sample covariance's about sqrt(2/N) 9 = 0.04; tolerances 5 and 3 of them.
+    from bayeslong.model.moments import moments_at
+
+    # partial scalar invariance: the intercepts of 'c' are free over waves
+    spec = bl.model("alt", release={"intercept": ["c"]})
+    params = {k: v for k, v in TRUTH.items() if k != "intercept[c]"}
+    params.update({f"intercept[c,{t}]": -0.5 + 0.2 * t for t in range(1, 5)})
+    df = bl.simulate(spec, params, 100_000, 4, seed=12, indicators={"y": ITEMS})
+    panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes={"y": ITEMS})
+    structure = structure_for(spec, panel)
+    c, _, sigma = moments_at(structure, parameter_vector(structure, params))
+    y = panel.outcome_matrix()
+    np.testing.assert_allclose(y.mean(axis=0), c, atol=0.05)
+    np.testing.assert_allclose(np.cov(y, rowvar=False), sigma, atol=0.12)
