@@ -183,13 +183,19 @@ def test_measurement_option_errors(options, message):
                            r"by several indicators; did you mean 'b'\?"),
         ({"release": ("d",)}, r"`release` names 'd'"),
         ({"release": {"loading": ["a"]}}, r"frees the loading of 'a', the marker indicator"),
+        ({"name": "ri-clpm"}, r"model 'ri-clpm' has the within-person form, which is not "
+                              r"available with several indicators per wave yet"),
     ],
-    ids=["marker", "release", "release-marker-loading"],
+    ids=["marker", "release", "release-marker-loading", "within-form"],
 )
 def test_measurement_names_are_checked_against_the_panel(options, message):
+    name = options.pop("name", "alt")
+    spec = bl.model(name, **options)
+    outcomes = ("y",) if spec.processes == 1 else ("y", "v")
+    indicators = {"y": tuple(ITEMS), "v": ("d", "e", "f")}
     with pytest.raises(SpecError, match=message):
-        build_structure(bl.model("alt", **options), outcomes=("y",), n_waves=3,
-                        indicators={"y": tuple(ITEMS)})
+        build_structure(spec, outcomes=outcomes, n_waves=3,
+                        indicators={k: indicators[k] for k in outcomes})
 
 
 def test_measurement_options_round_trip():
