@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from bayeslong.data.indicators import read_outcomes, read_wide_outcomes, settle_indicators
 from bayeslong.data.validation import (
     check_columns,
     check_frame,
@@ -48,23 +49,41 @@ class _Intake:
 
     df: pd.DataFrame
     unit: Hashable
-    outcomes: tuple
+    outcomes: tuple  # the observed variables' names (the indicators, when a process has several)
     varying: tuple
     invariant: tuple
+    processes: tuple = ()
+    indicators: dict | None = None  # process -> indicator names; None: each outcome is its own
 
     @classmethod
-    def start(cls, df, unit, outcomes, varying, invariant, reserved: dict) -> _Intake:
+    def start(cls, df, unit, outcomes, varying, invariant, reserved: dict,
+              indicators: dict | None = None) -> _Intake:
         """Check the frame and the role names (before any column is looked up)."""
         check_frame(df)
+        processes = outcomes
+        if indicators is not None:
+            # an indicator named for two processes, or as a covariate, is named as such first
+            settle_indicators(tuple(indicators), indicators, varying, invariant)
+            processes = tuple(indicators)
+            outcomes = tuple(n for group in indicators.values() for n in group)
         check_roles(outcomes, varying, invariant, reserved={unit: "unit", **reserved})
-        return cls(df=df, unit=unit, outcomes=outcomes, varying=varying, invariant=invariant)
+        return cls(df=df, unit=unit, outcomes=outcomes, varying=varying, invariant=invariant,
+                   processes=processes, indicators=indicators)
+
+    def outcome_role(self, column) -> str:
+        """Where a message says an outcome column was named: ``outcomes['sleep']`` for an
+        indicator of process sleep."""
+        for process, group in (self.indicators or {}).items():
+            if column in group:
+                return f"outcomes[{process!r}]"
+        return "outcomes"
 
     def columns(self, extra: list, outcome_cols, varying_cols) -> None:
         """Look every named column up (nearest name suggested), then check the unit ids."""
         check_columns(
             self.df,
             [(self.unit, "unit")] + extra
-            + [(c, "outcomes") for c in outcome_cols]
+            + [(c, self.outcome_role(c)) for c in outcome_cols]
             + [(c, "time_varying") for c in varying_cols]
             + [(c, "time_invariant") for c in self.invariant],
         )
@@ -81,8 +100,8 @@ class _Intake:
         warn_wave_spacing(waves, where, stacklevel=_USER)
         units, y, x, z = settle_covariates(units, waves, y, x, z, self.varying, self.invariant,
                                            present, drop, stacklevel=_USER - 1)
-        return dict(units=tuple(units), waves=tuple(waves), outcomes=self.outcomes,
-                    time_varying=self.varying, time_invariant=self.invariant, y=y, x=x, z=z)
+        return dict(units=tuple(units), waves=tuple(waves), outcomes=self.processes,
+                    indicators=self.indicators, time_varying=self.varying, time_invariant=self.invariant, y=y, x=x, z=z)
 
 
 def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
@@ -92,9 +111,11 @@ def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
         raise DataError(
             f"`unit` and `wave` both name column {show(unit)}; give each its own column."
         )
-    it = _Intake.start(df, unit, name_tuple(outcomes, "outcomes"),
+    processes, indicators = read_outcomes(outcomes)
+    it = _Intake.start(df, unit, processes,
                        name_tuple(time_varying, "time_varying"),
-                       name_tuple(time_invariant, "time_invariant"), reserved={wave: "wave"})
+                       name_tuple(time_invariant, "time_invariant"), reserved={wave: "wave"},
+                       indicators=indicators)
     outcomes_, varying, invariant = it.outcomes, it.varying, it.invariant
     it.columns([(wave, "wave")], outcomes_, varying)
     check_no_missing_labels(df, wave, "wave label")
@@ -184,12 +205,15 @@ def read_wide(df, *, unit, outcomes, time_varying=None, time_invariant=(), waves
             "e.g. time_varying={'x': ['x1', 'x2', 'x3']}; got " + type(time_varying).__name__ + "."
         )
     varying_map = dict(time_varying or {})
-    outcome_map = {name: list(name_tuple(cols, f"outcomes[{name!r}]")) for name, cols in outcomes.items()}
+    outcome_map, indicators = read_wide_outcomes(outcomes)
+    if all(group == (name,) for name, group in indicators.items()):
+        indicators = None  # every process observed directly: today's panel
     varying_map = {name: list(name_tuple(cols, f"time_varying[{name!r}]")) for name, cols in varying_map.items()}
     outcomes_ = tuple(outcome_map)
     varying = tuple(varying_map)
-    it = _Intake.start(df, unit, outcomes_, varying,
-                       name_tuple(time_invariant, "time_invariant"), reserved={})
+    it = _Intake.start(df, unit, outcomes_ if indicators is None else tuple(indicators), varying,
+                       name_tuple(time_invariant, "time_invariant"), reserved={},
+                       indicators=indicators)
     invariant = it.invariant
 
     per_wave = {**outcome_map, **varying_map}
@@ -208,13 +232,15 @@ def read_wide(df, *, unit, outcomes, time_varying=None, time_invariant=(), waves
         owner.setdefault(name, "time_invariant")
     for name, cols in per_wave.items():
         for col in cols:
+            if col is None and name in outcome_map and indicators is not None:
+                continue  # an indicator not measured at this wave
             if col in owner:
                 raise DataError(
                     f"column {show(col)} is listed for {show(name)} and also for "
                     f"{owner[col]}; each column holds one variable at one wave."
                 )
             owner[col] = show(name)
-    it.columns([], [c for cols in outcome_map.values() for c in cols],
+    it.columns([], [c for cols in outcome_map.values() for c in cols if c is not None],
                [c for cols in varying_map.values() for c in cols])
     repeated = df.duplicated([unit], keep=False).to_numpy()
     if repeated.any():
@@ -245,11 +271,13 @@ def read_wide(df, *, unit, outcomes, time_varying=None, time_invariant=(), waves
         """Stack per-wave columns to (rows, T, variables) in wave order."""
         if not mapping:
             return np.empty((len(df), n_waves, 0))
+        def column(col):
+            if col is None:  # an indicator not measured at this wave: missing for everyone
+                return np.full(len(df), np.nan)
+            return numeric_column(df, col, role)
+
         return np.stack(
-            [
-                np.column_stack([numeric_column(df, cols[t], role) for t in order])
-                for cols in mapping.values()
-            ],
+            [np.column_stack([column(cols[t]) for t in order]) for cols in mapping.values()],
             axis=2,
         )
 

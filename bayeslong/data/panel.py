@@ -22,6 +22,7 @@ import pandas as pd
 
 from bayeslong.data.intake import read_long, read_wide
 from bayeslong.data.patterns import Patterns
+from bayeslong.data.indicators import indicator_labels, settle_indicators
 from bayeslong.data.validation import (
     MIN_WAVES,
     arrays_equal,
@@ -54,12 +55,18 @@ class Panel:
         ``1..T``. Waves are assumed equally spaced.
     outcomes : tuple of str
         Names of the K outcomes (processes).
+    indicators : mapping of str to tuple of str, optional
+        For each process, the names of its indicators (the observed variables that measure
+        it at every wave); default: each process is its own single indicator, ``{"y": ("y",)}``.
+        An indicator measures one process only.
     time_varying : tuple of str
         Names of the time-varying covariates x.
     time_invariant : tuple of str
         Names of the time-invariant covariates z.
-    y : numpy.ndarray of float, shape (N, T, K)
-        Outcomes; NaN where an outcome is missing (kept as missing, never imputed).
+    y : numpy.ndarray of float, shape (N, T, J)
+        The observed variables; NaN where one is missing (kept as missing, never imputed).
+        J = K with one indicator per process (then ``y[..., k]`` is outcome k); otherwise
+        the indicators of every process in order (:attr:`observed_names`).
     x : numpy.ndarray of float, shape (N, T, len(time_varying))
         Time-varying covariates; never NaN.
     z : numpy.ndarray of float, shape (N, len(time_invariant))
@@ -89,6 +96,7 @@ class Panel:
     units: tuple
     waves: tuple
     outcomes: tuple[str, ...]
+    indicators: Mapping[str, tuple[str, ...]] | None = None
     time_varying: tuple[str, ...] = ()
     time_invariant: tuple[str, ...] = ()
     y: np.ndarray
@@ -104,6 +112,9 @@ class Panel:
         time_varying = name_tuple(self.time_varying, "time_varying")
         time_invariant = name_tuple(self.time_invariant, "time_invariant")
         check_roles(outcomes, time_varying, time_invariant, reserved={})
+        indicators = settle_indicators(outcomes, self.indicators, time_varying, time_invariant)
+        observed_names = tuple(name for group in indicators.values() for name in group)
+        described = indicator_labels(indicators)
         for what, labels in (("unit", units), ("wave", waves)):
             if len(set(labels)) != len(labels):
                 repeated = pd.Index(labels)[pd.Index(labels).duplicated()].unique()
@@ -119,7 +130,7 @@ class Panel:
         x = readonly(np.empty((n, t, 0)) if self.x is None else self.x, 3, "x")
         z = readonly(np.empty((n, 0)) if self.z is None else self.z, 2, "z")
         for name, array, expected in (
-            ("y", y, (n, t, len(outcomes))),
+            ("y", y, (n, t, len(observed_names))),
             ("x", x, (n, t, len(time_varying))),
             ("z", z, (n, len(time_invariant))),
         ):
@@ -142,19 +153,19 @@ class Panel:
         if np.isinf(y).any():
             i, w, k = (int(a[0]) for a in np.nonzero(np.isinf(y)))
             raise DataError(
-                f"outcome {show(outcomes[k])} is {y[i, w, k]} for unit {show(units[i])} at wave "
+                f"{described[k]} is {y[i, w, k]} for unit {show(units[i])} at wave "
                 f"{show(waves[w])}; replace infinite values with NaN to treat them as missing."
             )
         observed = ~np.isnan(y)
-        for k, name in enumerate(outcomes):
+        for k, label in enumerate(described):
             values = y[:, :, k][observed[:, :, k]]
             if values.size == 0:
                 raise DataError(
-                    f"outcome {show(name)} is never observed; remove it from `outcomes`."
+                    f"{label} is never observed; remove it from `outcomes`."
                 )
             if np.all(values == values[0]):
                 raise DataError(
-                    f"outcome {show(name)} takes the single value {values[0]:g} at every observed "
+                    f"{label} takes the single value {values[0]:g} at every observed "
                     f"entry ({values.size}); a constant outcome has no variance to model: remove "
                     "it from `outcomes` or check the column."
                 )
@@ -180,11 +191,12 @@ class Panel:
                         "from the intercept (its effect is not identified): remove it from "
                         f"`{'time_varying' if name == 'x' else 'time_invariant'}`."
                     )
-        check_magnitudes(y, x, z, outcomes, time_varying, time_invariant)
+        check_magnitudes(y, x, z, observed_names, time_varying, time_invariant, labels=described)
         for name, value in (
             ("units", units),
             ("waves", waves),
             ("outcomes", outcomes),
+            ("indicators", indicators),
             ("time_varying", time_varying),
             ("time_invariant", time_invariant),
             ("y", y),
@@ -202,7 +214,7 @@ class Panel:
         *,
         unit: Hashable,
         wave: Hashable,
-        outcomes: Sequence[str] | str,
+        outcomes: Sequence[str] | str | Mapping[str, Sequence[str] | str],
         time_varying: Sequence[str] | str = (),
         time_invariant: Sequence[str] | str = (),
         drop_incomplete_covariates: bool = False,
@@ -218,8 +230,13 @@ class Panel:
         wave : hashable
             Column holding the wave label (numbers, dates or strings; they must be orderable).
             Labels are sorted ascending and mapped to positions 1..T, assuming equal spacing.
-        outcomes : sequence of str or str
-            Outcome columns (the K processes). Missing values are kept as missing.
+        outcomes : sequence of str, str, or mapping of str to sequence of str
+            Outcome columns (the K processes), one observed score per process and wave.
+            Or a mapping from each process to its indicator columns, e.g.
+            ``{"sleep": ["rested", "fell_asleep", "woke_rarely"]}``: the process is then a
+            latent variable measured at every wave by those columns (docs/model-family.md,
+            "Several indicators per wave"). Missing values are kept as missing, indicator by
+            indicator.
         time_varying : sequence of str or str, optional
             Time-varying covariate columns x.
         time_invariant : sequence of str or str, optional
@@ -241,6 +258,9 @@ class Panel:
             covariate value; two rows for one unit and wave; fewer than 3 waves; unorderable
             wave labels; a time-invariant covariate that varies within a unit; a missing
             covariate (unless dropping); a unit with no observed outcome; a constant outcome.
+            With indicators, every value check runs per indicator and names it; an indicator
+            listed for two processes (or twice), a process without indicators, and an
+            indicator that is also a covariate are refused.
 
         Warns
         -----
@@ -286,9 +306,14 @@ class Panel:
             Wide data. Rows are named in messages by their index label.
         unit : hashable
             Column holding the unit id.
-        outcomes : mapping of str to sequence of column names
+        outcomes : mapping of str to sequence of column names, or to a mapping
             For each outcome, its columns in wave order, e.g. ``{"y": ["y1", "y2", "y3"]}``.
-            Every outcome and time-varying covariate lists the same number T of columns.
+            A process measured by several indicators maps to a mapping from each indicator
+            to its columns in wave order: ``{"sleep": {"rested": ["r1", "r2", "r3"],
+            "fell_asleep": ["f1", "f2", "f3"]}}`` (one column per indicator and wave; a
+            column may be ``None`` where an indicator was not asked at that wave, which makes
+            it missing there). Every indicator, outcome and time-varying covariate lists the
+            same number T of columns.
         time_varying : mapping of str to sequence of column names, optional
             For each time-varying covariate, its columns in wave order.
         time_invariant : sequence of str or str, optional
@@ -339,6 +364,16 @@ class Panel:
         """Number of waves T."""
         return len(self.waves)
 
+    @property
+    def observed_names(self) -> tuple[str, ...]:
+        """Names of the observed variables, the last axis of :attr:`y` (indicators in order)."""
+        return tuple(name for group in self.indicators.values() for name in group)
+
+    @property
+    def has_indicators(self) -> bool:
+        """True when some process is measured by an indicator other than itself."""
+        return any(group != (name,) for name, group in self.indicators.items())
+
     def __eq__(self, other: object) -> bool:
         if not isinstance(other, Panel):
             return NotImplemented
@@ -346,6 +381,7 @@ class Panel:
             self.units == other.units
             and self.waves == other.waves
             and self.outcomes == other.outcomes
+            and self.indicators == other.indicators
             and self.time_varying == other.time_varying
             and self.time_invariant == other.time_invariant
             and arrays_equal(self.y, other.y)
@@ -361,7 +397,9 @@ class Panel:
         )
         return (
             f"Panel(n_units={self.n_units}, n_waves={self.n_waves} ({waves}), "
-            f"outcomes={self.outcomes}, time_varying={self.time_varying}, "
+            f"outcomes={self.outcomes}, "
+            + (f"indicators={dict(self.indicators)}, " if self.has_indicators else "")
+            + f"time_varying={self.time_varying}, "
             f"time_invariant={self.time_invariant})"
         )
 
@@ -372,8 +410,10 @@ class Panel:
 
         Returns
         -------
-        numpy.ndarray of float, shape (N, K*T)
-            Columns ``[y_1 at waves 1..T, y_2 at waves 1..T, ...]``; NaN where missing.
+        numpy.ndarray of float, shape (N, J*T)
+            Columns ``[y_1 at waves 1..T, y_2 at waves 1..T, ...]`` over the observed
+            variables (:attr:`observed_names`; J = K with one indicator per process); NaN
+            where missing.
         """
         n, t, k = self.y.shape
         return np.ascontiguousarray(self.y.transpose(0, 2, 1).reshape(n, k * t))
@@ -492,6 +532,7 @@ class Panel:
             units=tuple(u for u, k in zip(self.units, keep, strict=True) if k),
             waves=self.waves[:n_waves],
             outcomes=self.outcomes,
+            indicators=self.indicators,
             time_varying=self.time_varying,
             time_invariant=self.time_invariant,
             y=y[keep],
@@ -515,7 +556,7 @@ class Panel:
         DataError
             If an outcome or covariate is itself named ``unit`` or ``wave``.
         """
-        names = self.outcomes + self.time_varying + self.time_invariant
+        names = self.observed_names + self.time_varying + self.time_invariant
         for name in names:
             if name in (UNIT, WAVE):
                 raise DataError(
@@ -527,7 +568,7 @@ class Panel:
             UNIT: pd.Index(list(self.units)).repeat(t),
             WAVE: pd.Index(list(self.waves))[np.tile(np.arange(t), n)],
         }
-        for k, name in enumerate(self.outcomes):
+        for k, name in enumerate(self.observed_names):
             data[name] = self.y[:, :, k].reshape(-1)
         for p, name in enumerate(self.time_varying):
             data[name] = self.x[:, :, p].reshape(-1)
@@ -545,12 +586,14 @@ class Panel:
             ``time_invariant``; ``observed``: DataFrame (wave x outcome) of the share of units
             observed; ``patterns``: DataFrame with one row per pattern (in :meth:`patterns`
             order), a column per outcome showing its waves as ``o`` (observed) or ``.``
-            (missing), and ``count``.
+            (missing), and ``count``. With several indicators per process the columns of
+            both tables are the indicators (the share observed per indicator and wave), and
+            ``indicators`` maps each process to its indicators.
         """
         observed = pd.DataFrame(
             (~np.isnan(self.y)).mean(axis=0),
             index=pd.Index(list(self.waves), name=WAVE),
-            columns=list(self.outcomes),
+            columns=list(self.observed_names),
         )
         patterns = self.patterns()
         t = self.n_waves
@@ -560,16 +603,18 @@ class Panel:
                     "".join("o" if seen else "." for seen in mask[k * t : (k + 1) * t])
                     for mask in patterns.masks
                 ]
-                for k, name in enumerate(self.outcomes)
+                for k, name in enumerate(self.observed_names)
             }
         )
         table["count"] = patterns.counts
         table.index.name = "pattern"
+        extra = {"indicators": dict(self.indicators)} if self.has_indicators else {}
         return {
             "n_units": self.n_units,
             "n_waves": self.n_waves,
             "waves": self.waves,
             "outcomes": self.outcomes,
+            **extra,
             "time_varying": self.time_varying,
             "time_invariant": self.time_invariant,
             "observed": observed,
@@ -591,9 +636,17 @@ class Panel:
         -----
         The pooled SD includes change in the mean over waves, so it is at least as large as
         a typical within-wave SD: a deliberately wide scale for weakly informative priors.
+        A process measured by several indicators takes the scale of its first listed
+        indicator (the default marker, whose unit the latent borrows); every indicator's own
+        scale is in :meth:`indicator_scale`.
         """
+        ind = self.indicator_scale()
+        return {name: ind[group[0]] for name, group in self.indicators.items()}
+
+    def indicator_scale(self) -> dict[str, dict[str, float]]:
+        """Each observed variable's location and scale, as :meth:`summary_scale` defines them."""
         scales: dict[str, dict[str, float]] = {}
-        for k, name in enumerate(self.outcomes):
+        for k, name in enumerate(self.observed_names):
             values = self.y[:, :, k]
             seen = ~np.isnan(values)
             first = int(np.argmax(seen.any(axis=0)))

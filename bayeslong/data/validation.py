@@ -392,30 +392,34 @@ MAX_MAGNITUDE = 1e100
 SCALE_RANGE = (1e-6, 1e6)
 
 
-def check_magnitudes(y, x, z, outcomes, time_varying, time_invariant) -> None:
+def check_magnitudes(y, x, z, outcomes, time_varying, time_invariant, labels=None) -> None:
     """Refuse values whose squares overflow; warn about scales far from 1.
 
     The likelihood uses sums of squares and cross-products of the data, so a value of
     1e160 overflows to infinity and the fit ends in NaN; such data must be rescaled first.
+    ``labels`` names y's variables in messages (``indicator 'rested' of outcome 'sleep'``);
+    by default ``outcome 'y'``.
     """
-    columns = [(y[..., k], name, "outcome") for k, name in enumerate(outcomes)]
+    labels = labels or [f"outcome {show(name)}" for name in outcomes]
+    columns = [(y[..., k], label, None) for k, label in enumerate(labels)]
     columns += [(x[..., q], name, "time-varying covariate") for q, name in enumerate(time_varying)]
     columns += [(z[..., q], name, "time-invariant covariate") for q, name in enumerate(time_invariant)]
     for values, name, kind in columns:
+        what = name if kind is None else f"{kind} {show(name)}"
         seen = values[np.isfinite(values)]
         if not seen.size:
             continue
         top = float(np.max(np.abs(seen)))
         if top > MAX_MAGNITUDE:
             raise DataError(
-                f"{kind} {show(name)} has values as large as {top:.3g}; the fit works with "
+                f"{what} has values as large as {top:.3g}; the fit works with "
                 "squares and cross-products of the data, which overflow at this size. Rescale "
                 f"it (divide by a power of ten, e.g. 1e{int(np.log10(top))}) before fitting."
             )
         sd = float(np.std(seen))
         if sd > 0 and not SCALE_RANGE[0] <= sd <= SCALE_RANGE[1]:
             warnings.warn(
-                f"{kind} {show(name)} has standard deviation {sd:.3g}; estimates lose precision "
+                f"{what} has standard deviation {sd:.3g}; estimates lose precision "
                 "far from a scale near 1. Consider rescaling it (e.g. to thousands or "
                 "millionths) before fitting.", UserWarning, stacklevel=5)
 

@@ -221,7 +221,17 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     first-wave loading on factor f                Normal(f's loading at wave 1, 1)
     variance                                      its SD ~ HalfNormal(s)
     covariances of a block of q > 1 variables     correlation matrix ~ LKJ(eta = 2)
+    indicator loading ``loading[j]``              Normal(1, 1)
+    indicator intercept ``intercept[j]``          Normal(0, 3 s_j + |m_j|)
+    unique variance ``unique_var[j]``             its SD ~ HalfNormal(s_j)
     ============================================  =====================================
+
+    For a process measured by several indicators, m and s are those of its first listed
+    indicator (the default marker, whose unit the latent takes), and m_j, s_j those of
+    indicator j (:meth:`~bayeslong.data.Panel.indicator_scale`). A loading is centred on the
+    marker's 1 (an indicator on the marker's scale); an intercept is the indicator's mean
+    minus its loading times the latent's mean, centred on 0 with the same wide location
+    scale as the means.
 
     A slope mean is a change per wave (per unit of time score); in the dual change model
     it is the constant change added at every wave, so 0 with scale s (the pooled SD, which
@@ -243,9 +253,23 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     outcome, cov = _scales(panel)
     names = list(panel.outcomes)
     block_of = _block_membership(structure)
+    items = {n: v for n, v in panel.indicator_scale().items() if n not in outcome}
     out = []
     for i, (name, kind) in enumerate(zip(structure.names, structure.kinds)):
         keys = _keys(name)
+        if keys and keys[0] in items and name.startswith(("loading[", "intercept[", "unique_")):
+            mj, sj = items[keys[0]]["mean"], items[keys[0]]["sd"]
+            if name.startswith("loading["):
+                out.append(Prior(parameter=name, family="normal", args=(1.0, 1.0)))
+            elif name.startswith("intercept["):
+                out.append(Prior(parameter=name, family="normal", args=(0.0, 3.0 * sj + abs(mj))))
+            elif kind == "var":
+                out.append(Prior(parameter=name, family="halfnormal", args=(sj,), target="sd",
+                                 block=block_of[i]))
+            else:
+                out.append(Prior(parameter=name, family="lkj", args=(LKJ_ETA,),
+                                 target="correlation", block=block_of[i]))
+            continue
         procs = [k for k in keys if k in outcome]
         y = procs[0] if procs else names[0]
         m, s = outcome[y]["mean"], outcome[y]["sd"]
@@ -290,6 +314,13 @@ def _block_membership(structure: Structure) -> dict[int, int]:
             raise SpecError(
                 f"model '{structure.spec.name}': a covariance block with fixed zero covariances "
                 "is not supported by the Bayesian fit; free those covariances in the model file")
+        if len(set(np.diag(idx).tolist())) < len(idx):
+            raise SpecError(
+                f"model '{structure.spec.name}': the variances "
+                f"{structure.names[int(idx[0, 0])]!r}... are held equal within one covariance "
+                "block (strict invariance with unique covariances over waves), which the "
+                "Bayesian fit's SD and LKJ priors cannot express yet; fit it by maximum "
+                "likelihood, or choose unique_covariance='none'")
         for k in np.unique(idx):
             if int(k) in member and member[int(k)] != b:
                 raise SpecError(

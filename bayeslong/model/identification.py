@@ -56,6 +56,23 @@ class Identification:
         return self.identified
 
 
+def _measurement_advice(spec, structure, deficient) -> str:
+    """Why latent means are deficient below scalar invariance (model/measurement.py)."""
+    several = any(len(g) > 1 for g in (structure.indicators or {}).values())
+    level = spec.measurement["invariance"]
+    means = [n for n in deficient if n.split("[")[0].endswith("_mean") or n.startswith("intercept")]
+    if not several or not means:
+        return ""
+    if level in ("configural", "metric"):
+        return (f"Under {level} invariance the indicators' intercepts are free at every wave "
+                "after the first, the marker's too, so the latent's mean cannot move over waves "
+                "in a way the data show: growth means and wave intercepts need "
+                "invariance='scalar' (or a partial release of indicators other than the marker). ")
+    return ("Released intercepts leave no indicator whose intercept is equal over waves, so "
+            "the latent's mean cannot move over waves in a way the data show: keep at least "
+            "one indicator's intercept invariant. ")
+
+
 def _moment_jacobian(structure: Structure, theta) -> np.ndarray:
     """d(c, vec D, vech Sigma)/d theta, shape (n_moments, n_params), exact (complex step)."""
     _, (dc, dD, dS) = moment_jacobian(structure, theta)
@@ -112,7 +129,8 @@ def _identify(spec, panel, *, points, seed, tol) -> Identification:
     if rank < p:
         weight = np.abs(null).max(axis=0)
         deficient = tuple(n for n, w in zip(structure.names, weight) if w > 1e-3)
-        advice = ("Fix one of them, drop the term, or choose a model that restricts it"
+        advice = (_measurement_advice(spec, structure, deficient)
+                  + "Fix one of them, drop the term, or choose a model that restricts it"
                   + (" (a time-invariant covariate cannot be separated from a level factor "
                      "that is free to depend on it: leave z out of this model)"
                      if spec.level_covariates == "every-wave" and panel.time_invariant else "")

@@ -40,22 +40,33 @@ from bayeslong.model.structure import Structure
 
 @lru_cache(maxsize=256)
 def _gather_plan(structure: Structure):
-    # every matrix's entries in one flat gather: (name, shape, start, stop), fixed, index
+    # every matrix's entries in one flat gather: (name, shape, start, stop), fixed, index;
+    # and the linear-combination entries (Matrix.terms) as a scatter onto their positions
     parts, fixed, index, start = [], [], [], 0
+    t_pos, t_idx, t_coef = [], [], []
     for name, m in structure.matrices.items():
         parts.append((name, m.fixed.shape, start, start + m.fixed.size))
         fixed.append(m.fixed.ravel())
         index.append(m.index.ravel())
+        for pos, k, coef in m.terms:
+            t_pos.append(start + pos)
+            t_idx.append(k)
+            t_coef.append(coef)
         start += m.fixed.size
-    return parts, np.concatenate(fixed), np.concatenate(index)
+    positions = np.unique(np.array(t_pos, dtype=np.int64))
+    scatter = (np.array(t_pos)[:, None] == positions[None, :]).astype(float) if t_pos else None
+    terms = (positions, np.array(t_idx, dtype=np.int64), np.array(t_coef), scatter)
+    return parts, np.concatenate(fixed), np.concatenate(index), terms
 
 
 def _np_matrices(structure: Structure, theta) -> dict:
     theta = np.asarray(theta)
     batch = theta.shape[:-1]
     ext = np.concatenate([theta, np.zeros(batch + (1,), dtype=theta.dtype)], axis=-1)
-    parts, fixed, index = _gather_plan(structure)
+    parts, fixed, index, (positions, t_idx, t_coef, scatter) = _gather_plan(structure)
     flat = fixed + ext[..., index]
+    if scatter is not None:
+        flat[..., positions] += (ext[..., t_idx] * t_coef) @ scatter
     return {name: flat[..., a:b].reshape(batch + shape) for name, shape, a, b in parts}
 
 
@@ -64,8 +75,16 @@ def _pt_matrices(structure: Structure, theta) -> dict:
 
     theta = pt.as_tensor_variable(theta)
     ext = pt.concatenate([theta, pt.zeros((1,), dtype=theta.dtype)])
-    return {name: pt.as_tensor_variable(m.fixed) + ext[m.index]
-            for name, m in structure.matrices.items()}
+    out = {}
+    for name, m in structure.matrices.items():
+        value = pt.as_tensor_variable(m.fixed) + ext[m.index]
+        if m.terms:
+            pos, k, coef = (np.array(v) for v in zip(*m.terms))
+            flat = pt.inc_subtensor(pt.zeros(m.fixed.size, dtype=theta.dtype)[pos.astype(np.int64)],
+                                    ext[k.astype(np.int64)] * coef)
+            value = value + flat.reshape(m.fixed.shape)
+        out[name] = value
+    return out
 
 
 def _pt_eye(n: int):

@@ -43,6 +43,10 @@ GENERATORS = {
 #: Kinds of missingness :func:`simulate` can impose.
 MISSING_KINDS = ("dropout", "intermittent")
 
+#: Measurement parts a bare name (or one naming only the indicator) sets for every
+#: indicator and wave in :func:`parameter_vector`.
+_EVERY_INDICATOR = ("loading", "unique_var", "unique_cov")
+
 _WAVE_SUFFIX = re.compile(r"^(?P<base>[^\[]+)\[(?:(?P<keys>.*),)?(?P<wave>\d+)\]$")
 
 
@@ -55,8 +59,15 @@ def _covered_by(name: str, given: str) -> bool:
     """True when the wave-indexed parameter ``name`` is covered by the wave-free ``given``.
 
     ``resid_var`` covers ``resid_var[3]``; ``resid_var[y1]`` covers ``resid_var[y1,3]``;
-    ``lag`` covers ``lag[4]`` (a time-varying lag) but not ``lag[y1<-y2]``.
+    ``lag`` covers ``lag[4]`` (a time-varying lag) but not ``lag[y1<-y2]``. For the
+    indicators' parts, ``unique_var`` covers every indicator's and ``unique_cov[b]``
+    every ``unique_cov[b,s,t]`` (likewise ``loading``).
     """
+    base = name.split("[")[0]
+    if base in _EVERY_INDICATOR and "[" in name:
+        indicator = name[len(base) + 1:-1].split(",")[0]
+        if given in (base, f"{base}[{indicator}]"):
+            return True
     m = _WAVE_SUFFIX.match(name)
     if m is None:
         return False
@@ -202,7 +213,7 @@ def _solve_latents(structure: Structure, B: np.ndarray, r: np.ndarray) -> np.nda
 
 def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | None = None, *,
              covariates: dict | None = None, time_invariant: dict | None = None,
-             outcomes=None, missing: dict | None = None) -> pd.DataFrame:
+             outcomes=None, missing: dict | None = None, indicators: dict | None = None) -> pd.DataFrame:
     """Draw a panel in long form from ``spec`` at parameter values ``params``.
 
     Parameters
@@ -225,6 +236,12 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
         Time-invariant covariates z, as ``covariates`` (an array has shape (N,)).
     outcomes : sequence of str, optional
         Outcome names; default ``y`` (one process) or ``y1, y2``.
+    indicators : dict, optional
+        For each process, its indicator names, ``{"y": ["y_a", "y_b", "y_c"]}``: the process
+        is then a latent measured by those indicators at every wave, with the parameters of
+        the measurement part (``loading[y_b]``, ``intercept[y_b]``, ``unique_var[y_b]``...,
+        named as the model's ``invariance`` option makes them). Default: each process is
+        observed directly.
     missing : dict, optional
         ``{"dropout": d, "intermittent": p}``. Dropout is monotone: at each wave t >= 2 a unit
         still in the study leaves with probability d and is missing from then on.
@@ -235,8 +252,8 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
     Returns
     -------
     pandas.DataFrame
-        Long form: ``unit`` (1..N), ``wave`` (1..T), the outcomes (NaN where missing) and
-        the covariates (always present). ``bl.Panel.from_long(df, unit="unit",
+        Long form: ``unit`` (1..N), ``wave`` (1..T), the outcomes, or the indicators, (NaN
+        where missing; a missing row loses all of them) and the covariates (always present). ``bl.Panel.from_long(df, unit="unit",
         wave="wave", outcomes=..., time_varying=..., time_invariant=...)`` reads it.
 
     Raises
@@ -261,7 +278,7 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
     """
     return Simulation(spec=spec, params=dict(params), n_units=n_units, n_waves=n_waves, seed=seed,
                       covariates=covariates or {}, time_invariant=time_invariant or {},
-                      outcomes=outcomes, missing=missing).data()
+                      outcomes=outcomes, missing=missing, indicators=indicators).data()
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -281,6 +298,7 @@ class Simulation:
     time_invariant: dict = field(default_factory=dict)
     outcomes: tuple | None = None
     missing: dict | None = None
+    indicators: dict | None = None
 
     def __post_init__(self):
         check_spec(self.spec)
@@ -288,13 +306,21 @@ class Simulation:
         whole_number(self.n_waves, "n_waves", least=3)
         outcomes = tuple(self.outcomes) if self.outcomes is not None else default_outcomes(self.spec)
         object.__setattr__(self, "outcomes", outcomes)
+        if self.indicators is not None:
+            if not isinstance(self.indicators, dict) or set(self.indicators) - set(outcomes):
+                raise SpecError(f"`indicators` must map outcomes {list(outcomes)} to indicator "
+                                f"names, e.g. {{{outcomes[0]!r}: ['a', 'b', 'c']}}; got "
+                                f"{self.indicators!r}")
+            object.__setattr__(self, "indicators", {k: tuple(self.indicators.get(k, (k,)))
+                                                    for k in outcomes})
         _missing_rates(self.missing)
 
     @property
     def structure(self) -> Structure:
         return build_structure(self.spec, outcomes=self.outcomes, n_waves=int(self.n_waves),
                                time_varying=tuple(self.covariates),
-                               time_invariant=tuple(self.time_invariant))
+                               time_invariant=tuple(self.time_invariant),
+                               indicators=self.indicators)
 
     def theta(self) -> np.ndarray:
         """The parameter vector in ``structure.names`` order."""
@@ -304,7 +330,9 @@ class Simulation:
         """Draw the panel in long form (see :func:`simulate`)."""
         structure = self.structure
         theta = parameter_vector(structure, self.params)
-        N, T, K = int(self.n_units), int(self.n_waves), len(self.outcomes)
+        N, T = int(self.n_units), int(self.n_waves)
+        names = [n for g in (self.indicators or {k: (k,) for k in self.outcomes}).values() for n in g]
+        K = len(names)  # observed variables
         dropout, intermittent = _missing_rates(self.missing)
         rng = np.random.default_rng(self.seed)
         # covariates w = (x[., 1..T] for each x, z), the structure's column order
@@ -321,7 +349,7 @@ class Simulation:
         eps = rng.standard_normal((N, len(structure.observed))) @ theta_root.T
         eta = _solve_latents(structure, B, a + w @ G.T + zeta)
         y = nu + eta @ Lam.T + eps  # (N, K*T), process-major
-        y = y.reshape(N, K, T).transpose(0, 2, 1).copy()  # (N, T, K)
+        y = y.reshape(N, K, T).transpose(0, 2, 1).copy()  # (N, T, K observed variables)
         # missingness, wave 1 always kept
         if dropout > 0 or intermittent > 0:
             u_drop = rng.uniform(size=(N, T))
@@ -330,7 +358,7 @@ class Simulation:
             skip = (u_int < intermittent) & (np.arange(T) >= 1)
             y[gone | skip] = np.nan
         cols = {"unit": np.repeat(np.arange(1, N + 1), T), "wave": np.tile(np.arange(1, T + 1), N)}
-        for k, name in enumerate(self.outcomes):
+        for k, name in enumerate(names):
             cols[name] = y[:, :, k].ravel()
         for n, values in xs.items():
             cols[n] = values.ravel()
@@ -342,6 +370,8 @@ class Simulation:
         """Draw the panel as a :class:`~bayeslong.data.Panel`."""
         from bayeslong.data import Panel
 
-        return Panel.from_long(self.data(), unit="unit", wave="wave", outcomes=list(self.outcomes),
+        outcomes = ({k: list(v) for k, v in self.indicators.items()} if self.indicators
+                    else list(self.outcomes))
+        return Panel.from_long(self.data(), unit="unit", wave="wave", outcomes=outcomes,
                                time_varying=list(self.covariates),
                                time_invariant=list(self.time_invariant))

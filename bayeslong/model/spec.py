@@ -27,6 +27,22 @@ OPTION_VALUES: dict[str, tuple[str, ...]] = {
     "intercepts": ("equal", "free"),
 }
 
+#: Options of the measurement part (docs/model-family.md, "Several indicators per wave"). They
+#: act only on processes measured by several indicators; a single indicator is the latent.
+#: The first value is the default. ``marker`` (an indicator name, or one per process) and
+#: ``release`` (indicator names, or a mapping part -> names) are free-form, checked
+#: against the panel's indicators when the structure is built.
+MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
+    "invariance": ("scalar", "configural", "metric", "strict"),
+    "scale": ("marker", "effects"),
+    "unique_covariance": ("same-indicator", "none"),
+}
+#: Invariance levels from the least to the most restricted (Meredith 1993).
+INVARIANCE_LEVELS = ("configural", "metric", "scalar", "strict")
+#: Parts of the measurement model a release frees from the invariance level's equalities.
+RELEASE_PARTS = ("loading", "intercept", "unique_var")
+MEASUREMENT_KEYS = (*MEASUREMENT_VALUES, "marker", "release")
+
 #: Keys of a model file and what each may hold.
 _FORMS = ("latent", "within")
 _SCORES = ("linear", "quadratic", "basis", "constant")
@@ -36,6 +52,7 @@ _RESIDUALS_AT = ("latent", "indicator")
 _FILE_KEYS = {
     "description", "processes", "form", "factors", "scores", "lag_name", "lag_offset",
     "level_covariates", "residuals_at", "initial_is_level", "options", "allowed", "use",
+    "measurement",
 }
 
 
@@ -96,6 +113,12 @@ class Spec:
         Resolved options: initial, lag, residuals, effects, intercepts.
     allowed : dict
         Option values this model's identification allows.
+    measurement : dict
+        Resolved options of the measurement part, used where a process has several
+        indicators: ``invariance`` (configural | metric | scalar | strict, default scalar),
+        ``scale`` (marker | effects), ``marker`` (None: each process's first listed indicator),
+        ``release`` (part -> indicator names freed from the level's equalities) and
+        ``unique_covariance`` (same-indicator | none). See docs/model-family.md.
     """
 
     name: str
@@ -111,6 +134,7 @@ class Spec:
     initial_is_level: bool = False
     options: dict = field(default_factory=dict)
     allowed: dict = field(default_factory=dict)
+    measurement: dict = field(default_factory=dict)
 
     def __post_init__(self):
         where = f" in model '{self.name}'"
@@ -147,6 +171,7 @@ class Spec:
                     f"{_nearest(value, values)}"
                 )
         object.__setattr__(self, "options", options)
+        object.__setattr__(self, "measurement", _resolve_measurement(self.measurement, where))
         if self.initial_is_level:
             # the lag is what carries the level (the first wave) to later waves
             if "level" not in factors or self.form != "latent":
@@ -175,12 +200,16 @@ class Spec:
         opts = {k: changes.pop(k) for k in list(changes) if k in OPTION_VALUES}
         if opts:
             changes["options"] = {**self.options, **changes.get("options", {}), **opts}
+        meas = {k: changes.pop(k) for k in list(changes) if k in MEASUREMENT_KEYS}
+        if meas:
+            changes["measurement"] = {**self.measurement, **changes.get("measurement", {}),
+                                      **meas}
         unknown = [k for k in changes if k not in {f.name for f in dataclasses.fields(self)}]
         if unknown:
             raise SpecError(
                 f"Spec has no field {unknown[0]!r}; fields are "
                 + ", ".join(f.name for f in dataclasses.fields(self))
-                + ", and the options " + ", ".join(OPTION_VALUES)
+                + ", and the options " + ", ".join((*OPTION_VALUES, *MEASUREMENT_KEYS))
             )
         return dataclasses.replace(self, **changes)
 
@@ -189,6 +218,9 @@ class Spec:
         d = dataclasses.asdict(self)
         d["factors"] = list(self.factors)
         d["allowed"] = {k: list(v) for k, v in self.allowed.items()}
+        d["measurement"] = {k: (list(v) if isinstance(v, tuple) else
+                                {p: list(n) for p, n in v.items()} if isinstance(v, dict) else v)
+                            for k, v in self.measurement.items()}
         return d
 
     @classmethod
@@ -199,6 +231,42 @@ class Spec:
     def __str__(self) -> str:
         opts = ", ".join(f"{k}={v}" for k, v in self.options.items())
         return f"{self.name} ({opts})"
+
+
+def _resolve_measurement(given, where: str = "") -> dict:
+    """Check the measurement options and fill in their defaults (module notes)."""
+    given = dict(given or {})
+    for key in given:
+        _choice("measurement option", key, MEASUREMENT_KEYS, where)
+    out = {}
+    for key, values in MEASUREMENT_VALUES.items():
+        out[key] = _choice(key, given.get(key, values[0]), values, where)
+    marker = given.get("marker")
+    if marker is not None:
+        names = (marker,) if isinstance(marker, str) else tuple(marker)
+        if not names or not all(isinstance(n, str) and n for n in names):
+            raise SpecError(f"`marker`{where} must be an indicator name or one name per process; "
+                            f"got {marker!r}")
+        marker = names
+    out["marker"] = marker
+    release = given.get("release") or {}
+    if isinstance(release, str):
+        release = (release,)
+    if isinstance(release, dict):
+        for part in release:
+            _choice("release", part, RELEASE_PARTS, where)
+        parts = {p: release.get(p, ()) for p in RELEASE_PARTS}
+    else:
+        parts = {p: release for p in RELEASE_PARTS}
+    resolved = {}
+    for part, names in parts.items():
+        names = (names,) if isinstance(names, str) else tuple(names)
+        if not all(isinstance(n, str) and n for n in names):
+            raise SpecError(f"`release`{where} must name indicators, e.g. release=('fell_asleep',) "
+                            "or release={'intercept': ['fell_asleep']}; got " + repr(release))
+        resolved[part] = tuple(dict.fromkeys(names))
+    out["release"] = resolved
+    return out
 
 
 # --- the catalog ----------------------------------------------------------------------
@@ -225,9 +293,12 @@ def _spec_from_text(name: str, text: str, source: str, options: dict) -> Spec:
         )
     data.pop("use", None)
     file_options = dict(data.pop("options", {}))
+    file_measurement = dict(data.pop("measurement", {}))
     for key in options:
-        _choice("option", key, OPTION_VALUES)
-    return Spec(name=name, **data, options={**file_options, **options})
+        _choice("option", key, (*OPTION_VALUES, *MEASUREMENT_KEYS))
+    measurement = {k: options.pop(k) for k in list(options) if k in MEASUREMENT_KEYS}
+    return Spec(name=name, **data, options={**file_options, **options},
+                measurement={**file_measurement, **measurement})
 
 
 def model(name: str, **options) -> Spec:
@@ -241,6 +312,9 @@ def model(name: str, **options) -> Spec:
         ``initial`` (predetermined | endogenous), ``lag`` (none | constant |
         time-varying), ``residuals`` (equal | free), ``effects`` (constant |
         time-varying), ``intercepts`` (equal | free); the model file narrows them.
+        Measurement options (processes with several indicators): ``invariance``
+        (configural | metric | scalar | strict), ``marker``, ``release``,
+        ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects).
 
     Raises
     ------

@@ -7,6 +7,8 @@ random points (docs/engine.md, "Start values").
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 
 from bayeslong.model.structure import Structure
@@ -19,14 +21,26 @@ def start_values(structure: Structure, panel) -> np.ndarray:
     (intercepts); slope means at the average change per wave; lags, effects and
     covariances at 0; variances at half the outcome's variance (the slope's divided by
     (T-1)^2); free time scores at their linear values.
+
+    A process measured by several indicators takes its first indicator's values (the
+    default marker). Indicator loadings start at 1, intercepts at the indicator's overall
+    mean minus its process's first indicator's (the marker's own free intercepts at 0),
+    unique variances at half the indicator's variance, their covariances at 0.
     """
-    y = panel.y  # (N, T, K)
+    y = panel.y  # (N, T, J): the observed variables (J = K with one indicator per process)
     T = panel.n_waves
-    first = np.nanmean(y[:, 0, :], axis=0)
-    last = np.nanmean(y[:, -1, :], axis=0)
+    with warnings.catch_warnings():  # an indicator missing at a whole wave has no mean there
+        warnings.simplefilter("ignore", RuntimeWarning)
+        first = np.nanmean(y[:, 0, :], axis=0)
+        last = np.nanmean(y[:, -1, :], axis=0)
+    first = np.where(np.isnan(first), np.nanmean(y, axis=(0, 1)), first)
+    last = np.where(np.isnan(last), np.nanmean(y, axis=(0, 1)), last)
     overall = np.nanmean(y, axis=(0, 1))
     var = np.nanvar(y.reshape(-1, y.shape[2]), axis=0)
-    proc = {name: k for k, name in enumerate(panel.outcomes)}
+    observed = list(panel.observed_names)
+    proc = {name: observed.index(group[0]) for name, group in panel.indicators.items()}
+    marker_of = {n: observed.index(group[0]) for group in panel.indicators.values() for n in group}
+    own = {n: v for v, n in enumerate(observed) if n not in proc}
 
     def which(name: str) -> int:
         if "[" in name:
@@ -38,6 +52,16 @@ def start_values(structure: Structure, panel) -> np.ndarray:
     theta = np.zeros(structure.n_params)
     for i, (name, kind) in enumerate(zip(structure.names, structure.kinds)):
         k = which(name)
+        keys = name[name.index("[") + 1:-1].split(",") if "[" in name else []
+        if keys and keys[0] in own and name.startswith(("loading[", "intercept[", "unique_")):
+            v = own[keys[0]]  # a parameter of indicator v's measurement part
+            if name.startswith("loading["):
+                theta[i] = 1.0
+            elif name.startswith("intercept["):
+                theta[i] = 0.0 if v == marker_of[keys[0]] else overall[v] - overall[marker_of[keys[0]]]
+            elif name.startswith("unique_var["):
+                theta[i] = 0.5 * var[v]
+            continue
         if kind == "mean":
             theta[i] = {"level": first[k], "initial": first[k],
                         "slope": (last[k] - first[k]) / max(T - 1, 1)}.get(name.split("_")[0], 0.0)

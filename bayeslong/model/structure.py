@@ -16,14 +16,18 @@ No code here branches on a model's name: everything follows from the spec's fiel
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
 
 from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
+from bayeslong.model.measurement import add_indicators, settle_design
 from bayeslong.model.spec import Spec, check_spec
+
+#: Names of the measurement part's parameters (model/measurement.py).
+_MEASUREMENT_BASES = ("loading", "intercept", "unique_var", "unique_cov")
 
 #: Parameter kinds, used by priors and start values.
 KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
@@ -31,10 +35,16 @@ KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
 
 @dataclass(frozen=True, eq=False)
 class Matrix:
-    """One model matrix: ``fixed + theta[index]`` where ``index >= 0``."""
+    """One model matrix: ``fixed + theta[index]`` where ``index >= 0``, plus ``terms``.
+
+    ``terms`` holds entries that are linear combinations of parameters, as triples
+    (flat position, parameter, coefficient) added to the fixed part: effects coding writes
+    one loading as J minus the others (model/measurement.py). Most matrices have none.
+    """
 
     fixed: np.ndarray
     index: np.ndarray
+    terms: list = field(default_factory=list)
 
     @classmethod
     def zeros(cls, *shape) -> "Matrix":
@@ -62,6 +72,7 @@ class Structure:
     blocks: tuple[Block, ...]
     n_waves: int
     outcomes: tuple[str, ...]
+    indicators: dict | None = None  # process -> indicator names (every process, in order)
 
     @property
     def n_params(self) -> int:
@@ -104,7 +115,10 @@ class Structure:
         """Numeric matrix ``which`` at parameter vector ``theta`` (NumPy; for checks and starts)."""
         m = self.matrices[which]
         ext = np.append(np.asarray(theta, dtype=float), 0.0)
-        return m.fixed + np.where(m.index >= 0, ext[m.index], 0.0)
+        out = m.fixed + np.where(m.index >= 0, ext[m.index], 0.0)
+        for pos, k, coef in m.terms:
+            out.flat[pos] += coef * ext[k]
+        return out
 
 
 class _Table:
@@ -136,6 +150,28 @@ class _Table:
         self.m[which].index[pos] = -1
         self.m[which].fixed[pos] = value
 
+    def combine(self, which: str, pos, value: float, parts: list[tuple[str, str, float]]) -> None:
+        """Entry ``value + sum coef * theta[name]`` over ``parts`` = [(name, kind, coef)]."""
+        self.fix(which, pos, value)
+        flat = int(np.ravel_multi_index(pos, self.m[which].fixed.shape)) \
+            if isinstance(pos, tuple) else int(pos)
+        for name, kind, coef in parts:
+            self.m[which].terms.append((flat, self.param(name, kind), float(coef)))
+
+    def reorder(self, order: list[int]) -> None:
+        """Renumber the parameters so that old parameter ``order[n]`` becomes number n."""
+        if order == sorted(order):
+            return
+        new = np.empty(len(order) + 1, dtype=np.int64)
+        new[np.array(order)] = np.arange(len(order))
+        new[-1] = -1  # index -1 stays -1
+        self.names = [self.names[i] for i in order]
+        self.kinds = [self.kinds[i] for i in order]
+        for m in self.m.values():
+            m.index[...] = new[m.index]
+            m.terms[:] = [(pos, int(new[k]), coef) for pos, k, coef in m.terms]
+        self.blocks = {key: Block(new[b.index]) for key, b in self.blocks.items()}
+
     def block(self, which: str, rows: list[int], names: list[list[str | None]]) -> None:
         """Place a free covariance block on ``rows`` of Psi or Theta."""
         q = len(rows)
@@ -156,7 +192,8 @@ def _label(base: str, *keys) -> str:
     return f"{base}[{','.join(keys)}]" if keys else base
 
 
-def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time_invariant=()) -> Structure:
+def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time_invariant=(),
+                    indicators=None) -> Structure:
     """Build the parameter table of ``spec`` for a panel design.
 
     Parameters
@@ -168,6 +205,10 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         Number of waves T (equally spaced).
     time_varying, time_invariant : sequence of str
         Covariate names x (one column per wave) and z.
+    indicators : mapping of str to sequence of str, optional
+        For each process, its indicators (default: the process is its own single
+        indicator, y = eta). A process with several gets the measurement part of
+        :mod:`bayeslong.model.measurement`.
 
     Returns
     -------
@@ -200,13 +241,20 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     if spec.initial_is_level:
         initial = "level"
 
+    indicators = settle_design(spec, outcomes, indicators)
+    obs_names = [n for k in range(K) for n in indicators[outcomes[k]]]
+    first_v = [obs_names.index(indicators[outcomes[k]][0]) for k in range(K)]
+    several = [len(indicators[outcomes[k]]) > 1 for k in range(K)]
+    if any(several) and spec.residuals_at == "indicator" and K > 1:
+        raise SpecError(f"model '{spec.name}' puts its residuals on the indicators, which is not "
+                        "available with several indicators per wave and two processes yet")
     latents = [_label(f, pk(k)) for k in range(K) for f in F]
     latents += [_label("eta", pk(k), t) for k in range(K) for t in range(1, T + 1)]
-    observed = [_label(outcomes[k], t) for k in range(K) for t in range(1, T + 1)]
+    observed = [_label(v, t) for v in obs_names for t in range(1, T + 1)]
     covariates = [_label(x, t) for x in xs for t in range(1, T + 1)] + list(zs)
     fac = lambda k, f: k * nF + f  # noqa: E731
     eta = lambda k, t: K * nF + k * T + (t - 1)  # noqa: E731
-    obs = lambda k, t: k * T + (t - 1)  # noqa: E731
+    obs = lambda k, t: first_v[k] * T + (t - 1)  # noqa: E731  (a process's first indicator)
     xcol = lambda j, t: j * T + (t - 1)  # noqa: E731
     zcol = lambda j: len(xs) * T + j  # noqa: E731
     tab = _Table(len(latents), len(observed), len(covariates))
@@ -243,7 +291,13 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         return float(t - 1) ** f  # linear: t-1; quadratic adds (t-1)^2
 
     # --- measurement part ------------------------------------------------------------
+    free_origin: dict[int, set] = {}
     for k in range(K):
+        if several[k]:
+            free_origin[k] = add_indicators(
+                tab, spec, indicators[outcomes[k]], T, lambda t, k=k: eta(k, t),
+                lambda j, t, k=k: (first_v[k] + j) * T + (t - 1))
+            continue
         for t in range(1, T + 1):
             tab.fix("Lam", (obs(k, t), eta(k, t)), 1.0)
             if within:
@@ -281,6 +335,8 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
                 if opts["intercepts"] == "free":
                     if has_level and not anchored:
                         anchored = True  # first equation wave anchors the level mean
+                    elif t in free_origin.get(k, ()):
+                        pass  # the indicators' free intercepts carry this wave's mean
                     else:
                         tab.put("a", row, _label("intercept", pk(k), t), "intercept")
                 elif not has_level:
@@ -376,6 +432,10 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     # wave residuals: latent disturbances, or measurement errors (dual change)
     resid_waves = range(1, T + 1) if spec.residuals_at == "indicator" else [
         t for t in eq_waves if not (initial == "endogenous" and t == 1)]
+    if spec.residuals_at == "indicator" and any(several):
+        # the latent is disturbance-free and the indicators' unique variances are its
+        # measurement error (one process: checked above)
+        resid_waves = []
     for t in resid_waves:
         tt = t if opts["residuals"] == "free" else None
         names = [[(_label("resid_var", outcomes[r] if multi else None, tt) if r == c else
@@ -386,21 +446,28 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         else:
             tab.block("Psi", [eta(k, t) for k in range(K)], names)
 
+    # the structural parameters first, the indicators' measurement parameters after them
+    tab.reorder(sorted(range(len(tab.names)), key=lambda i: tab.names[i].split("[")[0] in
+                       _MEASUREMENT_BASES and tab.names[i][tab.names[i].find("[") + 1:]
+                       .split(",")[0].rstrip("]") in obs_names and any(several)))
     structure = Structure(
         spec=spec, names=tuple(tab.names), kinds=tuple(tab.kinds), latents=tuple(latents),
         observed=tuple(observed), covariates=tuple(covariates), matrices=tab.m,
         blocks=tuple(tab.blocks.values()), n_waves=T, outcomes=outcomes,
+        indicators=indicators,
     )
     _check_recursive(structure)
     return structure
 
 
-def structure_key(spec: Spec, *, outcomes, n_waves, time_varying=(), time_invariant=()) -> str:
+def structure_key(spec: Spec, *, outcomes, n_waves, time_varying=(), time_invariant=(),
+                  indicators=None) -> str:
     """A string that is equal exactly when two designs give the same structure."""
     import json
 
+    extra = [] if indicators is None else [{k: list(v) for k, v in indicators.items()}]
     return json.dumps([spec.to_dict(), list(outcomes), int(n_waves), list(time_varying),
-                       list(time_invariant)], sort_keys=True)
+                       list(time_invariant), *extra], sort_keys=True)
 
 
 _CACHE: dict[str, Structure] = {}
@@ -414,7 +481,8 @@ def structure_for(spec: Spec, panel) -> Structure:
     """
     spec, panel = check_spec(spec), check_panel(panel)
     design = dict(outcomes=panel.outcomes, n_waves=panel.n_waves,
-                  time_varying=panel.time_varying, time_invariant=panel.time_invariant)
+                  time_varying=panel.time_varying, time_invariant=panel.time_invariant,
+                  indicators=dict(panel.indicators) if panel.has_indicators else None)
     key = structure_key(spec, **design)
     if key not in _CACHE:
         _CACHE[key] = build_structure(spec, **design)

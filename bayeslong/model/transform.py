@@ -25,9 +25,16 @@ class Unconstrained:
             if len(idx) == 1:
                 singles.append(int(idx[0, 0]))
                 continue
+            if len(set(np.diag(idx).tolist())) < len(idx):
+                # a block whose variances are held equal (strict invariance of unique
+                # variances that covary over waves) has no log-Cholesky form: its variances
+                # go on the log scale and its covariances stay as they are, and the
+                # likelihood refuses points where the block is not positive definite
+                singles.extend(int(i) for i in np.unique(np.diag(idx)))
+                continue
             rows, cols = np.tril_indices(len(idx))
             self.blocks.append((idx, rows, cols, idx[rows, cols]))
-        self.singles = np.array(singles, dtype=np.int64)
+        self.singles = np.array(sorted(set(singles)), dtype=np.int64)
 
     def to_natural(self, u: np.ndarray) -> np.ndarray:
         theta = np.array(u, dtype=float)

@@ -315,6 +315,19 @@ def ri_clpm(d):
             for k in d.outcomes for t in range(1, d.T + 1)]
 
 
+def waves_apart(d):
+    """Unlinked waves: each wave its own regression, no growth factors and no lag (the
+    saturated-mean baseline against which linked models are read; with one observed score
+    it is a set of T separate regressions, Bollen & Curran 2006, Latent Curve Models, ch. 2):
+        y_t = intercept_t + b x_t + b' z + e_t,  e_t ~ N(0, resid_var_t) independent over waves."""
+    (k,) = d.outcomes
+    ys = []
+    for t in range(1, d.T + 1):
+        e = d.wave_residuals(t, free=True)
+        ys.append(d.const(d.p[label("intercept", t)]) + d.x_effects(k, t, with_z=True) + e[k])
+    return ys
+
+
 def random_effects(d):
     """Random-effects panel model (Laird & Ware 1982, Biometrics 38(4), random intercept):
     y_t = level + b x_t + e_t, level = level_mean + g z + u uncorrelated with x."""
@@ -368,6 +381,7 @@ NAIVE = {
     "clpm": autoregressive,
     "ri-clpm": ri_clpm,
     "bivariate-alt": bivariate_alt,
+    "waves-apart": waves_apart,
 }
 
 VARIANTS = {  # option settings whose published form differs, beside each model's defaults

@@ -1,0 +1,166 @@
+"""The measurement part of a process measured by several indicators at every wave.
+
+For indicator j of process k at wave t (docs/model-family.md, "Several indicators per wave"):
+
+    y[i,j,t] = nu[j,t] + lambda[j,t] * eta[i,k,t] + eps[i,j,t],    eps ~ N(0, Theta)
+
+Scale setting (marker indicator): the marker's loading is 1 at every wave, which gives each
+wave's latent the marker's unit, and its intercept is 0 at the first wave, which sets the
+latent's origin. Effects coding (``scale="effects"``; Little, Slegers & Card 2006) instead
+makes the loadings average 1 at every wave and the intercepts sum to 0 where the marker's
+would be 0, by writing the reference indicator's (the ``marker``, by default the first) as
+J minus the other loadings and minus the other intercepts: the latent then has the
+indicators' average unit and origin rather than one indicator's. Invariance over waves (Meredith 1993; Widaman & Reise 1997) makes parts
+equal over waves: ``metric`` the loadings, ``scalar`` also the intercepts (the marker's then
+0 at every wave), ``strict`` also the unique variances; ``configural`` none. Below scalar
+invariance every indicator's intercept is free from the second wave on, the marker's too, so
+the indicators say nothing about how the latent's mean moves over waves: a model that gives
+those means a structure (growth means, wave intercepts) is not identified there, and
+:func:`bayeslong.identify` names the parameters. That is the sense in which latent means
+are comparable over waves only under scalar invariance (Meredith 1993). A release frees
+named indicators from the level's equalities (partial invariance; Byrne, Shavelson &
+Muthén 1989); as long as one indicator keeps its intercept equal over waves the growth means
+stay identified (the marker's origin at the first wave, that indicator's intercept for how
+the latent's mean moves).
+
+Unique factors of the same indicator may covary over waves (``unique_covariance =
+"same-indicator"``, the default): the specific part of an item recurs at every wave, and
+leaving that covariance out pushes it into the latent's stability (common practice in
+longitudinal factor models; Little 2013, ch. 5).
+
+References
+----------
+Byrne, B. M., Shavelson, R. J. & Muthén, B. (1989). Testing for the equivalence of factor
+covariance and mean structures: the issue of partial measurement invariance. Psychological
+Bulletin 105(3), 456-466. doi:10.1037/0033-2909.105.3.456
+Little, T. D. (2013). Longitudinal Structural Equation Modeling. Guilford Press.
+Little, T. D., Slegers, D. W. & Card, N. A. (2006). A non-arbitrary method of identifying and
+scaling latent variables in SEM and MACS models. Structural Equation Modeling 13(1), 59-72.
+doi:10.1207/s15328007sem1301_3
+Meredith, W. (1993). Measurement invariance, factor analysis and factorial invariance.
+Psychometrika 58(4), 525-543. doi:10.1007/BF02294825
+Widaman, K. F. & Reise, S. P. (1997). Exploring the measurement invariance of psychological
+instruments: applications in the substance use domain. In K. J. Bryant et al. (eds.), The
+Science of Prevention, 281-324. American Psychological Association.
+"""
+
+from __future__ import annotations
+
+import difflib
+
+from bayeslong.errors import SpecError
+
+#: Which parts each invariance level holds equal over waves.
+EQUAL_PARTS = {
+    "configural": (),
+    "metric": ("loading",),
+    "scalar": ("loading", "intercept"),
+    "strict": ("loading", "intercept", "unique_var"),
+}
+
+
+def _label(base: str, *keys) -> str:
+    keys = [str(k) for k in keys if k is not None and k != ""]
+    return f"{base}[{','.join(keys)}]" if keys else base
+
+
+def settle_design(spec, outcomes: tuple, indicators) -> dict[str, tuple[str, ...]]:
+    """The process -> indicators mapping of a design, with the spec's names checked.
+
+    ``None`` is today's design (each process its own single indicator). A ``marker`` or
+    ``release`` naming no indicator of a process with several indicators is refused with
+    the nearest name.
+    """
+    if indicators is None:
+        indicators = {name: (name,) for name in outcomes}
+    indicators = {k: tuple(indicators[k]) for k in outcomes}
+    several = [n for g in indicators.values() if len(g) > 1 for n in g]
+    m = spec.measurement
+    named = [("marker", n) for n in (m["marker"] or ())]
+    named += [("release", n) for part in m["release"].values() for n in part]
+    for option, name in named:
+        if name not in several:
+            close = difflib.get_close_matches(str(name), several, n=1)
+            hint = f"; did you mean {close[0]!r}?" if close else ""
+            have = ", ".join(several) if several else "none: every process has one indicator"
+            raise SpecError(f"`{option}` names {name!r}, which is not an indicator of a process "
+                            f"measured by several indicators{hint} (indicators: {have})")
+    if several and spec.form == "within":
+        raise SpecError(f"model '{spec.name}' has the within-person form, which is not available "
+                        "with several indicators per wave yet; give each process one observed "
+                        "score, or choose a model of the latent form")
+    return indicators
+
+
+def marker_of(spec, names: tuple[str, ...]) -> str:
+    """The process's marker: the one named by the ``marker`` option, else its first indicator."""
+    chosen = [n for n in (spec.measurement["marker"] or ()) if n in names]
+    if len(chosen) > 1:
+        raise SpecError(f"`marker` names {chosen[0]!r} and {chosen[1]!r}, two indicators of one "
+                        "process; give one marker per process")
+    return chosen[0] if chosen else names[0]
+
+
+def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) -> set[int]:
+    """Fill Lam, nu and Theta for one process measured by ``names`` (see module notes).
+
+    ``eta_row(t)`` is the row of the process's latent at wave t, ``obs_row(j, t)`` that of
+    indicator ``names[j]`` at wave t. Returns the waves at which the marker's intercept is
+    free (below scalar invariance, or released): there the indicators carry the latent's
+    mean, and the structural part adds no wave intercept of its own.
+    """
+    m = spec.measurement
+    marker = marker_of(spec, names)
+    effects = m["scale"] == "effects"
+    equal = set(EQUAL_PARTS[m["invariance"]])
+    released = m["release"]
+    for part in ("loading",):
+        if marker in released[part]:
+            raise SpecError(f"`release` frees the loading of {marker!r}, the marker indicator, "
+                            "whose loading 1 sets the latent's unit; release another indicator "
+                            "or choose another marker with marker='<indicator>'")
+
+    def equal_over_waves(part: str, name: str) -> bool:
+        return part in equal and name not in released[part]
+
+    def loading(name: str, t: int) -> str:
+        return _label("loading", name, None if equal_over_waves("loading", name) else t)
+
+    def intercept(name: str, t: int) -> str:
+        return _label("intercept", name, None if equal_over_waves("intercept", name) else t)
+
+    others = [n for n in names if n != marker]
+    free_origin: set[int] = set()
+    for j, name in enumerate(names):
+        for t in range(1, T + 1):
+            row = obs_row(j, t)
+            if name == marker and effects:
+                # effects coding: the loadings average 1 at every wave, so this one is
+                # J - (sum of the others) (Little, Slegers & Card 2006)
+                tab.combine("Lam", (row, eta_row(t)), float(len(names)),
+                            [(loading(n, t), "loading", -1.0) for n in others])
+            elif name == marker:
+                tab.fix("Lam", (row, eta_row(t)), 1.0)
+            else:
+                tab.put("Lam", (row, eta_row(t)), loading(name, t), "loading")
+            same = equal_over_waves("intercept", name)
+            if name == marker and (same or t == 1):
+                if effects:  # the intercepts sum to 0: this one is minus the others
+                    tab.combine("nu", row, 0.0, [(intercept(n, t), "intercept", -1.0) for n in others])
+                else:
+                    tab.fix("nu", row, 0.0)
+                continue
+            if name == marker:
+                free_origin.add(t)
+            tab.put("nu", row, intercept(name, t), "intercept")
+        # unique variances and, if asked, their covariances over waves
+        same = equal_over_waves("unique_var", name)
+        var = [_label("unique_var", name, None if same else t) for t in range(1, T + 1)]
+        rows = [obs_row(j, t) for t in range(1, T + 1)]
+        if m["unique_covariance"] == "same-indicator":
+            tab.block("Theta", rows, [[var[r] if r == c else _label("unique_cov", name, c + 1, r + 1)
+                                       if c < r else None for c in range(T)] for r in range(T)])
+        else:
+            for t in range(T):
+                tab.block("Theta", [rows[t]], [[var[t]]])
+    return free_origin
