@@ -281,7 +281,7 @@ def _hard_alt_panel(seed: int = 0, n_units: int = 20):
                           y=y[:, :, None])
 
 
-def test_nutpie_starts_from_the_nudged_point_where_the_data_based_one_failed():
+def test_nutpie_starts_from_the_nudged_point_where_the_data_based_one_failed(monkeypatch):
     # Measured with bench/small_start.py: on this panel nutpie refused the data-based start
     # ("All initialization points failed") under the default and the tight lag prior, and
     # the fit fell back to PyMC's NUTS at 80-150 s; from the nudged start it samples.
@@ -295,6 +295,8 @@ def test_nutpie_starts_from_the_nudged_point_where_the_data_based_one_failed():
     spec, panel = _hard_alt_panel()
     s = structure_for(spec, panel)
     ps = resolve_priors(s, panel, None)
+    # a fresh compile, whatever other tests compiled for this structure before
+    monkeypatch.setattr(sampling, "_COMPILED", {})
     entry, _ = sampling._entry(spec, panel, s, ps)
     inputs = model_inputs(panel, ps)
     settings = dict(draws=50, tune=50, chains=2, cores=1, seed=0, progressbar=False, names=s.names)
