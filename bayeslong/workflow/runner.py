@@ -217,7 +217,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
 
     comparison, future = _compare(study, panel, models, method, say, strict, scores)
     models = [_check(study, panel, m, say, strict) for m in models]
-    sensitivity = _sensitivity(study, panel, models, method, say, strict)
+    sensitivity = _sensitivity(study, panel, models, method, say, strict, show=live is not None)
     stages = [("intake", intake_s, f"{panel.n_units} units, {panel.n_waves} waves")]
     if jobs:
         stages.append(("candidates (all)", fits_s,
@@ -635,7 +635,7 @@ def _check(study, panel, m: ModelResult, say, strict=False) -> ModelResult:
     return dataclasses.replace(m, check=step)
 
 
-def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
+def _sensitivity(study, panel, models, method, say, strict=False, show=False) -> Step:
     """Lag sensitivity along the axes the study turns on."""
     axes = [k for k, on in study.sensitivity.items() if on]
     if not axes:
@@ -671,7 +671,7 @@ def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
                               variance_scales=None if on["prior_grid"] else False,
                               initial=on["initial"], specification=on["specification"],
                               power_scaling=on["power_scaling"], fit_kwargs=fit_kwargs,
-                              priors=study.priors, fits=fits),
+                              priors=study.priors, fits=fits, progress=show),
                           say, message),
                   "lag sensitivity", say, strict)
 

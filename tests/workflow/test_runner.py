@@ -85,3 +85,26 @@ def test_worker_fits_and_their_leave_future_out_refits_get_the_study_priors(tmp_
     assert ar_spec.name == "ar"
     assert ar_kwargs["priors"] == ar_future["priors"] == {"lag": LAG, "resid_var": RESID}
     assert lg_kwargs["priors"] == lg_future["priors"] == {"resid_var": RESID}
+
+
+def test_a_maximum_likelihood_run_finds_by_aic_with_a_wald_interval(tmp_path, capsys):
+    from scipy import stats
+
+    import bayeslong as bl
+
+    path = _study(tmp_path, model_lines=MODELS)
+    assert main(["run", str(path), "--json", "--quiet"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    f = out["findings"]
+    aic = {m["label"]: m["ml"]["aic"] for m in out["models"]}
+    assert f["best_loo"] is None and f["best_aic"]["model"] == min(aic, key=aic.get)
+    # reference: the ML fit of the same data, and the normal quantile from SciPy
+    from bayeslong.workflow.study_file import load_study
+
+    ml = bl.fit_ml(bl.model("ar"), load_study(path).panel())
+    z = stats.norm.ppf(0.95)
+    assert f["lag"]["mean"] == pytest.approx(ml.params["lag"], rel=1e-6)
+    assert f["lag"]["high"] - f["lag"]["low"] == pytest.approx(2 * z * ml.se["lag"], rel=1e-6)
+    assert "90% Wald interval" in " ".join(f["text"])
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert "fitted by maximum likelihood only" in page and "(Akaike 1974)" in page
