@@ -152,7 +152,9 @@ def _lag_text(lag: dict, leader: str | None = None) -> str:
     if leader and leader != lag["model"]:
         where = (f"{leader}, the best-predicting model, has no constant lag; in "
                  f"{lag['model']}, the next candidate with one, the lag")
-    return (f"{where} ({lag['parameter']}): {what} {_num(lag['mean'])}, "
+    if lag["parameter"] != "lag":  # e.g. lag[y<-y], or 1 + proportional_change
+        where += f" ({lag['parameter']})"
+    return (f"{where}: {what} {_num(lag['mean'])}, "
             f"{interval} {_num(lag['low'])} to {_num(lag['high'])}.")
 
 
@@ -171,7 +173,14 @@ def _sensitivity_range(step) -> dict | None:
             "flagged": [f"{a}: {s}" for a, s in zip(flagged["axis"], flagged["setting"])],
             "power_scaling": [f"{s} {float(v):.3f}" + (" (flagged)" if f else "")
                               for s, v, f in zip(ps["setting"], ps["psens"], ps["flag"])],
+            "psens_threshold": _psens_threshold(),
             "reference": str(getattr(step.value, "reference", ""))}
+
+
+def _psens_threshold() -> float:
+    from bayeslong.evaluate.sensitivity import PSENS_THRESHOLD
+
+    return float(PSENS_THRESHOLD)
 
 
 def study_findings(results) -> dict:
@@ -227,8 +236,9 @@ def study_findings(results) -> dict:
                  + "; ".join(spread["flagged"]) + "." if spread["flagged"]
                  else "; no setting moves it materially.")
         if spread["power_scaling"]:
-            line += (" Power-scaling sensitivity of the lag: " + ", ".join(spread["power_scaling"])
-                     + " (flagged from 0.05).")
+            line += (f" Power-scaling sensitivity of the lag (flagged at "
+                     f"{spread['psens_threshold']:g} or more): "
+                     + ", ".join(spread["power_scaling"]) + ".")
         text.append(line)
     elif results.sensitivity.reason:
         text.append(f"Lag sensitivity not run: {results.sensitivity.reason}.")
@@ -354,9 +364,10 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
     spread = f["lag_range"]
     if spread is not None:
         axes = [a for a in spread["axes"] if a != "default"]
-        m.append(f"The sensitivity of the lag was assessed by refitting {spread['reference']} "
-                 f"over {spread['settings']} settings ({', '.join(axes) or 'the default only'}), "
-                 "each starting from the study's priors")
+        m.append(f"The sensitivity of the lag was assessed over {spread['settings']} settings "
+                 f"around {spread['reference']} ({', '.join(axes) or 'the default only'}; a "
+                 "setting equal to a candidate's fit read from it, the others refitted), each "
+                 "starting from the study's priors")
         if spread["power_scaling"]:
             m[-1] += (", and by prior and likelihood power-scaling "
                       + cite("psens", "(Kallioinen et al. 2023)"))

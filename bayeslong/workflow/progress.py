@@ -36,7 +36,8 @@ def describe(label: str, p: SamplingProgress, *, short: bool = False) -> str:
     """One model's status in words, e.g. ``alt: sampling, per chain 512 498 of 2000, 25%, about 40 s left``."""
     if p.stage == "compiling":
         return f"{label}: compiling" + ("" if short else " the model (a model structure's first "
-                                        "compile takes tens of seconds; later fits reuse it)")
+                                        "compile takes from tens of seconds to minutes; later "
+                                        "fits reuse it)")
     if p.stage == "done":
         return f"{label}: sampling done in {_duration(p.elapsed)}"
     total = max(p.total) if p.total else 0
