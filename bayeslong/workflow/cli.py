@@ -54,8 +54,13 @@ def _quiet_libraries() -> None:
     """Keep library chatter (PyTensor's BLAS notice) from being the first thing a user reads."""
     logging.getLogger("pytensor.tensor.blas").setLevel(logging.ERROR)
     logging.getLogger("pymc").setLevel(logging.WARNING)
-    # PyMC sets its own level when imported; a filter stays (our progress replaces its notes)
-    logging.getLogger("pymc").addFilter(lambda record: record.levelno >= logging.WARNING)
+    # PyMC adds a handler of its own that prints its notes ("Initializing NUTS ...") unless
+    # the root logger has one; ours shows only warnings, in the tool's words
+    if not logging.root.handlers:
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setLevel(logging.WARNING)
+        handler.setFormatter(logging.Formatter("warning: %(message)s"))
+        logging.root.addHandler(handler)
     # a graph rewrite that does not apply is logged at ERROR level and then skipped; it is
     # not the user's problem and does not change results
     logging.getLogger("pytensor.graph.rewriting.basic").setLevel(logging.CRITICAL)
