@@ -323,6 +323,8 @@ def _submit(pool, study, panel, cand, fits_dir, future_kwargs, say, workers, que
                   progressbar=False if queue is None else QueueForwarder(queue, cand.label))
     future = (None if future_kwargs is None
               else {**future_kwargs, "cores": 1, **({"priors": priors} if priors else {})})
+    if future is not None and queue is not None:
+        future["progressbar"] = QueueForwarder(queue, f"{cand.label} (leave-future-out refit)")
     path = fits_dir / f"{_stem(study, cand)}.nc"
     return pool.submit(_sample_job, cand.spec, panel, kwargs, str(path), future)
 
