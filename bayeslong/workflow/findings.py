@@ -401,6 +401,8 @@ def add_findings(doc, results, findings: dict | None = None) -> dict:
                  "resolved (more tuning or draws, stronger priors, or a simpler model).", "bad")
         doc.items([f"{label}: {p}" for label, p in problems], "bad")
     for line in f["text"]:
+        if problems and line.startswith("NOT CONVERGED"):
+            continue  # the banner above says it, with each problem
         loud = line.startswith("NOT CONVERGED") or line.startswith("No posterior")
         doc.para(line, "bad" if loud else ("warn" if "did not converge" in line else ""))
     doc.para(f["caution"], "note")
