@@ -28,6 +28,7 @@ from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import ConvergenceWarning, SpecError
 from bayeslong.infer.priors import PriorSet, resolve_priors
+from bayeslong.infer.progress import PymcCounter, SamplingProgress, sample_nutpie
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import Structure, structure_for
 
@@ -439,8 +440,11 @@ def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, pr
     import nutpie
     from pymc.initial_point import make_initial_point_fn
 
+    report = progressbar if callable(progressbar) else None
     compile_s = 0.0
     if "nutpie" not in entry:
+        if report is not None:
+            report(SamplingProgress(stage="compiling", sampler="nutpie"))
         t0 = time.perf_counter()
         # explicit start values for every variable: without them the initial-point function
         # draws from the LKJ block's SD distribution, which fails in nutpie 0.16
@@ -464,9 +468,17 @@ def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, pr
     # in these posteriors, which a diagonal metric cannot absorb; measured on alt (N = 500,
     # T = 6) it gave 7 times the effective sample size of the lag per fit, at fewer
     # leapfrog steps per draw (nutpie's own low-rank adaptation; bench/sampler_speed.py)
-    idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                          seed=seed, progress_bar=progressbar, init_mean=init, save_warmup=False,
-                          low_rank_modified_mass_matrix=True)
+    idata = None
+    if report is not None:  # live counts per chain for the caller (infer/progress.py)
+        try:
+            idata = sample_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
+                                  seed=seed, init_mean=init, report=report)
+        except (AttributeError, TypeError):  # another nutpie layout: sample without counts
+            idata = None
+    if idata is None:
+        idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
+                              seed=seed, progress_bar=progressbar is True, init_mean=init,
+                              save_warmup=False, low_rank_modified_mass_matrix=True)
     return idata, compile_s, time.perf_counter() - t0
 
 
@@ -479,16 +491,23 @@ def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, prog
     # draw's statistics through a pipe, and when a log-density evaluation fails at a wild
     # warm-up point (recorded as a divergence) the stored exception holds PyTensor nodes
     # that cannot be pickled, which ended whole fits ("Can't pickle local object").
+    counter = None
+    if callable(progressbar):  # draws per chain for the caller (infer/progress.py)
+        progressbar(SamplingProgress(stage="compiling", sampler="pymc"))
+        counter = PymcCounter(chains, draws + tune, progressbar)
     with model:
         pm.set_data(inputs)
         idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
-                          initvals=start, progressbar=progressbar, var_names=list(names),
-                          compute_convergence_checks=False, return_inferencedata=True)
+                          initvals=start, progressbar=progressbar is True, var_names=list(names),
+                          compute_convergence_checks=False, return_inferencedata=True,
+                          callback=counter)
+    if counter is not None:
+        counter.finish()
     return idata, 0.0, time.perf_counter() - t0
 
 
 def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4, seed: int = 1,
-        priors: dict | None = None, sampler: str = "auto", progressbar: bool = True,
+        priors: dict | None = None, sampler: str = "auto", progressbar=True,
         cores: int | None = None) -> Fit:
     """Fit ``spec`` to ``panel`` by NUTS on the marginal likelihood.
 
@@ -510,7 +529,11 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
         model, against 79 s and 71 s with PyMC's NUTS; ESS per second of the lag, compile
         included, was 101 with nutpie and 18 with PyMC. On a machine whose numba cache is
         empty nutpie's first compile takes minutes; ``sampler="pymc"`` avoids it.
-    progressbar : bool, default True
+    progressbar : bool or callable, default True
+        ``True`` shows the sampler's own progress bar, ``False`` nothing. A callable
+        receives a :class:`bayeslong.infer.progress.SamplingProgress` when compilation
+        starts, about twice a second while sampling (iterations done per chain, tuning
+        included) and when sampling ends; ``bayeslong run`` passes one that writes to stderr.
     cores : int, optional
         Chains run in parallel (default: min(chains, CPU count)); each uses one BLAS thread.
 

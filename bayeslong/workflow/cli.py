@@ -24,7 +24,9 @@ import json
 import logging
 import shutil
 import sys
+import textwrap
 import time
+import warnings
 from pathlib import Path
 
 from bayeslong.errors import BayeslongError, SpecError
@@ -53,6 +55,13 @@ def _quiet_libraries() -> None:
     """Keep library chatter (PyTensor's BLAS notice) from being the first thing a user reads."""
     logging.getLogger("pytensor.tensor.blas").setLevel(logging.ERROR)
     logging.getLogger("pymc").setLevel(logging.WARNING)
+    # PyMC adds a handler of its own that prints its notes ("Initializing NUTS ...") unless
+    # the root logger has one; ours shows only warnings, in the tool's words
+    if not logging.root.handlers:
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setLevel(logging.WARNING)
+        handler.setFormatter(logging.Formatter("warning: %(message)s"))
+        logging.root.addHandler(handler)
     # a graph rewrite that does not apply is logged at ERROR level and then skipped; it is
     # not the user's problem and does not change results
     logging.getLogger("pytensor.graph.rewriting.basic").setLevel(logging.CRITICAL)
@@ -150,19 +159,28 @@ def cmd_identify(args) -> int:
 
 
 def _run(args, *, fit: bool) -> int:
+    from bayeslong.workflow.findings import study_findings
+    from bayeslong.workflow.progress import ProgressReporter
     from bayeslong.workflow.report import write_report
     from bayeslong.workflow.runner import run_study
 
     study = _load(args)
-    progress = None if args.quiet else (lambda m: _say(f"[bayeslong] {m}"))
-    results = run_study(study, fit=fit, progress=progress, quiet_sampler=args.quiet,
-                        strict=args.debug)
+    # live progress on stderr: a status line rewritten in place on a terminal, plain lines
+    # otherwise (workflow/progress.py); --quiet silences it and the sampler's own bar
+    live = None if args.quiet else ProgressReporter(sys.stderr)
+    try:
+        results = run_study(study, fit=fit, progress=None if live is None else live.line,
+                            quiet_sampler=args.quiet, strict=args.debug, live=live)
+    finally:
+        if live is not None:
+            live.close()
     t0 = time.perf_counter()
     paths = write_report(results, study.output)
     report_s = time.perf_counter() - t0
     summary = results.to_dict()
     summary["report"] = {k: str(v) for k, v in paths.items()}
     summary["stages"].append({"step": "report", "seconds": round(report_s, 1), "detail": ""})
+    summary["findings"] = findings = study_findings(results)
     if args.json:
         _print_json(summary)
     else:
@@ -175,6 +193,9 @@ def _run(args, *, fit: bool) -> int:
         if bad:
             _say("[bayeslong] WARNING: convergence problems in " + ", ".join(bad)
                  + " (see the red banner in the report)")
+        print("Findings:")  # the answer, on stdout (progress went to stderr)
+        for line in findings["text"] + [findings["caution"]]:
+            print(textwrap.fill(line, width=92, initial_indent="- ", subsequent_indent="  "))
     return OK
 
 
@@ -416,6 +437,8 @@ def main(argv=None) -> int:
     except SystemExit as exc:  # argparse: --help exits 0, usage errors exit 2
         return int(exc.code or 0)
     _quiet_libraries()
+    shown = warnings.showwarning
+    warnings.showwarning = _show_warning
     try:
         return args.func(args)
     except (BayeslongError, OSError) as err:
@@ -429,6 +452,14 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("interrupted; finished fits are saved and will be reused", file=sys.stderr)
         return 130
+    finally:
+        warnings.showwarning = shown
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """A warning as one line in the tool's words: ``warning: <message>`` (no source line)."""
+    text = " ".join(str(message).split())
+    print(f"warning: {text}", file=file if file is not None else sys.stderr, flush=True)
 
 
 if __name__ == "__main__":  # pragma: no cover

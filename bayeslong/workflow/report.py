@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.workflow.findings import add_findings, add_manuscript_text
 from bayeslong.workflow.results import slug, table_of
 
 __all__ = ["write_report"]
@@ -274,11 +275,7 @@ def _section_header(doc: _Doc, results) -> None:
               "ml-fallback": "MAXIMUM LIKELIHOOD ONLY: the Bayesian fit module is not installed"}
     doc.para(f"Study file {study.source.name}, run {results.started}, "
              f"{results.seconds:.0f} s. Method: {method[results.method]}.")
-    problems = [(m.label, p) for m in results.models for p in m.problems]
-    if problems:
-        doc.para("Convergence problems: do not interpret the affected models until they are "
-                 "resolved (more tuning or draws, stronger priors, or a simpler model).", "bad")
-        doc.items([f"{label}: {p}" for label, p in problems], "bad")
+    add_findings(doc, results)  # the answer first; convergence problems are said there
     if results.method == "ml-fallback":
         doc.para("This run fell back to maximum likelihood because bayeslong.fit is not "
                  "available: there are no posteriors, LOO, WAIC or predictive checks below.", "bad")
@@ -669,11 +666,14 @@ def write_report(results, folder) -> dict[str, Path]:
 
     Notes
     -----
-    Sections: what was run (red banners for non-convergence, unidentified models and a
-    maximum-likelihood fallback), data and missingness, each candidate (spec, priors,
-    posterior summary, diagnostics), the comparison with a plain-language reading,
-    posterior predictive checks, lag sensitivity, identification, software versions and
-    seeds, and a caution. A step that did not run says so and why.
+    Sections: the findings first (the best-predicting model by LOO and leave-future-out,
+    its lag with a 90% interval, the lag's range over the sensitivity settings, red
+    banners for non-convergence, and the caution; :mod:`bayeslong.workflow.findings`),
+    what was run (banners for unidentified models and a maximum-likelihood fallback), data
+    and missingness, each candidate (spec, priors, posterior summary, diagnostics), the
+    comparison with a plain-language reading, posterior predictive checks, lag
+    sensitivity, a methods and a results paragraph for a manuscript, identification,
+    software versions and seeds, and a caution. A step that did not run says so and why.
     """
     import matplotlib
 
@@ -687,6 +687,7 @@ def write_report(results, folder) -> dict[str, Path]:
     _section_comparison(doc, results)
     _section_checks(doc, results)
     _section_sensitivity(doc, results)
+    add_manuscript_text(doc, results)
     _section_identification(doc, results)
     _section_reproducibility(doc, results)
     _section_caution(doc)

@@ -26,6 +26,7 @@ from bayeslong.workflow.results import (
     slug,
     table_of,
 )
+from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.steps import saved_step, step_path, timed_step
 from bayeslong.workflow.study_file import (
     Candidate,
@@ -95,7 +96,7 @@ def _priors_for(study: Study, spec, panel) -> dict:
 
 def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None] | None = _stderr,
               quiet_sampler: bool = False, strict: bool = False,
-              workers: int | None = None) -> StudyResults:
+              workers: int | None = None, live=None) -> StudyResults:
     """Carry out a study: intake, identification, fits, comparison, checks, sensitivity.
 
     Parameters
@@ -115,6 +116,9 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     workers : int, optional
         Overrides ``sampling.workers`` of the study file (0: one per CPU core; 1: sample in
         this process, which needs no ``if __name__ == "__main__":`` guard in a script).
+    live : bayeslong.workflow.progress.ProgressReporter, optional
+        Shows each fit's compilation and draws per chain as it samples (also in worker
+        processes); replaces the sampler's own progress bar.
 
     Returns
     -------
@@ -134,6 +138,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     leave-future-out refit, which reuses the model compiled there. Steps whose module is not installed, or that fail, are recorded as "not run"
     with the reason instead of stopping the run; convergence problems are recorded per model.
     """
+    import contextlib
     import datetime
 
     say = progress or (lambda message: None)
@@ -183,24 +188,27 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     models = []
     fitted = reused = 0
     t_fits = time.perf_counter()
+    stack = contextlib.ExitStack()
     try:
         if workers > 1:
+            queue = stack.enter_context(live.listening()) if live is not None else None
             pool = _pool(workers)
             future_kwargs = _future_kwargs(study, panel, fits_dir)
             for i, cand in enumerate(study.models, start=1):
                 if cand.label in to_sample:
                     jobs[cand.label] = _submit(pool, study, panel, cand, fits_dir, future_kwargs,
-                                               tell(i), workers)
+                                               tell(i), workers, queue)
         for i, cand in enumerate(study.models, start=1):
             result, did_fit = _run_candidate(study, panel, cand, fit_module, fits_dir, fit=fit,
                                              say=tell(i), quiet_sampler=quiet_sampler,
-                                             strict=strict, job=jobs.get(cand.label))
+                                             strict=strict, job=jobs.get(cand.label), live=live)
             fitted += did_fit == "fitted"
             reused += did_fit == "reused"
             models.append(result)
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+        stack.close()
     fits_s = time.perf_counter() - t_fits
     if reused:
         say(f"reused {reused} saved fit{'s' if reused != 1 else ''} (unchanged study, data "
@@ -209,7 +217,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
 
     comparison, future = _compare(study, panel, models, method, say, strict, scores)
     models = [_check(study, panel, m, say, strict) for m in models]
-    sensitivity = _sensitivity(study, panel, models, method, say, strict)
+    sensitivity = _sensitivity(study, panel, models, method, say, strict, show=live is not None)
     stages = [("intake", intake_s, f"{panel.n_units} units, {panel.n_waves} waves")]
     if jobs:
         stages.append(("candidates (all)", fits_s,
@@ -305,15 +313,18 @@ def _future_kwargs(study, panel, fits_dir: Path) -> dict | None:
     return {**_fit_settings(study), "progressbar": False}
 
 
-def _submit(pool, study, panel, cand, fits_dir, future_kwargs, say, workers):
+def _submit(pool, study, panel, cand, fits_dir, future_kwargs, say, workers, queue=None):
     s = study.sampling
     say(f"{cand.label}: sampling {s['chains']} chains x {s['draws']} draws (+{s['tune']} "
         f"tuning) in one of {workers} worker processes")
     priors = _priors_for(study, cand.spec, panel) or None
     # in a worker the pool is the parallelism: the chains run one after another there
-    kwargs = dict(_fit_settings(study), priors=priors, progressbar=False, cores=1)
+    kwargs = dict(_fit_settings(study), priors=priors, cores=1,
+                  progressbar=False if queue is None else QueueForwarder(queue, cand.label))
     future = (None if future_kwargs is None
               else {**future_kwargs, "cores": 1, **({"priors": priors} if priors else {})})
+    if future is not None and queue is not None:
+        future["progressbar"] = QueueForwarder(queue, f"{cand.label} (leave-future-out refit)")
     path = fits_dir / f"{_stem(study, cand)}.nc"
     return pool.submit(_sample_job, cand.spec, panel, kwargs, str(path), future)
 
@@ -346,7 +357,7 @@ def _sample_job(spec, panel, kwargs: dict, path: str, future_kwargs: dict | None
 
 
 def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler,
-                   strict, job=None):
+                   strict, job=None, live=None):
     """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened).
 
     ``job`` is the future of the candidate's sampling in a worker process (see
@@ -425,7 +436,8 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
             try:
                 kwargs = dict(_fit_settings(study),
                               priors=_priors_for(study, cand.spec, panel) or None,
-                              progressbar=not quiet_sampler)
+                              progressbar=(live.for_model(cand.label) if live is not None
+                                           else not quiet_sampler))
                 with warnings.catch_warnings():
                     # convergence problems are recorded (and shown) below, once
                     warnings.simplefilter("ignore", _convergence_warning())
@@ -625,7 +637,7 @@ def _check(study, panel, m: ModelResult, say, strict=False) -> ModelResult:
     return dataclasses.replace(m, check=step)
 
 
-def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
+def _sensitivity(study, panel, models, method, say, strict=False, show=False) -> Step:
     """Lag sensitivity along the axes the study turns on."""
     axes = [k for k, on in study.sensitivity.items() if on]
     if not axes:
@@ -661,7 +673,7 @@ def _sensitivity(study, panel, models, method, say, strict=False) -> Step:
                               variance_scales=None if on["prior_grid"] else False,
                               initial=on["initial"], specification=on["specification"],
                               power_scaling=on["power_scaling"], fit_kwargs=fit_kwargs,
-                              priors=study.priors, fits=fits),
+                              priors=study.priors, fits=fits, progress=show),
                           say, message),
                   "lag sensitivity", say, strict)
 

@@ -367,6 +367,9 @@ def test_worker_processes_give_the_fits_and_forecasts_of_a_run_in_one_process(tm
         tables[workers] = out["comparison"]["table"]
         if workers == 2:
             assert "in one of 2 worker processes" in captured.err
+            # the workers' progress reaches this process's stderr (through a queue)
+            assert "ar: sampling done in" in captured.err
+            assert "ar (leave-future-out refit): sampling done in" in captured.err
             assert "candidates (all)" in [s["step"] for s in out["stages"]]
     for name in ("ar", "linear-growth"):
         for column in ("elpd_loo", "elpd_waic", "elpd_lfo", "se_lfo"):

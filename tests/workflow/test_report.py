@@ -186,6 +186,99 @@ def test_loo_reading_follows_the_two_se_rule(diff, dse, verdict):
     assert verdict in line
 
 
+def _findings_results(folder: Path) -> StudyResults:
+    """Two candidates with normal-approximation posteriors and their real comparison."""
+    from bayeslong.evaluate.comparison import compare
+    from bayeslong.infer.laplace import approximate_fit
+
+    rng = np.random.default_rng(8)
+    n, t = 80, 5
+    y = np.empty((n, t))
+    y[:, 0] = rng.normal(size=n)
+    for w in range(1, t):  # AR(1), lag 0.6 (NumPy)
+        y[:, w] = 0.6 * y[:, w - 1] + rng.normal(size=n)
+    pd.DataFrame({"id": np.repeat(np.arange(n), t), "w": np.tile(np.arange(t), n),
+                  "y": y.ravel()}).to_csv(folder / "ar.csv", index=False)
+    (folder / "ar.toml").write_text("""
+title = "findings"
+[data]
+path = "ar.csv"
+unit = "id"
+wave = "w"
+outcomes = ["y"]
+[[models]]
+model = "ar"
+label = "lag only"
+[[models]]
+model = "linear-growth"
+label = "growth only"
+""")
+    study = load_study(folder / "ar.toml")
+    panel = study.panel()
+    models, fits = [], {}
+    for cand in study.models:
+        fit = approximate_fit(cand.spec, panel, draws=400, chains=2, seed=3)
+        fits[cand.label] = fit
+        models.append(ModelResult(candidate=cand, key=cand.label[:4], fit=fit,
+                                  check=Step.skipped("not requested")))
+    table = compare(fits)
+    return StudyResults(study=study, panel=panel, models=tuple(models),
+                        comparison=Step(ran=True, value=table), versions=software_versions(),
+                        started="2026-12-01 00:00 UTC")
+
+
+@pytest.fixture(scope="module")
+def rendered_findings(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("findings")
+    results = _findings_results(folder)
+    paths = write_report(results, folder / "out")
+    return results, paths, paths["html"].read_text(encoding="utf-8")
+
+
+def _expected_findings(results) -> tuple[str, str]:
+    """The best model by LOO and the lag's 90% interval, computed here from the draws."""
+    table = results.comparison.value
+    best = str(table["elpd_loo"].idxmax())  # reference: the table's own scores
+    lag = results.models[0].fit.idata.posterior["lag"].values.ravel()
+    lo, hi = np.quantile(lag, [0.05, 0.95])  # the central 90% of the draws (NumPy)
+    return best, f"90% interval {lo:.2f} to {hi:.2f}"
+
+
+def test_findings_are_the_first_section_and_name_the_best_model_and_lag(rendered_findings):
+    results, paths, page = rendered_findings
+    best, interval = _expected_findings(results)
+    first_h2 = page.index("<h2")
+    assert page[first_h2:].startswith('<h2 id="findings">Findings</h2>')
+    findings = page[first_h2:page.index("<h2", first_h2 + 1)]
+    assert f"{best} predicts best a new unit" in findings
+    assert interval in findings
+    assert "Prediction is not causation" in findings
+    assert "No fit is flagged" not in findings or not any(m.problems for m in results.models)
+    md = paths["markdown"].read_text(encoding="utf-8")
+    assert [line for line in md.splitlines() if line.startswith("## ")][0] == "## Findings"
+    # the methods text is written from the run: the comparison ran, leave-future-out did not
+    assert "PSIS-LOO" in page and "Vehtari, A., Gelman, A. &amp; Gabry, J. (2017)" in page
+    assert "leave-future-out" not in page[page.index('id="manuscript"'):page.index('id="identification"')]
+
+
+def test_findings_read_a_difference_under_two_se_as_no_clear_preference(tmp_path):
+    import dataclasses
+
+    from bayeslong.workflow.findings import study_findings
+
+    base = _results(tmp_path)
+    # rule of thumb (common practice; Sivula, Magnusson & Vehtari 2020): 3.0 < 2 x 2.0
+    table = pd.DataFrame({"elpd_loo": [-10.0, -13.0, -40.0], "elpd_diff": [0.0, 3.0, 30.0],
+                          "dse": [0.0, 2.0, 5.0]}, index=pd.Index(["a", "b", "c"], name="model"))
+    f = study_findings(dataclasses.replace(base, comparison=Step(ran=True, value=table)))
+    assert f["best_loo"]["model"] == "a"
+    assert [(o["model"], o["clear"]) for o in f["best_loo"]["others"]] == [("b", False), ("c", True)]
+    assert f["text"][0] == ("a predicts best a new unit's trajectory (PSIS-LOO), clearly better "
+                            "than c (difference 30.0, SE 5.0), but not clearly better than b "
+                            "(difference 3.0, SE 2.0): a difference smaller than 2 standard "
+                            "errors of the difference is no clear preference.")
+
+
 CHROMIUM = Path("/usr/bin/chromium")  # Debian's package (apt-get install chromium)
 
 
@@ -237,6 +330,22 @@ def test_report_opens_in_headless_chromium_without_console_errors(rendered, tmp_
     assert "Lag sensitivity" in dom  # the DOM was rendered
     assert EVIL_COLUMN not in dom  # still escaped after parsing
     assert dom.count('src="data:image/png;base64,') >= 1  # figures embedded, nothing fetched
+
+
+@pytest.mark.skipif(not CHROMIUM.exists(), reason="/usr/bin/chromium is not installed here")
+def test_findings_come_first_in_the_rendered_page(rendered_findings, tmp_path):
+    results, paths, _ = rendered_findings
+    best, interval = _expected_findings(results)
+    code, console, dom = _open_in_chromium(paths["html"], tmp_path / "profile")
+    assert code == 0 and console == []
+    parser = _Collector()
+    parser.feed(dom)
+    h2 = [attrs.get("id") for tag, attrs in parser.tags if tag == "h2"]
+    assert h2[0] == "findings"  # the first section of the page as the browser built it
+    text = " ".join(" ".join(parser.text).split())
+    start = text.index("Findings")
+    findings = text[start:text.index("What was run", start)]
+    assert f"{best} predicts best" in findings and interval in findings
 
 
 @pytest.mark.parametrize("d_aic, verdict", [(1.5, "about equally supported"),
