@@ -332,7 +332,7 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
              "pymc": f"PyMC {results.versions.get('pymc', '')}".strip()}.get(s, s)
             for s in facts["samplers"]) or "NUTS"
         t = facts["thresholds"]
-        m.append(f"Posteriors were sampled with the No-U-Turn sampler "
+        m.append("Posteriors were sampled with the No-U-Turn sampler "
                  + cite("nuts", "(Hoffman & Gelman 2014)") + f" in {samplers}: "
                  f"{facts['chains']} chains of {facts['draws']} draws after "
                  f"{study.sampling['tune']} warm-up iterations each (seed {study.sampling['seed']}). "
