@@ -231,3 +231,71 @@ def loglik_function(structure):
     compiles it the same way); tests hold both to ``scipy.stats.multivariate_normal``.
     """
     return partial(loglik_and_grad, structure)
+
+
+def _nonlinear_parameters(structure) -> np.ndarray:
+    # parameters in B or Lam: the only ones the moments are not linear in (a, G, Psi, nu
+    # and Theta enter linearly, and two of them never multiply each other)
+    idx = np.concatenate([structure.matrices[m].index.ravel() for m in ("B", "Lam")])
+    return np.unique(idx[idx >= 0])
+
+
+def loglik_grad_hessian(structure, theta, counts, cross, masks):
+    """``(loglik, gradient, Hessian)`` at ``theta``: the exact observed information, in NumPy.
+
+    The Hessian is the chain rule's two parts,
+
+        H = (first moment derivatives)' (Hessian of the likelihood in the moments) (same)
+            + sum_j dL/dm_j d2 m_j / dtheta dtheta'.
+
+    The first part is analytic: for a pattern with W = Sigma_oo^-1, R = A M A', and moment
+    derivatives S_k = dSigma_k, A_k = [-dc_k, -dD_k, 0] (Magnus & Neudecker 1999, ch. 15),
+
+        H_kl = n/2 tr(W S_l W S_k) - tr(W S_l W S_k W R) + tr(W S_k W A_l M A')
+               + tr(W S_l W A_k M A') - tr(W A_k M A_l'),
+
+    whose expectation is minus the expected information. The second part is non-zero only
+    in the rows and columns of parameters in B or Lam (the moments are linear in all
+    others, which never multiply each other): central differences of the exact
+    (complex-step) gradient of sum_j dL/dm_j m_j(theta) in those directions. So the exact
+    Hessian costs a few gradients, not two per parameter. ``(-inf, None, None)`` where
+    the likelihood is not defined.
+    """
+    from bayeslong.model.moments import moment_jacobian
+
+    (c, D, Sigma), (dc, dD, dS) = moment_jacobian(structure, theta)
+    loglik, gc, gD, gS = loglik_terms(c, D, Sigma, counts, cross, masks)
+    if not np.isfinite(loglik):
+        return -np.inf, None, None
+    grad = dc @ gc + np.einsum("pyw,yw->p", dD, gD) + np.einsum("pyz,yz->p", dS, gS)
+    _, W, R, AM = _pattern_parts(c, D, Sigma, counts, cross, masks)
+    k, n_y = len(theta), Sigma.shape[0]
+    Ak = np.concatenate([-dc[..., None], -dD, np.zeros((k, n_y, n_y))], axis=-1)  # (p, Y, U)
+    H = np.zeros((k, k))
+    for p_ in range(len(counts)):
+        Wp = W[p_]
+        WS = Wp @ dS  # (p, Y, Y)
+        flat = WS.reshape(k, -1)
+        flat_t = WS.transpose(0, 2, 1).reshape(k, -1)
+        H += 0.5 * counts[p_] * flat @ flat_t.T
+        H -= flat @ (WS @ (Wp @ R[p_])).transpose(0, 2, 1).reshape(k, -1).T
+        Z = Wp @ (Ak @ AM[p_].T)  # W A_l M A', (p, Y, Y)
+        T3 = flat @ Z.transpose(0, 2, 1).reshape(k, -1).T  # tr(W S_k Z_l)
+        H += T3 + T3.T
+        H -= (Wp @ Ak @ cross[p_]).reshape(k, -1) @ Ak.reshape(k, -1).T
+    weights = (gc, gD, gS)
+    second = np.zeros((k, k))  # sum_j dL/dm_j d2 m_j, set (not added) row and column-wise
+    for j in _nonlinear_parameters(structure):
+        h = 1e-5 * max(abs(theta[j]), 1e-2)
+        cols = []
+        for sign in (1.0, -1.0):
+            shifted = np.array(theta, dtype=float)
+            shifted[j] += sign * h
+            _, (ec, eD, eS) = moment_jacobian(structure, shifted)
+            cols.append(ec @ weights[0] + np.einsum("pyw,yw->p", eD, weights[1])
+                        + np.einsum("pyz,yz->p", eS, weights[2]))
+        col = (cols[0] - cols[1]) / (2 * h)
+        second[:, j] = col
+        second[j, :] = col
+    H += 0.5 * (second + second.T)
+    return float(loglik), grad, 0.5 * (H + H.T)
