@@ -35,6 +35,9 @@ from bayeslong.infer.likelihood import (
 )
 from bayeslong.model.moments import moments_at
 
+CREEP = ("Newton's method slowed to a creep (a flat ridge, or a variance heading to zero "
+         "with the likelihood nearly flat there)")
+
 #: Newton decrement g' H^-1 g (log-likelihood units) below which a run has converged.
 DECREMENT_TOL = 1e-8
 
@@ -102,32 +105,114 @@ def _trust_step(M, g, radius):
     return step / d, decrement, flat, lowest, float(np.linalg.norm(step))
 
 
-def _positive_definite(tr, theta) -> bool:
-    for idx, *_ in tr.blocks:
-        try:
-            np.linalg.cholesky(theta[idx])
-        except np.linalg.LinAlgError:
-            return False
-    return True
+def _project(tr, theta):
+    """``theta`` with each covariance block moved to the nearest positive semi-definite
+    matrix in the Frobenius norm (its negative eigenvalues set to zero; Higham, N. J.
+    1988, Computing a nearest symmetric positive semidefinite matrix, Linear Algebra and
+    its Applications 103, 103-118)."""
+    theta = np.array(theta, dtype=float)
+    for idx, rows, cols, slots in tr.blocks:
+        w, V = np.linalg.eigh(theta[idx])
+        if w.min() < 0:
+            theta[slots] = ((V * np.maximum(w, 0.0)) @ V.T)[rows, cols]
+    return theta
 
 
-def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int = 20,
+def _small_pivots(tr, u, threshold: float = 1e-2) -> list[int]:
+    """Slots of u of the pivots whose face a nearly singular block is heading to.
+
+    A block of rank one less has a null vector v; its zero pivot is that of the last
+    variable in v (the leading sub-block up to it is the first singular one). Near
+    singular means an eigenvalue of the block's correlation matrix under ``threshold``
+    (the variances themselves can differ by orders of magnitude, e.g. a slope's and a
+    level's). Smallest eigenvalue first.
+    """
+    found = []
+    for idx, rows, cols, slots in tr.blocks:
+        L = tr.factor(u[slots], rows, cols, len(idx))
+        S = L @ L.T
+        sd = np.sqrt(np.maximum(np.diag(S), 1e-300))
+        w, V = np.linalg.eigh(S / np.outer(sd, sd))
+        for k in np.flatnonzero(w < threshold):
+            # short of the limit, v's small entries are not yet zero: try the last clear
+            # entry's pivot first, then the last non-negligible one's
+            for share in (0.1, 1e-2):
+                d = int(np.flatnonzero(np.abs(V[:, k]) > share * np.abs(V[:, k]).max())[-1])
+                found.append((w[k], int(slots[(rows == d) & (cols == d)][0])))
+    return list(dict.fromkeys(slot for _, slot in sorted(found, key=lambda x: x[0])))
+
+
+def maximise(structure, f, u, data, tr, *, max_iter: int = 60, exact_after: int = 20,
              tol: float = DECREMENT_TOL) -> dict:
-    """Maximise the log-likelihood in the Cholesky coordinates ``u`` of ``tr``.
+    """Maximise the log-likelihood from ``u``, in the Cholesky coordinates of ``tr``.
+
+    A run of :func:`_newton` first. When it has not converged and a block is close to
+    singular, the maximum may be on the boundary with a Lagrange multiplier near zero:
+    there the log-likelihood is quartic, not quadratic, in the pivot, and Newton's method
+    only creeps towards it. Then the face with that pivot held at zero is maximised (a
+    smooth problem of its own: the block of one rank less), and the unrestricted method
+    restarts from the face's maximum; it accepts it at once when it is a maximum of the
+    whole problem (gradient zero and curvature negative semi-definite in every Cholesky
+    coordinate: the Karush-Kuhn-Tucker conditions of the semi-definite constraint) and
+    otherwise leaves the face uphill. The best end point counts.
+
+    Returns a dict: ``u``, ``theta``, ``loglik``, ``converged``, ``decrement``,
+    ``iterations``, ``hessian`` (exact Hessian in theta at the end, or None) and
+    ``reason`` (why it stopped, in words).
+    """
+    run = _newton(structure, f, u, data, tr, max_iter=max_iter, exact_after=exact_after,
+                  tol=tol, creep=True)
+    used, tried = run["iterations"], set()
+    while not run["converged"] and np.isfinite(run["loglik"]) and used < 4 * max_iter:
+        for slot in [p for p in _small_pivots(tr, run["u"]) if p not in tried][:3]:
+            tried.add(slot)
+            fixed = np.zeros(len(u), dtype=bool)
+            fixed[slot] = True
+            start = run["u"].copy()
+            start[slot] = 0.0
+            face = _newton(structure, f, start, data, tr, max_iter=max_iter, exact_after=0,
+                           tol=tol, fixed=fixed)
+            used += face["iterations"]
+            if not np.isfinite(face["loglik"]):
+                continue
+            full = _newton(structure, f, face["u"], data, tr, max_iter=max_iter, exact_after=0,
+                           tol=tol, creep=True)
+            used += full["iterations"]
+            if full["converged"] and full["loglik"] >= run["loglik"] - 1e-6:
+                full["iterations"] = used
+                return full
+        if run["reason"] != CREEP:
+            break  # the run ended for another reason than creeping: no use going on
+        # no face was the maximum: the run goes on where it stopped (and may creep again,
+        # closer to the face it heads for)
+        more = _newton(structure, f, run["u"], data, tr, max_iter=max_iter, exact_after=0,
+                       tol=tol, creep=True)
+        used += more["iterations"]
+        run = more if more["loglik"] >= run["loglik"] else run
+        if more is not run:
+            break
+    run["iterations"] = used
+    return run
+
+
+def _newton(structure, f, u, data, tr, *, max_iter: int, exact_after: int, tol: float,
+            fixed=None, creep: bool = False) -> dict:
+    """Trust-region Newton's method in the Cholesky coordinates ``u`` of ``tr``.
 
     The curvature in u is M = J' I(theta) J - C, with J = d theta / d u, I the expected
     information (Fisher scoring) and C = sum_k g_k d2 theta_k / du du'
     (:meth:`~bayeslong.model.transform.Cholesky.curvature`); once the decrement falls
     below 1, the scoring steps stop shrinking it by at least a factor 3, or after
-    ``exact_after`` iterations, I is replaced by the exact negative Hessian (central
-    differences of the analytic gradient) for the rest of the run. Converged when, at the
-    exact Hessian, M is positive semi-definite (relative tolerance 1e-6), the Newton
-    decrement is below ``tol`` and the gradient along M's null directions (a zero pivot's
-    free rotation) is below 1e-6: the first- and second-order conditions of a maximum.
-
-    Returns a dict: ``u``, ``theta``, ``loglik``, ``converged``, ``decrement``,
-    ``iterations``, ``hessian`` (exact Hessian in theta at the end, or None) and
-    ``reason`` (why it stopped, in words).
+    ``exact_after`` iterations, I is replaced by the exact observed information
+    (:func:`~bayeslong.infer.likelihood.loglik_grad_hessian`) for the rest of the run.
+    Before each trust-region step in u, Newton's step in the natural parameters is tried
+    (see ``natural_step``). Converged when, at the exact Hessian, M is positive
+    semi-definite (relative tolerance 1e-6), the Newton decrement is below ``tol`` and the
+    gradient along M's null directions (a zero pivot's free rotation) is below 1e-6: the
+    first- and second-order conditions of a maximum. Coordinates marked in ``fixed`` stay
+    where they are (a face of the boundary). With ``creep``, the run stops early when
+    Newton's method has lost its pace (after 12 exact iterations and close to a maximum,
+    the decrement below 1 has not fallen by a factor 100 over the last 6), for :func:`maximise` to try the faces.
     """
     def value(theta):
         c, D, S = moments_at(structure, theta)
@@ -135,26 +220,37 @@ def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int
             return float(np.sum(pattern_values(c, D, S, *data)))
 
     def natural_step(uu, ll, g_theta, info):
-        # Newton's (or scoring's) step in the natural parameters, halved at most twice,
-        # kept when every covariance block stays positive definite and the likelihood
-        # rises by a tenth of the gain the quadratic model predicts. In theta the
-        # covariance parameters enter Sigma linearly, so a curved valley of the Cholesky
-        # coordinates near a small pivot is straight here (measured: 150 creeping
-        # trust-region steps in u, where this step crosses the valley at once).
+        # Newton's (or scoring's) step in the natural parameters, halved at most twice;
+        # a covariance block it leaves outside the positive semi-definite cone is
+        # projected back onto it (negative eigenvalues set to zero: the nearest such
+        # matrix, Higham 1988), which lands on the boundary face the step points to. Kept
+        # when the likelihood rises by a tenth of what the quadratic model predicts for
+        # the projected step. In theta the covariance parameters enter Sigma linearly, so
+        # a curved valley of the Cholesky coordinates near a small pivot is straight here
+        # (measured: 150 creeping trust-region steps in u, where this step crossed the
+        # valley at once).
+        theta0 = tr.to_natural(uu)
         try:
             chol = np.linalg.cholesky(info)
         except np.linalg.LinAlgError:
-            return None
+            # the observed information is indefinite here: scoring's expected information
+            # (positive definite for an identified model) gives the direction instead
+            with np.errstate(all="ignore"):
+                info = loglik_grad_information(structure, theta0, *data)[2]
+            try:
+                chol = np.linalg.cholesky(info)
+            except (np.linalg.LinAlgError, ValueError):
+                return None
         s = np.linalg.solve(chol.T, np.linalg.solve(chol, g_theta))
-        full = float(g_theta @ s)
-        theta0 = tr.to_natural(uu)
         for t in (1.0, 0.5, 0.25):
-            theta = theta0 + t * s
-            if not _positive_definite(tr, theta):
+            theta = _project(tr, theta0 + t * s)
+            delta = theta - theta0
+            model = float(g_theta @ delta - 0.5 * delta @ info @ delta)
+            if not model > 0:
                 continue
-            gain = value(theta) - ll
-            if np.isfinite(gain) and gain >= 0.1 * t * (1.0 - 0.5 * t) * full:
-                return tr.from_natural(theta)
+            new = value(theta)
+            if np.isfinite(new) and new - ll >= 0.1 * model:
+                return tr.from_natural(theta), new
         return None
 
     def curvature(uu, exact):
@@ -170,8 +266,16 @@ def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int
             return None
         J = tr.jacobian(uu)
         M = J.T @ info @ J - tr.curvature(g)
-        return float(ll), J.T @ g, 0.5 * (M + M.T), H, g, info
+        gu = J.T @ g
+        if held:
+            # held coordinates: no gradient, unit curvature, so no step moves them
+            gu[fixed] = 0.0
+            M[fixed, :] = 0.0
+            M[:, fixed] = 0.0
+            M[fixed, fixed] = 1.0
+        return float(ll), gu, 0.5 * (M + M.T), H, g, info
 
+    held = fixed is not None and bool(np.any(fixed))
     out = {"u": u, "theta": tr.to_natural(u), "loglik": -np.inf, "converged": False,
            "decrement": np.inf, "iterations": 0, "hessian": None,
            "reason": "the log-likelihood is not defined at the start"}
@@ -180,7 +284,7 @@ def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int
     if state is None:
         return out
     ll, g, M, H, g_theta, info = state
-    radius, previous = None, None
+    radius, previous, history = None, None, []
     reason = f"no convergence within {max_iter} iterations"
     for it in range(max_iter):
         out.update(u=u, loglik=ll, iterations=it, hessian=H)
@@ -192,6 +296,11 @@ def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int
             out["converged"] = True
             reason = "converged"
             break
+        if exact:
+            history.append(decrement)
+            if creep and len(history) >= 12 and history[-1] < 1.0 and history[-1] > 1e-2 * history[-7]:
+                reason = CREEP
+                break
         if not exact and (decrement < 1.0 or it >= exact_after
                           or (previous is not None and decrement > previous / 3.0)):
             exact = True
@@ -201,31 +310,33 @@ def maximise(structure, f, u, data, tr, *, max_iter: int = 150, exact_after: int
                 break
             ll, g, M, H, g_theta, info = state
             continue
-        moved = natural_step(u, ll, g_theta, info)
-        if moved is not None:
-            u, previous = moved, decrement
-            state = curvature(u, exact)
-            if state is None:
-                reason = "the curvature could not be computed at the new point"
-                break
-            ll, g, M, H, g_theta, info = state
-            continue
+        # two candidates: Newton's step in the natural parameters and the trust-region
+        # step in u; the higher log-likelihood wins (one cheap evaluation each)
+        moved = None if held else natural_step(u, ll, g_theta, info)
         predicted = float(g @ step - 0.5 * step @ M @ step)
         new_ll = value(tr.to_natural(u + step))
         gain = new_ll - ll if np.isfinite(new_ll) else -np.inf
         rho = gain / predicted if predicted > 0 else (1.0 if gain >= 0 else -1.0)
         if rho < 0.25:
             radius = 0.25 * length
-        elif rho > 0.75 and length > 0.9 * radius:
+        elif length > 0.9 * radius and (rho > 0.75 or step @ M @ step <= 0):
+            # a good model, or a step along negative curvature that still gained a
+            # quarter of its promise (the likelihood is no longer curved there, so the
+            # region's size, not the model, limits the step): widen the region
             radius = min(4.0 * radius, 1e8)
-        if not (rho > 1e-4 or (gain >= 0 and predicted < 1e-12 * max(1.0, abs(ll)))):
+        ok = rho > 1e-4 or (gain >= 0 and predicted < 1e-12 * max(1.0, abs(ll)))
+        if moved is not None and not (ok and gain > moved[1] - ll):
+            target = moved[0]
+        elif ok:
+            target = u + step
+        else:
             if radius < 1e-10:
                 reason = ("stalled: no step, however short, raised the log-likelihood (the "
                           "curvature is not a guide here: a ridge or the edge of the region "
                           "where the implied covariance is positive definite)")
                 break
             continue
-        u, previous = u + step, decrement
+        u, previous = target, decrement
         state = curvature(u, exact)
         if state is None:
             reason = "the curvature could not be computed at the new point"
