@@ -5,13 +5,16 @@ plain Cholesky coordinates (:class:`bayeslong.model.transform.Cholesky`), so a v
 zero is an interior point and a maximum there is an ordinary stationary point. The
 curvature is the expected information while far from the maximum (Fisher scoring: cheap
 and positive semi-definite in the natural parameters) and the exact Hessian close to it
-(so a misspecified model, where the two differ, still converges quadratically). Steps are
-trust-region steps on the eigen-decomposition of the curvature, so an indefinite or
-singular curvature (a saddle, a flat ridge, a zero pivot's free rotation) still gives an
-uphill step of controlled length. Convergence is judged by the Newton decrement
-g' H^-1 g, which is scale-free (it is twice the gain the quadratic model still promises),
-not by the size of the steps, which along a flat ridge stay large while the
-log-likelihood no longer changes.
+(so a misspecified model, where the two differ, still converges quadratically). Each
+iteration takes the better of two steps: a trust-region step on the eigen-decomposition
+of the curvature, uphill even where the curvature is indefinite or singular (a saddle, a
+flat ridge, a zero pivot's free rotation), and Newton's step in the natural parameters
+with the covariance blocks projected onto the positive semi-definite cone (which lands
+on the boundary face it points to). When Newton's method creeps towards a nearly
+singular block, the face with that pivot at zero is maximised on its own. Convergence is
+judged by the Newton decrement g' H^-1 g, which is scale-free (it is twice the gain the
+quadratic model still promises), not by the size of the steps, which along a flat ridge
+stay large while the log-likelihood no longer changes.
 
 References
 ----------
@@ -205,14 +208,15 @@ def _newton(structure, f, u, data, tr, *, max_iter: int, exact_after: int, tol: 
     below 1, the scoring steps stop shrinking it by at least a factor 3, or after
     ``exact_after`` iterations, I is replaced by the exact observed information
     (:func:`~bayeslong.infer.likelihood.loglik_grad_hessian`) for the rest of the run.
-    Before each trust-region step in u, Newton's step in the natural parameters is tried
-    (see ``natural_step``). Converged when, at the exact Hessian, M is positive
-    semi-definite (relative tolerance 1e-6), the Newton decrement is below ``tol`` and the
-    gradient along M's null directions (a zero pivot's free rotation) is below 1e-6: the
-    first- and second-order conditions of a maximum. Coordinates marked in ``fixed`` stay
-    where they are (a face of the boundary). With ``creep``, the run stops early when
-    Newton's method has lost its pace (after 12 exact iterations and close to a maximum,
-    the decrement below 1 has not fallen by a factor 100 over the last 6), for :func:`maximise` to try the faces.
+    Each iteration also tries Newton's step in the natural parameters (see
+    ``natural_step``) and keeps whichever of the two steps gains more. Converged when, at
+    the exact Hessian, M is positive semi-definite (relative tolerance 1e-6), the Newton
+    decrement is below ``tol`` and the gradient along M's null directions (a zero pivot's
+    free rotation) is below 1e-6: the first- and second-order conditions of a maximum.
+    Coordinates marked in ``fixed`` stay where they are (a face of the boundary). With
+    ``creep``, the run stops early when Newton's method has lost its pace (after 12 exact iterations and close to a maximum,
+    the decrement below 1 has not fallen by a factor 100 over the last 6), for
+    :func:`maximise` to try the faces.
     """
     def value(theta):
         c, D, S = moments_at(structure, theta)
