@@ -214,9 +214,9 @@ def _newton(structure, f, u, data, tr, *, max_iter: int, exact_after: int, tol: 
     decrement is below ``tol`` and the gradient along M's null directions (a zero pivot's
     free rotation) is below 1e-6: the first- and second-order conditions of a maximum.
     Coordinates marked in ``fixed`` stay where they are (a face of the boundary). With
-    ``creep``, the run stops early when Newton's method has lost its pace (after 12 exact iterations and close to a maximum,
-    the decrement below 1 has not fallen by a factor 100 over the last 6), for
-    :func:`maximise` to try the faces.
+    ``creep``, the run stops early when Newton's method has lost its pace (after 12 exact
+    iterations and close to a maximum, the decrement below 1 has not fallen by a factor
+    100 over the last 6), for :func:`maximise` to try the faces.
     """
     def value(theta):
         c, D, S = moments_at(structure, theta)
