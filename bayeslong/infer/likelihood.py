@@ -34,6 +34,10 @@ import numpy as np
 
 LOG_2PI = float(np.log(2.0 * np.pi))
 
+#: Smallest sqrt(1 - R^2) of an observed entry on the others before it for which a pattern
+#: covariance counts as positive definite (see _pattern_parts).
+SINGULAR = 1e-7
+
 
 def mvn_logpdf(x, mean, cov) -> np.ndarray:
     """Log density of N(mean, cov) at x, broadcasting over leading axes (Cholesky form).
@@ -90,7 +94,13 @@ def _pattern_parts(c, D, Sigma, counts, cross, masks):
     except np.linalg.LinAlgError:
         return None
     pivots = np.diagonal(chol, axis1=1, axis2=2)
-    if pivots.min() < 1e-100:
+    # pivot_i / sqrt(S_ii) = sqrt(1 - R^2_i), R^2_i the squared multiple correlation of
+    # entry i on the entries before it (the Cholesky factor of the correlation matrix):
+    # scale-free. Below 1e-7 the covariance is singular to double precision (two observed
+    # variables perfectly correlated, e.g. two indicators whose unique variances are both
+    # zero), and its log density is rounding noise (seen: +1.8e31), not a likelihood.
+    scaled = pivots / np.sqrt(np.diagonal(S, axis1=1, axis2=2))
+    if not pivots.min() > 0 or scaled.min() < SINGULAR:
         return None
     logdet = 2.0 * np.sum(np.log(pivots), axis=1)
     W = np.linalg.inv(S)  # Sigma_oo^-1 in the observed block, 0 elsewhere
@@ -231,3 +241,71 @@ def loglik_function(structure):
     compiles it the same way); tests hold both to ``scipy.stats.multivariate_normal``.
     """
     return partial(loglik_and_grad, structure)
+
+
+def _nonlinear_parameters(structure) -> np.ndarray:
+    # parameters in B or Lam: the only ones the moments are not linear in (a, G, Psi, nu
+    # and Theta enter linearly, and two of them never multiply each other)
+    idx = np.concatenate([structure.matrices[m].index.ravel() for m in ("B", "Lam")])
+    return np.unique(idx[idx >= 0])
+
+
+def loglik_grad_hessian(structure, theta, counts, cross, masks):
+    """``(loglik, gradient, Hessian)`` at ``theta``: the exact observed information, in NumPy.
+
+    The Hessian is the chain rule's two parts,
+
+        H = (first moment derivatives)' (Hessian of the likelihood in the moments) (same)
+            + sum_j dL/dm_j d2 m_j / dtheta dtheta'.
+
+    The first part is analytic: for a pattern with W = Sigma_oo^-1, R = A M A', and moment
+    derivatives S_k = dSigma_k, A_k = [-dc_k, -dD_k, 0] (Magnus & Neudecker 1999, ch. 15),
+
+        H_kl = n/2 tr(W S_l W S_k) - tr(W S_l W S_k W R) + tr(W S_k W A_l M A')
+               + tr(W S_l W A_k M A') - tr(W A_k M A_l'),
+
+    whose expectation is minus the expected information. The second part is non-zero only
+    in the rows and columns of parameters in B or Lam (the moments are linear in all
+    others, which never multiply each other): central differences of the exact
+    (complex-step) gradient of sum_j dL/dm_j m_j(theta) in those directions. So the exact
+    Hessian costs a few gradients, not two per parameter. ``(-inf, None, None)`` where
+    the likelihood is not defined.
+    """
+    from bayeslong.model.moments import moment_jacobian
+
+    (c, D, Sigma), (dc, dD, dS) = moment_jacobian(structure, theta)
+    loglik, gc, gD, gS = loglik_terms(c, D, Sigma, counts, cross, masks)
+    if not np.isfinite(loglik):
+        return -np.inf, None, None
+    grad = dc @ gc + np.einsum("pyw,yw->p", dD, gD) + np.einsum("pyz,yz->p", dS, gS)
+    _, W, R, AM = _pattern_parts(c, D, Sigma, counts, cross, masks)
+    k, n_y = len(theta), Sigma.shape[0]
+    Ak = np.concatenate([-dc[..., None], -dD, np.zeros((k, n_y, n_y))], axis=-1)  # (p, Y, U)
+    H = np.zeros((k, k))
+    for p_ in range(len(counts)):
+        Wp = W[p_]
+        WS = Wp @ dS  # (p, Y, Y)
+        flat = WS.reshape(k, -1)
+        flat_t = WS.transpose(0, 2, 1).reshape(k, -1)
+        H += 0.5 * counts[p_] * flat @ flat_t.T
+        H -= flat @ (WS @ (Wp @ R[p_])).transpose(0, 2, 1).reshape(k, -1).T
+        Z = Wp @ (Ak @ AM[p_].T)  # W A_l M A', (p, Y, Y)
+        T3 = flat @ Z.transpose(0, 2, 1).reshape(k, -1).T  # tr(W S_k Z_l)
+        H += T3 + T3.T
+        H -= (Wp @ Ak @ cross[p_]).reshape(k, -1) @ Ak.reshape(k, -1).T
+    weights = (gc, gD, gS)
+    second = np.zeros((k, k))  # sum_j dL/dm_j d2 m_j, set (not added) row and column-wise
+    for j in _nonlinear_parameters(structure):
+        h = 1e-5 * max(abs(theta[j]), 1e-2)
+        cols = []
+        for sign in (1.0, -1.0):
+            shifted = np.array(theta, dtype=float)
+            shifted[j] += sign * h
+            _, (ec, eD, eS) = moment_jacobian(structure, shifted)
+            cols.append(ec @ weights[0] + np.einsum("pyw,yw->p", eD, weights[1])
+                        + np.einsum("pyz,yz->p", eS, weights[2]))
+        col = (cols[0] - cols[1]) / (2 * h)
+        second[:, j] = col
+        second[j, :] = col
+    H += 0.5 * (second + second.T)
+    return float(loglik), grad, 0.5 * (H + H.T)

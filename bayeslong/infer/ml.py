@@ -1,12 +1,16 @@
-"""Maximum likelihood: Fisher scoring (and SciPy's L-BFGS-B) on the NumPy log-likelihood.
+"""Maximum likelihood: trust-region Newton's method on the NumPy log-likelihood.
 
 The ML fit gives point estimates, start values for sampling, and the reference checks
-against published and library results. From each of several starts, Fisher scoring
-(expected information from the exact moment Jacobian, steps halved to keep covariance
-blocks positive definite) runs first; where it stalls, L-BFGS-B in an unconstrained space
-(log-Cholesky covariance blocks) takes its place. Nothing is compiled, so the first fit in
-a process costs what the next does. Standard errors come from the observed information in
-the natural parameters.
+against published and library results. From each of several starts (for a multi-process
+model first the processes' own single-process fits, cross terms at 0), a trust-region
+Newton's method runs in plain Cholesky coordinates of the covariance blocks, with Fisher
+scoring's expected information far from the maximum and the exact Hessian close to it
+(:mod:`bayeslong.infer.newton`). A variance at zero is an interior point of those
+coordinates, so a boundary maximum is reached like any other and checked by its
+Karush-Kuhn-Tucker conditions. Nothing is compiled, so the first fit in a process costs
+what the next does. Standard errors come from the observed information in the natural
+parameters. A fit that does not converge says so (``converged=False``, a message naming
+what happened and what to try, and a ``ConvergenceWarning``).
 """
 
 from __future__ import annotations
@@ -16,20 +20,18 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import optimize
 
 from bayeslong.arguments import seed_value, whole_number
-from bayeslong.errors import BoundaryWarning, IdentificationError
-from bayeslong.infer.likelihood import (
-    loglik_function,
-    loglik_grad_information,
-    pattern_arrays,
-)
+from bayeslong.errors import BayeslongError, BoundaryWarning, ConvergenceWarning, IdentificationError
+from bayeslong.infer.likelihood import loglik_function, pattern_arrays
+from bayeslong.infer.newton import hessian, maximise
 from bayeslong.model.spec import Spec
-from bayeslong.model.start import start_values
-from bayeslong.model.structure import Structure, structure_for
-from bayeslong.model.transform import Unconstrained
+from bayeslong.model.start import combine_processes, start_values
+from bayeslong.model.structure import Structure, build_structure, structure_for
+from bayeslong.model.transform import Cholesky
 from bayeslong.threads import single_thread
+
+__all__ = ["MLResult", "fit_ml", "hessian"]
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -49,10 +51,17 @@ class MLResult:
     aic, bic : float
         -2 loglik + 2 n_params; -2 loglik + n_params log(n_units).
     converged : bool
+        The best start reached a maximum: Newton decrement below 1e-8 at the exact
+        Hessian, which is negative semi-definite there (in the Cholesky coordinates), and
+        at a boundary the likelihood falls into the parameter space.
     boundary : tuple of str
         Variance parameters at (numerically) zero.
+    message : str
+        What happened, in words: which start won, whether the starts agree, and when the
+        fit did not converge, why and what to try.
     starts : pandas.DataFrame
-        Log-likelihood reached from each start (to judge local optima).
+        Log-likelihood reached from each start, whether it converged, its iterations,
+        Newton decrement and how it ended (to judge local optima).
     """
 
     spec: Spec
@@ -104,9 +113,10 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
     spec : Spec
     panel : Panel
     starts : int, default 4
-        Most starts: the data-based start values plus up to ``starts - 1`` jittered ones.
-        Starting stops early once two starts reach the same best maximum (to 1e-9
-        relative); ``MLResult.starts`` lists every start that ran.
+        Most starts: for a multi-process model first the processes' own single-process
+        fits (cross terms at 0), then the data-based start values, then jittered copies.
+        Starting stops early once two starts reach the same best maximum (to 1e-6 in
+        log-likelihood); ``MLResult.starts`` lists every start that ran.
     seed : int
         Seed of the jitter.
     check : bool, default True
@@ -129,6 +139,9 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
     BoundaryWarning
         A variance sits at zero (the optimum is on the boundary; standard errors and the
         usual likelihood-ratio reference distributions do not apply there).
+    ConvergenceWarning
+        No start converged to a maximum; the message (also ``MLResult.message``) says what
+        happened and what to try.
     """
     starts = whole_number(starts, "starts", where="fit_ml")
     seed = seed_value(seed, where="fit_ml")
@@ -142,117 +155,163 @@ def _fit_ml(spec: Spec, panel, *, starts: int, seed: int, check: bool) -> MLResu
         _check_identified(spec, panel, structure)
     f = loglik_function(structure)
     data = pattern_arrays(panel.patterns())
-    n = float(panel.n_units)
-    tr = Unconstrained(structure)
-
-    def objective(u):
-        theta = tr.to_natural(u)
-        try:
-            ll, g = f(theta, *data)
-        except (np.linalg.LinAlgError, ValueError):
-            return np.inf, np.zeros_like(u)
-        if not np.isfinite(ll):
-            return np.inf, np.zeros_like(u)
-        return -ll / n, -tr.grad_to_u(u, g) / n
-
-    rng = np.random.default_rng(seed)
-    u0 = tr.from_natural(start_values(structure, panel))
-    lag_slots = [i for i, k in enumerate(structure.kinds) if k == "lag"]
-    candidates = [u0]
-    for s in range(1, starts):
-        u = u0 + rng.normal(0.0, 0.3, size=u0.shape) * np.maximum(np.abs(u0), 0.1)
-        u[lag_slots] = rng.uniform(-0.2, 0.8, size=len(lag_slots))
-        candidates.append(u)
+    tr = Cholesky(structure)
     runs = []
-    for u in candidates:
-        # Fisher scoring first: a handful of cheap iterations from a sensible start. Far
-        # from the optimum its expected information can be a poor guide (measured: a
-        # cross-lagged model on gapminder crawled for 100 iterations); then L-BFGS in the
-        # unconstrained space runs from the same start, and the better end point counts.
-        theta, ll, ok = _scoring(structure, tr.to_natural(u), data)
-        method = "scoring"
-        if not ok:
-            res = optimize.minimize(objective, u, jac=True, method="L-BFGS-B",
-                                    options={"maxiter": 20000, "maxfun": 40000, "ftol": 1e-14,
-                                             "gtol": 1e-9, "maxcor": 30})
-            if np.isfinite(res.fun) and -res.fun * n >= (ll if np.isfinite(ll) else -np.inf):
-                theta, ll, ok = tr.to_natural(res.x), -res.fun * n, bool(res.success)
-                method = "L-BFGS-B (scoring stalled)"
-        runs.append({"theta": theta, "loglik": ll, "converged": ok, "method": method})
-        # two starts that agree on the best maximum settle it; the rest would only repeat it
-        found = sorted((-r["loglik"] for r in runs if np.isfinite(r["loglik"])))
-        if len(found) >= 2 and abs(found[1] - found[0]) <= 1e-9 * max(1.0, abs(found[0])):
+    for label, theta_start in _candidates(structure, panel, tr, starts, seed):
+        run = maximise(structure, f, tr.from_natural(theta_start), data, tr)
+        run["start"] = label
+        runs.append(run)
+        # two converged starts on the best maximum settle it; more would only repeat it
+        top = max(r["loglik"] for r in runs)
+        if sum(r["converged"] and r["loglik"] >= top - 1e-6 for r in runs) >= 2:
             break
-    best = max(runs, key=lambda r: r["loglik"] if np.isfinite(r["loglik"]) else -np.inf)
-    theta, hessian = _newton_polish(f, best["theta"], data, structure)
+    best = max(runs, key=lambda r: r["loglik"])
+    theta = best["theta"]
     loglik, grad = f(theta, *data)
     loglik = float(loglik)
-    # the same criterion whichever optimiser finished: a small gradient per unit in the
-    # unconstrained space
-    converged = bool(np.isfinite(loglik)
-                     and np.max(np.abs(tr.grad_to_u(tr.from_natural(theta), grad))) / n < 1e-3)
     names = list(structure.names)
     boundary = _boundary(structure, theta, panel)
+    kkt = _kkt_violations(structure, theta, grad, panel) if boundary else []
+    converged = bool(best["converged"] and np.isfinite(loglik) and not kkt)
+    message = _message(best, runs, boundary, kkt, converged)
     if boundary:
         warnings.warn(
             f"model '{spec.name}': the optimum is on the boundary, {', '.join(boundary)} "
             "estimated at zero (or a covariance block is singular). Standard errors for these "
             "are not valid; consider a model without that variance, or more data.",
             BoundaryWarning, stacklevel=4)
-    se = _standard_errors(hessian)
-    starts_table = pd.DataFrame({"start": range(len(runs)),
+    if not converged:
+        warnings.warn(f"model '{spec.name}' by maximum likelihood: {message}",
+                      ConvergenceWarning, stacklevel=4)
+    # a converged run ends on the exact Hessian (central differences) of this very point
+    H = best["hessian"] if best["hessian"] is not None else hessian(f, theta, data)
+    se = _standard_errors(H)
+    starts_table = pd.DataFrame({"start": [r["start"] for r in runs],
                                  "loglik": [r["loglik"] for r in runs],
                                  "converged": [r["converged"] for r in runs],
-                                 "method": [r["method"] for r in runs]})
+                                 "iterations": [r["iterations"] for r in runs],
+                                 "decrement": [r["decrement"] for r in runs],
+                                 "ended": [r["reason"] for r in runs]})
     return MLResult(spec=spec, loglik=loglik, params=pd.Series(theta, index=names, name="estimate"),
                     se=pd.Series(se, index=names, name="se"), n_params=len(names),
                     n_units=panel.n_units, converged=converged, boundary=tuple(boundary),
-                    message=f"best start: {best['method']}", starts=starts_table)
+                    message=message, starts=starts_table)
 
 
-def _scoring(structure: Structure, theta: np.ndarray, data, max_iter: int = 30):
-    """Fisher scoring with step halving, in the natural parameters.
+def _candidates(structure: Structure, panel, tr: Cholesky, starts: int, seed: int):
+    """Yield ``(label, theta)`` start points, best first, at most ``starts`` of them.
 
-    theta <- theta + t I(theta)^-1 g(theta), with I the expected information
-    (:func:`bayeslong.likelihood.expected_information`) and t halved until the step stays
-    admissible (positive definite covariance blocks) and does not lower the
-    log-likelihood. Converged when the predicted gain g' I^-1 g falls below 1e-10.
-    Returns ``(theta, loglik, converged)``; a stalled run returns where it stopped, for
-    a quasi-Newton optimiser to continue.
-
-    Reference: Lee, S.-Y. & Jennrich, R. I. (1979). A study of algorithms for covariance
-    structure analysis with specific comparisons using factor analysis. Psychometrika
-    44(1), 99-113.
+    Lazily: a later start is built (the nested fits cost a little) only when needed.
     """
-    def evaluate(th):
-        if not _admissible(structure, th):
-            return -np.inf, None, None
-        with np.errstate(all="ignore"):
-            return loglik_grad_information(structure, th, *data)
+    base = start_values(structure, panel)
+    made = 0
+    if structure.spec.processes > 1:
+        nested = _nested_start(structure, panel, base)
+        if nested is not None:
+            made += 1
+            yield "nested single-process fits", nested
+    if made < starts:
+        made += 1
+        yield "data-based", base
+    rng = np.random.default_rng(seed)
+    u0 = tr.from_natural(base)
+    lag_slots = [i for i, k in enumerate(structure.kinds) if k == "lag"]
+    diag = np.array([s for _, rows, cols, slots in tr.blocks for s in slots[rows == cols]], dtype=int)
+    while made < starts:
+        made += 1
+        u = u0 + rng.normal(0.0, 0.3, size=u0.shape) * np.maximum(np.abs(u0), 0.1)
+        u[lag_slots] = rng.uniform(-0.2, 0.8, size=len(lag_slots))
+        u[diag] = np.abs(u[diag])  # the factor's column signs are free: keep pivots positive
+        yield f"jittered {made - 1 - (structure.spec.processes > 1)}", tr.to_natural(u)
 
-    ll, g, info = evaluate(theta)
-    if g is None:
-        return theta, -np.inf, False
-    for _ in range(max_iter):
+
+def _nested_start(structure: Structure, panel, base: np.ndarray):
+    """Start values from each process's single-process fit (None when one is not available).
+
+    Each outcome is fitted alone by the same model with ``processes = 1``; see
+    :func:`bayeslong.model.start.combine_processes` for how the joint start is built.
+    """
+    try:
+        single = structure.spec.replace(processes=1)
+    except BayeslongError:
+        return None
+    fits = {}
+    for k, name in enumerate(structure.outcomes):
+        y = panel.y[:, :, k:k + 1]
+        keep = ~np.isnan(y).all(axis=(1, 2))
         try:
-            step = np.linalg.solve(info, g)
-        except np.linalg.LinAlgError:
-            return theta, ll, False
-        gain = float(g @ step)
-        if not np.isfinite(gain) or gain < 0:
-            return theta, ll, False
-        if gain < 1e-10:
-            return theta, ll, True
-        t = 1.0
-        while True:
-            ll_new, g_new, info_new = evaluate(theta + t * step)
-            if g_new is not None and ll_new >= ll - 1e-12 * abs(ll):
-                break
-            t *= 0.5
-            if t < 1e-8:
-                return theta, ll, False
-        theta, ll, g, info = theta + t * step, ll_new, g_new, info_new
-    return theta, ll, False
+            sub = type(panel)(units=tuple(u for u, kk in zip(panel.units, keep) if kk),
+                              waves=panel.waves, outcomes=(name,),
+                              time_varying=panel.time_varying,
+                              time_invariant=panel.time_invariant,
+                              y=y[keep], x=panel.x[keep], z=panel.z[keep])
+            s1 = build_structure(single, outcomes=[name], n_waves=structure.n_waves,
+                                 time_varying=panel.time_varying,
+                                 time_invariant=panel.time_invariant)
+            tr1 = Cholesky(s1)
+        except (BayeslongError, NotImplementedError):
+            return None
+        run = maximise(s1, loglik_function(s1), tr1.from_natural(start_values(s1, sub)),
+                       pattern_arrays(sub.patterns()), tr1)
+        if not np.isfinite(run["loglik"]):
+            return None
+        fits[name] = dict(zip(s1.names, run["theta"]))
+    return combine_processes(structure, fits, base)
+
+
+def _message(best, runs, boundary, kkt, converged) -> str:
+    """What happened, in words: which start won, whether the starts agree, what to try."""
+    ended = [r for r in runs if np.isfinite(r["loglik"])]
+    same = sum(r["loglik"] >= best["loglik"] - 1e-6 for r in ended)
+    lower = [r for r in ended if r["loglik"] < best["loglik"] - 1e-6]
+    if converged:
+        text = (f"converged from the {best['start']} start in {best['iterations']} iterations "
+                f"(Newton decrement {best['decrement']:.1e}); {same} of {len(runs)} start(s) "
+                "reached this maximum")
+        if lower:
+            gap = best["loglik"] - min(r["loglik"] for r in lower)
+            text += (f"; {len(lower)} ended up to {gap:.4g} log-likelihood units lower "
+                     "(local maxima or stalls)")
+        if boundary:
+            text += ("; boundary optimum: " + ", ".join(boundary) + " at zero, with the "
+                     "likelihood falling into the parameter space there (a genuine boundary "
+                     "maximum, not a stall)")
+        return text
+    if kkt:
+        return ("not converged: " + ", ".join(boundary) + " stopped at zero although the "
+                "likelihood rises into the parameter space there (" + "; ".join(kkt) + "). "
+                "Try more starts (starts=10) or a simpler model.")
+    return (f"not converged: {best['reason']} (best of {len(runs)} start(s), the "
+            f"{best['start']} one, after {best['iterations']} iterations; Newton decrement "
+            f"{best['decrement']:.2g}). Try more starts (starts=10), a simpler model (fewer "
+            "free variances or covariances, e.g. residuals='equal'), or dropping a variance "
+            "that heads to zero" + (f" ({', '.join(boundary)})" if boundary else "") + ".")
+
+
+def _kkt_violations(structure: Structure, theta, grad, panel) -> list[str]:
+    """Boundary blocks where the likelihood still rises into the positive semi-definite cone.
+
+    At a maximum on the boundary of {S : S positive semi-definite}, the derivative of the
+    log-likelihood towards S + e v v' must be <= 0 for every null vector v of S, i.e. the
+    gradient G = dl/dS is negative semi-definite on the null space (the Karush-Kuhn-Tucker
+    conditions for a semi-definite constraint; Vandenberghe, L. & Boyd, S. 1996,
+    Semidefinite programming, SIAM Review 38(1), 49-95).
+    """
+    out = []
+    scale = float(np.nanvar(panel.y))
+    for b in structure.blocks:
+        S = theta[b.index]
+        q = len(S)
+        w, v = np.linalg.eigh(S)
+        null = v[:, w < 1e-7 * max(scale, 1e-300)]
+        if null.shape[1] == 0:
+            continue
+        G = grad[b.index] * np.where(np.eye(q, dtype=bool), 1.0, 0.5)
+        rise = float(np.linalg.eigvalsh(null.T @ G @ null).max())
+        # on the scale of the data: a rise below 1e-6 per unit over the variance is rounding
+        if rise > 1e-6 * panel.n_units / max(scale, 1e-300):
+            out.append(f"derivative {rise:.3g} into the block of {structure.names[b.index[0, 0]]}")
+    return out
 
 
 def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
@@ -268,63 +327,6 @@ def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
                 out.append(structure.names[b.index[r, r]])
                 break
     return out
-
-
-def hessian(f, theta, data, grad=None) -> np.ndarray:
-    """Hessian of the log-likelihood by differences of the analytic gradient.
-
-    Central differences by default; given the gradient at ``theta``, forward differences
-    (half the evaluations; relative error about 1e-5, ample for standard errors, which
-    match statsmodels' analytic ones to 1e-5 on sleepstudy, see tests/test_ml.py).
-    """
-    p = len(theta)
-    H = np.zeros((p, p))
-    for i in range(p):
-        h = 1e-5 * max(abs(theta[i]), 1e-2)
-        e = np.zeros(p)
-        e[i] = h
-        if grad is None:
-            H[:, i] = (f(theta + e, *data)[1] - f(theta - e, *data)[1]) / (2 * h)
-        else:
-            H[:, i] = (f(theta + e, *data)[1] - grad) / h
-    return 0.5 * (H + H.T)
-
-
-def _admissible(structure: Structure, theta: np.ndarray) -> bool:
-    return all(np.linalg.eigvalsh(theta[b.index]).min() > 0 for b in structure.blocks)
-
-
-def _newton_polish(f, theta, data, structure, steps: int = 6):
-    """A few Newton steps in the natural parameters from the quasi-Newton optimum.
-
-    Quasi-Newton stops at a gradient tolerance; near a regular interior maximum Newton
-    steps gain the last digits that reference checks need. The steps reuse the Hessian of
-    the starting point (each step still contracts the error by a large factor so close to
-    the optimum); the Hessian is taken afresh at the final point for the standard errors
-    unless the steps moved the estimates by less than 1e-7 (relative).
-    A step is kept only when it raises the log-likelihood and stays admissible.
-    """
-    start = theta
-    ll, g = f(theta, *data)
-    H = hessian(f, theta, data, grad=g)
-    for _ in range(steps):
-        try:
-            step = np.linalg.solve(H, g)
-        except np.linalg.LinAlgError:
-            break
-        new = theta - step
-        if not _admissible(structure, new):
-            break
-        ll_new, g_new = f(new, *data)
-        if not np.isfinite(ll_new) or ll_new < ll - 1e-10:
-            break
-        theta, ll, g = new, ll_new, g_new
-        if np.max(np.abs(step)) < 1e-12 * max(1.0, np.max(np.abs(theta))):
-            break
-    # a Hessian taken a hair away serves the standard errors as well as a new one
-    if np.max(np.abs(theta - start)) > 1e-7 * max(1.0, np.max(np.abs(theta))):
-        H = hessian(f, theta, data, grad=g)
-    return theta, H
 
 
 def _standard_errors(H: np.ndarray) -> np.ndarray:

@@ -112,3 +112,42 @@ def sampler_start(structure: Structure, panel, seed: int = 0) -> np.ndarray:
             theta[i] += NUDGE[kind] * step[i]
     return theta
 
+
+def own_name(name: str, outcome: str, outcomes) -> str | None:
+    """The name ``name`` has in the single-process model of ``outcome``, or None.
+
+    A parameter of a multi-process model belongs to one process when every outcome key in
+    its brackets is that outcome (``level_var[y1]``, ``lag[y1<-y1]``, ``resid_var[y1,3]``);
+    dropping those keys gives its single-process name (``level_var``, ``lag``,
+    ``resid_var[3]``). Cross terms (``lag[y1<-y2]``, ``level_cov[y1,y2]``) give None.
+    """
+    base, _, rest = name.partition("[")
+    keys = rest.rstrip("]").split(",") if rest else []
+    own = [k for k in keys if k in outcomes or "<-" in k]
+    if not own or any(k not in (outcome, f"{outcome}<-{outcome}") for k in own):
+        return None
+    kept = [k for k in keys if k not in own]
+    return f"{base}[{','.join(kept)}]" if kept else base
+
+
+def combine_processes(structure: Structure, fits: dict, base: np.ndarray) -> np.ndarray:
+    """Start values of a multi-process model from its processes' single-process fits.
+
+    ``fits`` maps each outcome to ``{single-process name: estimate}``. Each process's own
+    parameters take their single-process estimates; cross-lags and cross-process
+    covariances start at 0 (the processes independent, which is where the joint model
+    nests its parts); anything else keeps its value in ``base``. This builds a bivariate
+    model from its univariate parts (Curran, P. J. & Bollen, K. A. 2001, The best of both
+    worlds: combining autoregressive and latent curve models, in Collins & Sayer (eds.),
+    New Methods for the Analysis of Change, APA).
+    """
+    theta = np.array(base, dtype=float)
+    for i, (name, kind) in enumerate(zip(structure.names, structure.kinds)):
+        owners = [o for o in structure.outcomes if own_name(name, o, structure.outcomes) is not None]
+        if owners:
+            value = fits.get(owners[0], {}).get(own_name(name, owners[0], structure.outcomes))
+            if value is not None:
+                theta[i] = value
+        elif kind in ("lag", "cov"):
+            theta[i] = 0.0
+    return theta

@@ -79,3 +79,88 @@ class Unconstrained:
             dL[d] *= L[d]
             g[slots] = dL[rows, cols]
         return g
+
+
+class Cholesky:
+    """Covariance blocks as S = L L' with L lower triangular and its diagonal unrestricted.
+
+    The coordinates in which maximum likelihood runs Newton's method. Every real ``u``
+    gives a positive semi-definite block, and a block on the boundary (a variance, or a
+    conditional variance, at zero) is an ordinary interior point of ``u`` (L[d, d] = 0): a
+    maximum there is a stationary point that Newton's method reaches at its usual rate,
+    where the log scale of :class:`Unconstrained` sends log L[d, d] towards minus infinity
+    and stalls. The factor is unique only up to the signs of its columns, which is harmless
+    for an optimiser that starts with a positive diagonal (Pinheiro, J. C. & Bates, D. M.
+    1996, Unconstrained parametrizations for variance-covariance matrices, Statistics and
+    Computing 6, 289-296). A 1 x 1 block is theta = u^2. Parameters outside covariance
+    blocks are unchanged.
+    """
+
+    def __init__(self, structure: Structure):
+        self.p = structure.n_params
+        self.blocks = []
+        for b in structure.blocks:
+            idx = b.index
+            rows, cols = np.tril_indices(len(idx))
+            slots = idx[rows, cols]
+            if (slots < 0).any() or len(np.unique(slots)) < len(slots):
+                # a block with fixed entries or entries tied to each other (equal unique
+                # variances over waves under strict invariance) has fewer free values than
+                # its factor: its parameters stay natural, and Newton's method's steps in
+                # the natural parameters serve it
+                continue
+            self.blocks.append((idx, rows, cols, slots))
+
+    @staticmethod
+    def factor(u: np.ndarray, rows, cols, q: int) -> np.ndarray:
+        """The block's lower-triangular factor L from its slots of ``u``."""
+        L = np.zeros((q, q))
+        L[rows, cols] = u
+        return L
+
+    def to_natural(self, u: np.ndarray) -> np.ndarray:
+        theta = np.array(u, dtype=float)
+        for idx, rows, cols, slots in self.blocks:
+            L = self.factor(u[slots], rows, cols, len(idx))
+            theta[slots] = (L @ L.T)[rows, cols]
+        return theta
+
+    def from_natural(self, theta: np.ndarray) -> np.ndarray:
+        """Cholesky factors of the blocks (a block that is not positive definite is first
+        moved to the nearest one with eigenvalues at least 1e-10 times the largest)."""
+        u = np.array(theta, dtype=float)
+        for idx, rows, cols, slots in self.blocks:
+            S = theta[idx]
+            try:
+                L = np.linalg.cholesky(S)
+            except np.linalg.LinAlgError:
+                w, v = np.linalg.eigh(S)
+                L = np.linalg.cholesky((v * np.maximum(w, 1e-10 * max(w.max(), 1e-12))) @ v.T)
+            u[slots] = L[rows, cols]
+        return u
+
+    def jacobian(self, u: np.ndarray) -> np.ndarray:
+        """d theta / d u, shape (p, p): S[r, c] = sum_m L[r, m] L[c, m]."""
+        J = np.eye(self.p)
+        for idx, rows, cols, slots in self.blocks:
+            L = self.factor(u[slots], rows, cols, len(idx))
+            # dS[r, c] / dL[a, m] = [r == a] L[c, m] + [c == a] L[r, m]
+            for j, (a, m) in enumerate(zip(rows, cols)):
+                J[slots, slots[j]] = (np.where(rows == a, L[cols, m], 0.0)
+                                      + np.where(cols == a, L[rows, m], 0.0))
+        return J
+
+    def curvature(self, grad_theta: np.ndarray) -> np.ndarray:
+        """sum_k g_k d2 theta_k / du du' (the second-order term of the chain rule).
+
+        With G symmetric such that sum_k g_k theta_k = tr(G S) over a block,
+        d2 tr(G L L') / dL[a, m] dL[b, n] = 2 G[a, b] [m == n]. This term carries the
+        curvature at a variance held at zero (where d theta / d u vanishes), so the
+        Hessian in u tells a boundary maximum (G negative there) from a stall.
+        """
+        C = np.zeros((self.p, self.p))
+        for idx, rows, cols, slots in self.blocks:
+            q = len(idx)
+            G = grad_theta[idx] * np.where(np.eye(q, dtype=bool), 1.0, 0.5)
+            C[np.ix_(slots, slots)] = 2.0 * G[np.ix_(rows, rows)] * (cols[:, None] == cols[None, :])
+        return C

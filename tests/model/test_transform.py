@@ -53,3 +53,26 @@ def test_sampler_start_moves_each_value_by_the_documented_amount():
             assert 0.025 - 1e-12 <= abs(m - b) <= 0.05 + 1e-12, name
         else:
             assert m == b, name
+
+@pytest.mark.parametrize("name", ["linear-growth", "ri-clpm"])
+def test_plain_cholesky_round_trip_jacobian_and_curvature(name):
+    from bayeslong.model.transform import Cholesky
+
+    K = 2 if name == "ri-clpm" else 1
+    s = build_structure(bl.model(name), outcomes=["y", "v"][:K], n_waves=5)
+    tr = Cholesky(s)
+    rng = np.random.default_rng(1)
+    u = rng.normal(0, 0.5, s.n_params)
+    for _, rows, cols, slots in tr.blocks:  # a positive diagonal: the factor is unique
+        u[slots[rows == cols]] = np.abs(u[slots[rows == cols]]) + 0.1
+    theta = tr.to_natural(u)
+    np.testing.assert_allclose(tr.from_natural(theta), u, atol=1e-10)
+    # Jacobian and the second-order term of a . theta(u) against central differences
+    a = rng.normal(size=s.n_params)
+    h = 1e-5
+    eye = np.eye(s.n_params)
+    fd = np.array([(tr.to_natural(u + h * e) - tr.to_natural(u - h * e)) / (2 * h) for e in eye]).T
+    np.testing.assert_allclose(tr.jacobian(u), fd, atol=1e-8)
+    grad = lambda v: tr.jacobian(v).T @ a  # noqa: E731
+    fd2 = np.array([(grad(u + h * e) - grad(u - h * e)) / (2 * h) for e in eye])
+    np.testing.assert_allclose(tr.curvature(a), fd2, atol=1e-7)
