@@ -250,8 +250,8 @@ def nutpie_model(lay: Layout, panel):
     names = list(lay.structure.names)
 
     class _Compiled(CompiledModel):
-        # nutpie's compiled-model protocol: dims, n_dim, shapes, coords, _make_sampler
-        dims = {}
+        # nutpie's compiled-model protocol (a dataclass with ``dims``): n_dim, shapes,
+        # coords, _make_sampler
 
         @property
         def n_dim(self):
@@ -284,7 +284,32 @@ def nutpie_model(lay: Layout, panel):
             return _lib.PySampler.from_pymc(settings, cores, self._make_model(init_mean),
                                             progress_type, store)
 
-    compiled = _Compiled()
+    compiled = _Compiled(dims={})
     # the buffers must outlive the sampler: the callbacks read them through raw addresses
     compiled._keep = (ints, floats, user_data)
     return compiled, init
+
+
+def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, chains, cores, seed,
+           progressbar, names=None):
+    """NUTS with nutpie on the generic kernel: ``(idata, compile seconds, sample seconds)``.
+
+    "Compile" is loading the kernel: importing :mod:`bayeslong.infer.generic_kernel` loads
+    its callbacks from numba's on-disk cache (or, once per machine, compiles them).
+    Settings as :func:`bayeslong.infer.sampling.fit`; the low-rank-modified mass matrix is
+    the one the PyMC path uses (see ``sampling._sample_nutpie`` for why).
+    """
+    import time
+
+    import nutpie
+
+    t0 = time.perf_counter()
+    from bayeslong.infer import generic_kernel  # noqa: F401  (loads or compiles the kernel)
+
+    compile_s = time.perf_counter() - t0
+    compiled, init = nutpie_model(layout(structure, prior_set), panel)
+    t0 = time.perf_counter()
+    idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
+                          progress_bar=progressbar, init_mean=init, save_warmup=False,
+                          low_rank_modified_mass_matrix=True)
+    return idata, compile_s, time.perf_counter() - t0

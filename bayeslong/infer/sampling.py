@@ -28,8 +28,10 @@ from bayeslong.infer.priors import PriorSet, resolve_priors
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import Structure, structure_for
 
-#: Sampler names accepted by :func:`fit`.
-SAMPLERS = ("auto", "nutpie", "pymc")
+#: Sampler names accepted by :func:`fit`: ``generic`` is nutpie on the generic kernel
+#: compiled once per machine (:mod:`bayeslong.infer.generic_logp`), ``nutpie`` nutpie on
+#: the PyMC model's graph compiled per structure, ``pymc`` PyMC's NUTS.
+SAMPLERS = ("auto", "generic", "nutpie", "pymc")
 
 #: Convergence thresholds (Vehtari et al. 2021): R-hat below 1.01, bulk and tail ESS above
 #: 100 per chain (400 for 4 chains). E-BFMI below 0.3 flags a chain (Betancourt 2016, common
@@ -375,13 +377,21 @@ def _nutpie_available() -> bool:
     return find_spec("nutpie") is not None
 
 
-def _choose(sampler: str) -> str:
+def _choose(sampler: str, prior_set: PriorSet | None = None) -> str:
     if sampler not in SAMPLERS:
         raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
+    factory = prior_set is not None and prior_set.has_callable
     if sampler == "auto":
-        return "nutpie" if _nutpie_available() else "pymc"
-    if sampler == "nutpie" and not _nutpie_available():
-        raise SpecError("sampler='nutpie' needs the nutpie package; install it with "
+        # the generic kernel when every prior has an array form (docs/engine.md, "Compile
+        # once per machine"); a prior given as a PyMC factory needs the PyMC model
+        if not _nutpie_available():
+            return "pymc"
+        return "nutpie" if factory else "generic"
+    if sampler == "generic" and factory:
+        raise SpecError("sampler='generic' cannot take a prior given as a PyMC factory; "
+                        "use sampler='nutpie' or 'pymc', or give the prior as (family, *args)")
+    if sampler in ("nutpie", "generic") and not _nutpie_available():
+        raise SpecError(f"sampler={sampler!r} needs the nutpie package; install it with "
                         "`pip install nutpie` (or `pip install bayeslong[fast]`), or use sampler='pymc'")
     return sampler
 
@@ -539,35 +549,48 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1)):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
             raise SpecError(f"`{label}` must be an integer >= {low}; got {value!r}")
-    which = _choose(sampler)
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)
-    from bayeslong.infer.pymc_model import model_inputs
-
-    t0 = time.perf_counter()
-    entry, built = _entry(spec, panel, structure, prior_set)
-    build_s = time.perf_counter() - t0
-    inputs = model_inputs(panel, prior_set)
-    start = _start_point(entry["model"], structure, panel, prior_set)
+    which = _choose(sampler, prior_set)
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
-    run = _sample_nutpie if which == "nutpie" else _sample_pymc
     settings = dict(draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
                     seed=int(seed), progressbar=progressbar, names=structure.names)
+    state = {}
+
+    def pymc_entry():
+        # the PyMC model and its inputs, built on first need (the generic path needs neither)
+        if not state:
+            from bayeslong.infer.pymc_model import model_inputs
+
+            t0 = time.perf_counter()
+            state["entry"], _ = _entry(spec, panel, structure, prior_set)
+            state["build"] = time.perf_counter() - t0
+            state["inputs"] = model_inputs(panel, prior_set)
+            state["start"] = _start_point(state["entry"]["model"], structure, panel, prior_set)
+        return state["entry"], state["inputs"], state["start"]
+
     with _one_thread(), warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
         try:
-            raw, compile_s, sample_s = run(entry, inputs, start, **settings)
+            if which == "generic":
+                from bayeslong.infer.generic_logp import sample as sample_generic
+
+                raw, compile_s, sample_s = sample_generic(structure, prior_set, panel, **settings)
+            else:
+                run = _sample_nutpie if which == "nutpie" else _sample_pymc
+                raw, compile_s, sample_s = run(*pymc_entry(), **settings)
         except RuntimeError as err:
             # nutpie 0.16 sometimes rejects a start point whose log density and gradient
             # are finite (seen on a 40-unit ALT panel, "bad initial gradient"); PyMC's NUTS
             # samples the same model from the same start, so the fit goes on with it
-            if which != "nutpie" or "initializ" not in str(err):
+            if which not in ("nutpie", "generic") or "initializ" not in str(err):
                 raise
             warnings.warn(f"model '{spec.name}': nutpie could not start ({str(err).splitlines()[0]}); "
                           "sampling with PyMC's NUTS instead", UserWarning, stacklevel=2)
             which = "pymc"
-            raw, compile_s, sample_s = _sample_pymc(entry, inputs, start, **settings)
+            raw, compile_s, sample_s = _sample_pymc(*pymc_entry(), **settings)
+    build_s = state.get("build", 0.0)
     t0 = time.perf_counter()
     with _one_thread():  # tiny batched matrices: BLAS threads only cost here
         idata = _tidy(raw, structure, panel, prior_set)
