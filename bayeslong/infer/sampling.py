@@ -4,9 +4,11 @@
 person-level latents), samples it with NUTS, adds one log-likelihood term per unit for
 every draw, checks convergence and returns a :class:`Fit`.
 
-Compile once per model structure (docs/engine.md): the compiled sampler is cached by the
-structure and the prior families; a refit with another dataset of the same design or other
-prior values only swaps the model's data inputs.
+Compile once per machine (docs/engine.md): the default sampler runs one numba log density
+for every structure, loaded from numba's disk cache (:mod:`bayeslong.infer.generic_logp`).
+The PyMC paths compile once per model structure: that compiled sampler is cached by the
+structure and the prior families, and a refit with another dataset of the same design or
+other prior values only swaps the model's data inputs.
 """
 
 from __future__ import annotations
@@ -63,7 +65,7 @@ class Fit:
         ``constant_data`` (covariates).
     prior_set : PriorSet
     sampler : str
-        The sampler that ran (``nutpie`` or ``pymc``).
+        The sampler that ran (``generic``, ``nutpie`` or ``pymc``).
     timing : dict
         Seconds spent compiling (0 when a cached compile was reused), sampling and
         computing the per-unit log-likelihood.
@@ -504,14 +506,17 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     seed : int, default 1
     priors : dict, optional
         Overrides by parameter name (see :func:`bayeslong.priors.resolve_priors`).
-    sampler : {"auto", "nutpie", "pymc"}
-        ``auto`` is nutpie when it is installed, PyMC's NUTS otherwise. Measured with
-        ``bench/sampler_speed.py`` (alt, N = 500, T = 6, 4 chains x 1000 draws, on a
-        2-core machine, load 1.6-2.5): nutpie took 58 s for a first fit (51 s of it
-        compiling with numba, its disk cache warm) and 4 s for a refit of the compiled
-        model, against 79 s and 71 s with PyMC's NUTS; ESS per second of the lag, compile
-        included, was 101 with nutpie and 18 with PyMC. On a machine whose numba cache is
-        empty nutpie's first compile takes minutes; ``sampler="pymc"`` avoids it.
+    sampler : {"auto", "generic", "nutpie", "pymc"}
+        ``generic``: nutpie on the generic log density, one numba kernel for every model
+        structure, compiled once per machine and loaded from numba's disk cache
+        (:mod:`bayeslong.infer.generic_logp`; docs/engine.md, "Compile once per machine").
+        ``nutpie``: nutpie on the PyMC model's graph, compiled by numba per structure
+        (20-50 s with numba's cache warm, minutes with it empty). ``pymc``: PyMC's NUTS.
+        ``auto`` is ``generic`` when nutpie is installed and no prior is a PyMC factory,
+        ``nutpie`` when one is, PyMC's NUTS without nutpie. Measured with
+        ``bench/first_fit.py`` (alt, N = 120, T = 5, 4 chains x 1000 draws, fresh process,
+        2-core machine under load) and ``bench/sampler_speed.py``: see docs/engine.md.
+        If nutpie cannot start, the fit goes on with PyMC's NUTS (with a warning).
     progressbar : bool, default True
     cores : int, optional
         Chains run in parallel (default: min(chains, CPU count)); each uses one BLAS thread.
