@@ -217,8 +217,31 @@ def _stat(stats, *names):
     return None
 
 
+@contextlib.contextmanager
+def _arviz_numpy():
+    """ArviZ's NumPy code paths for the diagnostics, whatever its global numba switch.
+
+    With numba installed ArviZ compiles its own numba helpers in every new process (about
+    1-2 s measured under load, more than the diagnostics of a few dozen parameters cost in
+    NumPy); the first fit in a process would pay it. The switch is restored afterwards.
+    """
+    from arviz.utils import Numba
+
+    was = Numba.numba_flag
+    Numba.numba_flag = False
+    try:
+        yield
+    finally:
+        Numba.numba_flag = was
+
+
 def diagnose(idata, names) -> pd.DataFrame:
     """Per-parameter R-hat and ESS with flags, and run-level checks in ``attrs`` (see Fit.diagnostics)."""
+    with _arviz_numpy():
+        return _diagnose(idata, names)
+
+
+def _diagnose(idata, names) -> pd.DataFrame:
     import arviz as az
 
     post = idata.posterior[list(names)]
