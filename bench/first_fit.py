@@ -5,7 +5,8 @@ the structure is new to it. With warm caches the on-disk caches of numba and PyT
 the machine's own (run once before to fill them); with ``--cold`` NUMBA_CACHE_DIR and
 PYTENSOR_FLAGS=compiledir=... point at fresh temporary directories, as on a new machine.
 
-Command:  cd /work/main && .venv/bin/python bench/first_fit.py [--cold] [--sampler auto|generic|nutpie|pymc]
+Command:  cd /work/main && .venv/bin/python bench/first_fit.py [--cold] [--sampler NAME]
+          (NAME: auto, generic, nutpie or pymc; default auto)
 Prints:   the command, the load (uptime) before and after, and the wall time of the fresh
           process split into imports, compile (building the model and compiling or loading
           the log density), sampling and the per-unit log-likelihood.
@@ -67,9 +68,10 @@ def main():
     compile_s = r["build"] + r["compile"]
     print(f"caches: {'cold (fresh temporary dirs)' if args.cold else 'warm (the machine own)'}; "
           f"sampler {r['sampler']}")
+    rest = r["fit"] - compile_s - r["sample"] - r["loglik"]
     print(f"wall of the fresh process {wall:6.1f} s = imports and data {r['imports']:5.1f} s "
           f"+ fit {r['fit']:5.1f} s (compile {compile_s:5.1f} s, sample {r['sample']:5.1f} s, "
-          f"per-unit log-likelihood {r['loglik']:4.1f} s, rest {r['fit'] - compile_s - r['sample'] - r['loglik']:4.1f} s)"
+          f"per-unit log-likelihood {r['loglik']:4.1f} s, rest {rest:4.1f} s)"
           f"; ESS(lag) {r['ess_lag']:.0f}")
     print("after: ", uptime())
 

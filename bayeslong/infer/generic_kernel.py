@@ -36,6 +36,10 @@ LOG_2PI = float(np.log(2.0 * np.pi))
 _HALF_LOG_2PI = 0.5 * LOG_2PI
 _HALF_LOG_2_OVER_PI = 0.5 * float(np.log(2.0 / np.pi))
 
+# NumPy's error model: a division by zero or an overflow gives inf or nan (then -inf log
+# density), never an exception, which a C callback could not pass on to the sampler
+_njit = numba.njit(cache=True, error_model="numpy")
+
 # header slots of ``ints`` (generic_logp.HEADER lists the same names in this order)
 H_NX, H_NPAR, H_L, H_Y, H_W, H_DEPTH, H_NSCALAR, H_NBLOCK, H_P = range(9)
 H_IDX = 9        # 7 offsets of the matrices' index arrays in ints
@@ -55,7 +59,7 @@ NORMAL, STUDENT_T, UNIFORM, HALFNORMAL, HALFSTUDENT_T, EXPONENTIAL, LOGNORMAL, G
 IDENTITY, LOG, INTERVAL = range(3)
 
 
-@numba.njit(cache=True)
+@_njit
 def family_logp(fam, v, a0, a1, a2):
     """Log density of a prior family at ``v`` and its derivative in ``v``.
 
@@ -100,7 +104,7 @@ def family_logp(fam, v, a0, a1, a2):
             (a0 - 1.0) / v - a1)
 
 
-@numba.njit(cache=True)
+@_njit
 def pattern_kernel(c, D, Sigma, counts, cross, masks):
     """Total pattern log-likelihood and its gradient in c (Y,), D (Y, W), Sigma (Y, Y).
 
@@ -186,7 +190,7 @@ def pattern_kernel(c, D, Sigma, counts, cross, masks):
     return total, -gA[:, 0].copy(), -np.ascontiguousarray(gA[:, 1:1 + W]), gS
 
 
-@numba.njit(cache=True)
+@_njit
 def _fill(ints, floats, which, rows, cols, theta):
     # model matrix ``which`` (0 a, 1 B, 2 G, 3 Psi, 4 nu, 5 Lam, 6 Theta): fixed + theta[index]
     io = ints[H_IDX + which]
@@ -200,7 +204,7 @@ def _fill(ints, floats, which, rows, cols, theta):
     return out
 
 
-@numba.njit(cache=True)
+@_njit
 def _scatter(ints, which, rows, cols, g, gtheta):
     # dL/dtheta_k += sum of dL/dM_ij over the entries that parameter k fills
     io = ints[H_IDX + which]
@@ -211,7 +215,7 @@ def _scatter(ints, which, rows, cols, g, gtheta):
                 gtheta[k] += g[i, j]
 
 
-@numba.njit(cache=True)
+@_njit
 def _scalar_value(tr, x, lo, hi):
     # PyMC's default transforms: value, d value / dx, log-Jacobian and its derivative
     if tr == IDENTITY:
@@ -226,13 +230,14 @@ def _scalar_value(tr, x, lo, hi):
             math.log(hi - lo) - 2.0 * sp - x, 1.0 - 2.0 * s)
 
 
-@numba.njit(cache=True)
+@_njit
 def natural(x, ints, floats):
     """The parameter vector theta (structure.names order) at the unconstrained point x."""
     theta = np.zeros(ints[H_NPAR])
     so, sf = ints[H_SCALAR], ints[H_SCALAR_F]
     for j in range(ints[H_NSCALAR]):
-        xp, k, target, tr = ints[so + 5 * j], ints[so + 5 * j + 1], ints[so + 5 * j + 3], ints[so + 5 * j + 4]
+        xp, k = ints[so + 5 * j], ints[so + 5 * j + 1]
+        target, tr = ints[so + 5 * j + 3], ints[so + 5 * j + 4]
         v = _scalar_value(tr, x[xp], floats[sf + 3 * j], floats[sf + 3 * j + 1])[0]
         theta[k] = v * v if target == 1 else v
     bo = ints[H_BLOCK]
@@ -243,7 +248,7 @@ def natural(x, ints, floats):
     return theta
 
 
-@numba.njit(cache=True)
+@_njit
 def _block_factor(x, off, q):
     # the packed lower Cholesky factor (row-major, diagonal on the log scale) as a matrix
     L = np.zeros((q, q))
@@ -255,7 +260,7 @@ def _block_factor(x, off, q):
     return L
 
 
-@numba.njit(cache=True)
+@_njit
 def _block_put(ints, mo, q, S, theta):
     # block member table at ints[mo:]: q diagonal parameters, then the q x q index matrix
     for r in range(q):
@@ -263,7 +268,7 @@ def _block_put(ints, mo, q, S, theta):
             theta[ints[mo + q + r * q + c]] = S[r, c]
 
 
-@numba.njit(cache=True)
+@_njit
 def logp_grad(x, ints, floats):
     """Log posterior density at the unconstrained point ``x`` and its gradient.
 
@@ -304,7 +309,8 @@ def logp_grad(x, ints, floats):
     nb = ints[H_NBLOCK]
     fpos = bf
     for b in range(nb):
-        off, q, fam, mo = ints[bo + 4 * b], ints[bo + 4 * b + 1], ints[bo + 4 * b + 2], ints[bo + 4 * b + 3]
+        off, q = ints[bo + 4 * b], ints[bo + 4 * b + 1]
+        fam, mo = ints[bo + 4 * b + 2], ints[bo + 4 * b + 3]
         eta, norm = floats[fpos], floats[fpos + 1]
         L = _block_factor(x, off, q)
         _block_put(ints, mo, q, L @ L.T, theta)
@@ -315,7 +321,8 @@ def logp_grad(x, ints, floats):
             for c in range(r + 1):
                 var += L[r, c] * L[r, c]
             sd = math.sqrt(var)
-            a0, a1, a2 = floats[fpos + 2 + 3 * r], floats[fpos + 3 + 3 * r], floats[fpos + 4 + 3 * r]
+            h = fpos + 2 + 3 * r
+            a0, a1, a2 = floats[h], floats[h + 1], floats[h + 2]
             prior, dprior = family_logp(fam, sd, a0, a1, a2)
             # PyMC's LKJCholeskyCov with eta = 1 and the potential (eta - 1) log det C:
             # kappa log(L_rr / sd_r) - r log sd_r, plus log L_rr from the log transform
@@ -411,7 +418,7 @@ def logp_grad(x, ints, floats):
     return lp, grad
 
 
-@numba.njit(cache=True)
+@_njit
 def logp_only(x, ints, floats):
     return logp_grad(x, ints, floats)[0]
 
@@ -428,7 +435,7 @@ def _as_pointer(typingctx, src):
     return sig, codegen
 
 
-@numba.njit(cache=True)
+@_njit
 def _buffers(user_data_):
     ud = numba.carray(user_data_, (4,), np.uint64)
     ints = numba.carray(_as_pointer(ud[0]), (int(ud[1]),), np.int64)
@@ -442,7 +449,7 @@ _EXPAND_SIG = types.int64(types.uint64, types.uint64, types.CPointer(types.doubl
                           types.CPointer(types.double), types.voidptr)
 
 
-@numba.cfunc(_LOGP_SIG, cache=True)
+@numba.cfunc(_LOGP_SIG, cache=True, error_model="numpy")
 def logp_cfunc(dim, x_, out_, logp_, user_data_):
     """nutpie's log-density callback (return codes as nutpie's own: 3, 4 non-finite)."""
     ints, floats = _buffers(user_data_)
@@ -451,7 +458,10 @@ def logp_cfunc(dim, x_, out_, logp_, user_data_):
     x = numba.carray(x_, (dim,))
     out = numba.carray(out_, (dim,))
     logp = numba.carray(logp_, (1,))
-    value, grad = logp_grad(x, ints, floats)
+    try:  # nothing may escape a C callback; nutpie reads a non-zero code as a failed step
+        value, grad = logp_grad(x, ints, floats)
+    except Exception:  # noqa: BLE001
+        return 1
     logp[0] = value
     out[:] = grad
     if not np.isfinite(value):
@@ -459,7 +469,7 @@ def logp_cfunc(dim, x_, out_, logp_, user_data_):
     return 0
 
 
-@numba.cfunc(_EXPAND_SIG, cache=True)
+@numba.cfunc(_EXPAND_SIG, cache=True, error_model="numpy")
 def expand_cfunc(dim, expanded, x_, out_, user_data_):
     """nutpie's draw callback: the unconstrained point -> theta in structure.names order."""
     ints, floats = _buffers(user_data_)

@@ -125,13 +125,30 @@ def test_gradient_equals_finite_differences(name):
     np.testing.assert_allclose(grad, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
 
 
-def test_not_positive_definite_gives_minus_inf_without_error():
+@pytest.mark.parametrize("fill", [800.0, -800.0])
+def test_no_finite_density_gives_minus_inf_without_error(fill):
+    # exp(800) overflows, exp(-800) underflows to a zero variance: no finite density
     spec, panel = _design("alt")
     structure = structure_for(spec, panel)
     f = logp_function(structure, resolve_priors(structure, panel), panel)
-    x = np.full(f.layout.n_x, 800.0)  # exp overflows: no finite density
-    value, grad = f(x)
+    value, grad = f(np.full(f.layout.n_x, fill))
     assert value == -np.inf and np.all(grad == 0)
+
+
+def test_nutpie_start_failure_falls_back_to_pymc(sleep_panel, monkeypatch):
+    # the fallback of sampling.fit: nutpie refusing to start goes on with PyMC's NUTS
+    from bayeslong.infer import generic_logp
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("Failed to initialize the sampler: bad initial gradient")
+
+    monkeypatch.setattr(generic_logp, "sample", refuse)
+    with pytest.warns(UserWarning, match="sampling with PyMC's NUTS instead"), \
+            warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        result = fit(bl.model("linear-growth"), sleep_panel, draws=30, tune=30, chains=1,
+                     seed=1, progressbar=False)
+    assert result.sampler == "pymc"
 
 
 def test_new_structure_compiles_nothing():
