@@ -111,6 +111,27 @@ def test_every_prior_family_equals_pymc_model():
             np.testing.assert_allclose(grad, ref_grad, rtol=1e-10, atol=1e-10 * np.abs(ref_grad).max())
 
 
+@pytest.mark.parametrize("name", ["alt", "bivariate-alt", "dual-change"])
+def test_start_point_equals_pymc_path(name):
+    # reference: the PyMC path's start (sampling._start_point, transformed by PyMC's
+    # initial-point function as sampling._sample_nutpie does)
+    from pymc.initial_point import make_initial_point_fn
+
+    from bayeslong.infer.generic_logp import start_x
+    from bayeslong.infer.pymc_model import build_model
+    from bayeslong.infer.sampling import _start_point
+
+    spec, panel = _design(name)
+    structure = structure_for(spec, panel)
+    prior_set = resolve_priors(structure, panel)
+    model = build_model(spec, panel, prior_set)
+    start = _start_point(model, structure, panel, prior_set)
+    ip = make_initial_point_fn(model=model, overrides=start, jitter_rvs=set(),
+                               return_transformed=True)(0)
+    old = np.concatenate([np.ravel(ip[model.rvs_to_values[rv].name]) for rv in model.free_RVs])
+    np.testing.assert_allclose(start_x(layout(structure, prior_set), panel), old, rtol=1e-12)
+
+
 @pytest.mark.parametrize("name", ["alt", "bivariate-alt", "dual-change", "free-growth-lag"])
 def test_gradient_equals_finite_differences(name):
     # central differences of the kernel's own log density, step 1e-5: error O(h^2) ~ 1e-9
