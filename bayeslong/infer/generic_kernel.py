@@ -9,7 +9,7 @@ function is ``njit(cache=True)`` (or a ``cfunc(cache=True)``): numba compiles th
 machine, stores the machine code in its on-disk cache, and every later process, structure,
 option, data size and prior value reuses it.
 
-Buffer layout (offsets are read from the header of ``ints``; see ``generic_logp.HEADER``):
+Buffer layout (offsets are read from the header of ``ints``, slots ``H_*`` below):
 matrices a, B, G, Psi, nu, Lam, Theta as index arrays (ints) and fixed parts (floats);
 a table of scalar random variables (x position, parameter, family, target, transform)
 with three hyperparameters each; a table of LKJ covariance blocks (x offset, q, family,
@@ -40,7 +40,7 @@ _HALF_LOG_2_OVER_PI = 0.5 * float(np.log(2.0 / np.pi))
 # density), never an exception, which a C callback could not pass on to the sampler
 _njit = numba.njit(cache=True, error_model="numpy")
 
-# header slots of ``ints`` (generic_logp.HEADER lists the same names in this order)
+# header slots of ``ints`` (generic_logp._build_layout and Layout.buffers fill them)
 H_NX, H_NPAR, H_L, H_Y, H_W, H_DEPTH, H_NSCALAR, H_NBLOCK, H_P = range(9)
 H_IDX = 9        # 7 offsets of the matrices' index arrays in ints
 H_FIX = 16       # 7 offsets of the matrices' fixed parts in floats

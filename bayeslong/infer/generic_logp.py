@@ -100,6 +100,8 @@ class Layout:
         """``(ints, floats)`` with the pattern data appended (float64, C order)."""
         ints = self.ints.copy()
         base = len(self.floats)
+        # header slots (generic_kernel): 8 number of patterns; 27, 28, 29 where counts,
+        # cross-products and masks start in floats
         counts, cross, masks = (np.ascontiguousarray(a, dtype=float) for a in (counts, cross, masks))
         ints[8] = len(counts)
         ints[27], ints[28], ints[29] = base, base + counts.size, base + counts.size + cross.size
@@ -144,7 +146,7 @@ def layout(structure: Structure, prior_set: PriorSet) -> Layout:
     """The :class:`Layout` of a structure and prior set (raises SpecError for factories)."""
     if not supported(prior_set):
         raise SpecError("a prior given as a PyMC factory has no array form; the generic "
-                        "engine cannot take it (sampler='nutpie-pymc' or 'pymc' can)")
+                        "kernel cannot take it (sampler='nutpie' or 'pymc' can)")
     return _build_layout(structure, prior_set)
 
 
