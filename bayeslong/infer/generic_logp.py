@@ -238,18 +238,31 @@ def start_x(lay: Layout, panel) -> np.ndarray:
     return lay.to_x(theta)
 
 
-def nutpie_model(lay: Layout, panel):
-    """A ``nutpie.sample``-able model of ``lay`` on ``panel``; nothing is compiled here."""
-    from nutpie import _lib
-    from nutpie.sample import CompiledModel
+def nutpie_model(lay: Layout, panel, callback: str = "c"):
+    """A ``nutpie.sample``-able model of ``lay`` on ``panel``; nothing is compiled here.
 
-    from bayeslong.infer import generic_kernel as gk
-
+    ``callback="c"``: nutpie calls the kernel's C callbacks directly (its compiled-model
+    interface, as its PyMC front end does; no Python, no GIL per evaluation).
+    ``callback="python"``: nutpie's public Python-function interface (``from_pyfunc``)
+    around the same kernel, used when the C interface is not there (another nutpie
+    version); each evaluation then goes through Python and holds the GIL.
+    """
     ints, floats = lay.panel_buffers(panel)
-    user_data = np.array([ints.ctypes.data, ints.size, floats.ctypes.data, floats.size],
-                         dtype=np.uint64)
     init = start_x(lay, panel)
     names = list(lay.structure.names)
+    try:
+        from nutpie import _lib
+        from nutpie.sample import CompiledModel
+
+        c_interface = all(hasattr(_lib, n) for n in ("LogpFunc", "ExpandFunc", "PyMcModel"))
+    except ImportError:  # pragma: no cover - nutpie without its extension module
+        c_interface = False
+    if callback == "python" or not c_interface:
+        return _pyfunc_model(lay, ints, floats, init, names), init
+    from bayeslong.infer import generic_kernel as gk
+
+    user_data = np.array([ints.ctypes.data, ints.size, floats.ctypes.data, floats.size],
+                         dtype=np.uint64)
 
     class _Compiled(CompiledModel):
         # nutpie's compiled-model protocol (a dataclass with ``dims``): n_dim, shapes,
@@ -292,8 +305,33 @@ def nutpie_model(lay: Layout, panel):
     return compiled, init
 
 
+def _pyfunc_model(lay: Layout, ints, floats, init, names):
+    # nutpie's public interface: make_logp_fn() -> f(x) -> (logp, grad); the expand
+    # function maps a draw to the named parameters
+    from nutpie.compiled_pyfunc import from_pyfunc
+
+    from bayeslong.infer.generic_kernel import logp_grad, natural
+
+    def make_logp_fn():
+        def logp(x, **_):
+            value, grad = logp_grad(np.ascontiguousarray(x, dtype=float), ints, floats)
+            return float(value), grad
+
+        return logp
+
+    def make_expand_fn(*_):
+        def expand(x, **_):
+            theta = natural(np.ascontiguousarray(x, dtype=float), ints, floats)
+            return {name: np.asarray(theta[i]) for i, name in enumerate(names)}
+
+        return expand
+
+    return from_pyfunc(lay.n_x, make_logp_fn, make_expand_fn, [np.dtype("float64")] * len(names),
+                       [()] * len(names), names, make_initial_point_fn=lambda seed: init.copy())
+
+
 def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, chains, cores, seed,
-           progressbar, names=None):
+           progressbar, names=None, callback: str = "c"):
     """NUTS with nutpie on the generic kernel: ``(idata, compile seconds, sample seconds)``.
 
     "Compile" is loading the kernel: importing :mod:`bayeslong.infer.generic_kernel` loads
@@ -309,7 +347,7 @@ def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, cha
     from bayeslong.infer import generic_kernel  # noqa: F401  (loads or compiles the kernel)
 
     compile_s = time.perf_counter() - t0
-    compiled, init = nutpie_model(layout(structure, prior_set), panel)
+    compiled, init = nutpie_model(layout(structure, prior_set), panel, callback)
     t0 = time.perf_counter()
     idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                           progress_bar=progressbar, init_mean=init, save_warmup=False,

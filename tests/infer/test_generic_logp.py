@@ -156,6 +156,20 @@ def test_no_finite_density_gives_minus_inf_without_error(fill):
     assert value == -np.inf and np.all(grad == 0)
 
 
+def test_python_callback_gives_the_same_draws(sleep_panel):
+    # nutpie's public Python-function interface around the same kernel (the route taken
+    # when its C interface is missing): the same log density, so the same seeded draws
+    from bayeslong.infer.generic_logp import sample
+
+    structure = structure_for(bl.model("linear-growth"), sleep_panel)
+    prior_set = resolve_priors(structure, sleep_panel)
+    runs = [sample(structure, prior_set, sleep_panel, draws=50, tune=50, chains=1, cores=1,
+                   seed=3, progressbar=False, callback=cb)[0] for cb in ("c", "python")]
+    for name in structure.names:
+        np.testing.assert_allclose(runs[1].posterior[name].values, runs[0].posterior[name].values,
+                                   rtol=1e-12)
+
+
 def test_nutpie_start_failure_falls_back_to_pymc(sleep_panel, monkeypatch):
     # the fallback of sampling.fit: nutpie refusing to start goes on with PyMC's NUTS
     from bayeslong.infer import generic_logp
