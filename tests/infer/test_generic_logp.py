@@ -99,7 +99,12 @@ def test_every_prior_family_equals_pymc_model():
               "initial_var": ("halfstudent_t", 3.0, 1.0), "level_slope_cov": ("lkj", 4.0),
               "resid_var": ("gamma", 2.0, 1.5)}
     cases = [priors, {"resid_var": ("lognormal", 0.0, 1.0)}, {"resid_var": ("exponential", 2.0)},
-             {"resid_var": ("uniform", 0.0, 10.0)}, {"lag": ("halfnormal", 1.0)}]
+             {"resid_var": ("uniform", 0.0, 10.0)}, {"lag": ("halfnormal", 1.0)},
+             # the SD priors of an LKJ block's members
+             {v: ("uniform", 0.0, 20.0) for v in ("level_var", "slope_var", "initial_var")},
+             {v: ("lognormal", 0.5, 1.0) for v in ("level_var", "slope_var", "initial_var")},
+             {v: ("exponential", 0.7) for v in ("level_var", "slope_var", "initial_var")},
+             {v: ("gamma", 2.0, 1.0) for v in ("level_var", "slope_var", "initial_var")}]
     rng = np.random.default_rng(2)
     for case in cases:
         logp, dlogp, point, generic, _ = _pymc_pair(spec, panel, case)
