@@ -268,3 +268,15 @@ def test_prior_factory_falls_back_to_pymc_model(sleep_panel):
         _choose("generic", factory)
     with pytest.raises(SpecError, match="factory"):
         layout(structure, factory)
+
+
+def test_packing_and_kernel_agree_on_codes():
+    # the packer (no numba import) and the kernel name the same header size, family codes
+    # and every family of priors.FAMILIES but the LKJ (which has its own block table)
+    from bayeslong.infer import generic_kernel, generic_logp
+    from bayeslong.infer.priors import FAMILIES
+
+    assert generic_logp.HEADER_SIZE == generic_kernel.HEADER_SIZE
+    assert set(generic_logp.FAMILY_CODES) == set(FAMILIES) - {"lkj"}
+    assert generic_logp.FAMILY_CODES["gamma"] == generic_kernel.GAMMA
+    assert generic_logp.FAMILY_CODES["normal"] == generic_kernel.NORMAL
