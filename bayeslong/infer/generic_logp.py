@@ -281,9 +281,12 @@ def nutpie_model(lay: Layout, panel, callback: str = "c"):
             return {}
 
         def _make_model(self, init_mean):
-            logp = _lib.LogpFunc(gk.logp_cfunc.address, user_data.ctypes.data, self)
+            # the callbacks read the buffers through raw addresses: nutpie holds ``keep``
+            # (the buffers and the address array) for as long as it holds the callbacks
+            keep = (ints, floats, user_data, self)
+            logp = _lib.LogpFunc(gk.logp_cfunc.address, user_data.ctypes.data, keep)
             expand = _lib.ExpandFunc(lay.n_x, len(names), gk.expand_cfunc.address,
-                                     user_data.ctypes.data, self)
+                                     user_data.ctypes.data, keep)
             variables = _lib.PyVariable.new_variables(names, ["float64"] * len(names),
                                                       [()] * len(names), {}, {})
 
@@ -299,10 +302,7 @@ def nutpie_model(lay: Layout, panel, callback: str = "c"):
             return _lib.PySampler.from_pymc(settings, cores, self._make_model(init_mean),
                                             progress_type, store)
 
-    compiled = _Compiled(dims={})
-    # the buffers must outlive the sampler: the callbacks read them through raw addresses
-    compiled._keep = (ints, floats, user_data)
-    return compiled, init
+    return _Compiled(dims={}), init
 
 
 def _pyfunc_model(lay: Layout, ints, floats, init, names):
