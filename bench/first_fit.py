@@ -7,14 +7,15 @@ PYTENSOR_FLAGS=compiledir=... point at fresh temporary directories, as on a new 
 
 Command:  cd /work/main && .venv/bin/python bench/first_fit.py [--cold] [--sampler NAME]
           (NAME: auto, generic, nutpie or pymc; default auto)
-Prints:   the command, the load (uptime) before and after, and the wall time of the fresh
+Prints:   the command, the load (uptime) before and after, the wall time of the fresh
           process split into imports, compile (building the model and compiling or loading
-          the log density), sampling and the per-unit log-likelihood.
+          the log density), sampling and the per-unit log-likelihood, and its CPU time.
 """
 
 import argparse
 import json
 import os
+import resource
 import subprocess
 import sys
 import tempfile
@@ -59,8 +60,11 @@ def main():
             env["PYTENSOR_FLAGS"] = f"compiledir={Path(tmp) / 'pytensor'}"
         code = CHILD.format(bench=str(Path(__file__).parent), sampler=args.sampler)
         t0 = time.perf_counter()
+        cpu0 = resource.getrusage(resource.RUSAGE_CHILDREN)
         out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
         wall = time.perf_counter() - t0
+        cpu1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpu = (cpu1.ru_utime - cpu0.ru_utime) + (cpu1.ru_stime - cpu0.ru_stime)
     if out.returncode:
         print(out.stderr)
         raise SystemExit(out.returncode)
@@ -73,6 +77,9 @@ def main():
           f"+ fit {r['fit']:5.1f} s (compile {compile_s:5.1f} s, sample {r['sample']:5.1f} s, "
           f"per-unit log-likelihood {r['loglik']:4.1f} s, rest {rest:4.1f} s)"
           f"; ESS(lag) {r['ess_lag']:.0f}")
+    # CPU seconds of the fresh process (all its threads): on a loaded machine the wall
+    # time grows with the load, the CPU time much less
+    print(f"CPU time of the fresh process {cpu:6.1f} s")
     print("after: ", uptime())
 
 
