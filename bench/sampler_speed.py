@@ -1,8 +1,12 @@
-"""ESS per second of the lag and wall time: our engine with PyMC NUTS and nutpie, against a
-hand-written data-augmentation model with person-level latents.
+"""ESS per second of the lag and wall time: our engine with PyMC NUTS, with nutpie on the
+PyMC graph (compiled per structure) and with nutpie on the generic kernel (compiled once per
+machine), against a hand-written data-augmentation model with person-level latents.
 
-Command:  cd /work/main && .venv/bin/python bench/sampler_speed.py [N] [draws] [chains]
+Command:  cd /work/main && .venv/bin/python bench/sampler_speed.py [N] [draws] [chains] [which]
+          which: comma-separated subset of pymc,nutpie,generic,augmented (default all)
 Default:  alt, N = 500, T = 6, 4 chains x 1000 draws (1000 warm-up), one run of each.
+Columns:  ESS/s over the whole wall time (compile included) and ESS per second of sampling
+          alone ("after compilation"); ratios generic / nutpie of both at the end.
 Machine:  2-core Linux VM shared with other jobs; timings are noisy (see the load average
           printed at the start).
 """
@@ -58,9 +62,10 @@ def run(label, func):
     idata, extra = func()
     wall = time.perf_counter() - t0
     ess = ess_lag(idata)
-    print(f"{label:<34} wall {wall:8.1f} s   ESS(lag) {ess:7.0f}   ESS/s {ess / wall:8.2f}   {extra}",
-          flush=True)
-    return ess / wall, wall
+    sample = extra.get("sample", wall) if extra else wall
+    print(f"{label:<34} wall {wall:8.1f} s   ESS(lag) {ess:7.0f}   ESS/s {ess / wall:8.2f}   "
+          f"ESS/s sampling {ess / max(sample, 1e-9):8.1f}   {extra}", flush=True)
+    return ess / wall, wall, ess / max(sample, 1e-9)
 
 
 def main():
@@ -68,6 +73,7 @@ def main():
     draws = int(sys.argv[2]) if len(sys.argv) > 2 else 1000
     chains = int(sys.argv[3]) if len(sys.argv) > 3 else 4
     print(f"alt N={n} T=6, {chains} chains x {draws} draws; load average {os.getloadavg()}")
+    print("command:", " ".join([Path(sys.executable).name, *sys.argv]))
     spec, panel = simulate_alt(n, seed=1)
     results = {}
 
@@ -93,19 +99,28 @@ def main():
                               progressbar=False, compute_convergence_checks=False)
         return idata, {}
 
-    which = sys.argv[4].split(",") if len(sys.argv) > 4 else ["pymc", "nutpie", "augmented"]
+    which = (sys.argv[4].split(",") if len(sys.argv) > 4
+             else ["pymc", "nutpie", "generic", "augmented"])
     if "pymc" in which:
         results["pymc"] = run("(a) marginal engine + PyMC NUTS", ours("pymc"))
         results["pymc-refit"] = run("(a') same, compiled before", refit("pymc"))
     if "nutpie" in which:
         results["nutpie"] = run("(b) marginal engine + nutpie", ours("nutpie"))
         results["nutpie-refit"] = run("(b') same, compiled before", refit("nutpie"))
+    if "generic" in which:
+        results["generic"] = run("(d) generic kernel + nutpie", ours("generic"))
+        results["generic-refit"] = run("(d') same, second fit", refit("generic"))
     if "augmented" in which:
         results["augmented"] = run("(c) data augmentation + PyMC", augmented)
     if "augmented" in results:
         base = results["augmented"][0]
-        for k, (rate, _) in results.items():
+        for k, (rate, _, _) in results.items():
             print(f"ESS/s ratio {k} / augmented: {rate / base:8.1f}")
+    for new, old in (("generic", "nutpie"), ("generic-refit", "nutpie-refit")):
+        if new in results and old in results:
+            print(f"ratio {new} / {old}: ESS/s (wall) {results[new][0] / results[old][0]:6.2f}   "
+                  f"ESS/s sampling {results[new][2] / results[old][2]:6.2f}   "
+                  f"wall {results[new][1] / results[old][1]:6.2f}")
 
 
 if __name__ == "__main__":

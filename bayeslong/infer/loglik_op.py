@@ -29,7 +29,7 @@ import pytensor.tensor as pt
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op
 
-from bayeslong.infer.likelihood import LOG_2PI, loglik_terms
+from bayeslong.infer.likelihood import loglik_terms
 from bayeslong.model.moments import implied_moments
 
 
@@ -120,94 +120,12 @@ def compiled_loglik_function(structure, mode: str | None = None):
 
 
 def _kernel_source():
-    # the numba kernel, compiled on first use (numba import and compile cost seconds;
-    # only the numba backend needs them) and cached on disk by numba
-    import numba
+    # the numba kernel (bayeslong.infer.generic_kernel.pattern_kernel, the one the generic
+    # sampler also calls), imported on first use: numba's import costs seconds and only
+    # the numba backend needs it; numba caches its machine code on disk
+    from bayeslong.infer.generic_kernel import pattern_kernel
 
-    @numba.njit(cache=True)
-    def kernel(c, D, Sigma, counts, cross, masks):
-        """Total pattern log-likelihood and its gradient in c (Y,), D (Y, W), Sigma (Y, Y).
-
-        For pattern p with observed set o, A = [-c, -D, I], R_p = A_o M_p A_o':
-          ll_p = -n_p/2 (q log 2pi + log det S) - 1/2 tr(S^-1 R_p),  S = Sigma_oo = L L'
-          dll/dSigma_oo = -n_p/2 S^-1 + 1/2 S^-1 R_p S^-1,   dll/dA_o = -S^-1 A_o M_p
-        """
-        Y = Sigma.shape[0]
-        W = D.shape[1]
-        U = 1 + W + Y
-        P = counts.shape[0]
-        A = np.zeros((Y, U))
-        for i in range(Y):
-            A[i, 0] = -c[i]
-            for j in range(W):
-                A[i, 1 + j] = -D[i, j]
-            A[i, 1 + W + i] = 1.0
-        gA = np.zeros((Y, U))
-        gS = np.zeros((Y, Y))
-        total = 0.0
-        idx = np.empty(Y, np.int64)
-        L = np.zeros((Y, Y))
-        Li = np.zeros((Y, Y))
-        for p in range(P):
-            n_p = counts[p]
-            q = 0
-            for i in range(Y):
-                if masks[p, i] > 0.5:
-                    idx[q] = i
-                    q += 1
-            if n_p == 0.0 or q == 0:
-                continue
-            for j in range(q):  # Cholesky of Sigma_oo
-                s = Sigma[idx[j], idx[j]]
-                for k in range(j):
-                    s -= L[j, k] * L[j, k]
-                if not (s > 1e-200) or not np.isfinite(s):
-                    return -np.inf, np.zeros(Y), np.zeros((Y, W)), np.zeros((Y, Y))
-                L[j, j] = np.sqrt(s)
-                for i in range(j + 1, q):
-                    t = Sigma[idx[i], idx[j]]
-                    for k in range(j):
-                        t -= L[i, k] * L[j, k]
-                    L[i, j] = t / L[j, j]
-            logdet = 0.0
-            for j in range(q):  # L^-1 by forward substitution
-                logdet += 2.0 * np.log(L[j, j])
-                Li[j, j] = 1.0 / L[j, j]
-                for i in range(j + 1, q):
-                    t = 0.0
-                    for k in range(j, i):
-                        t -= L[i, k] * Li[k, j]
-                    Li[i, j] = t / L[i, i]
-            Sinv = np.zeros((q, q))
-            for i in range(q):
-                for j in range(i + 1):
-                    t = 0.0
-                    for k in range(i, q):
-                        t += Li[k, i] * Li[k, j]
-                    Sinv[i, j] = t
-                    Sinv[j, i] = t
-            Ao = np.empty((q, U))
-            for i in range(q):
-                Ao[i] = A[idx[i]]
-            AoM = Ao @ np.ascontiguousarray(cross[p])
-            R = AoM @ Ao.T
-            SR = Sinv @ R
-            tr = 0.0
-            for i in range(q):
-                tr += SR[i, i]
-            total += -0.5 * n_p * (q * LOG_2PI + logdet) - 0.5 * tr
-            G = 0.5 * (SR @ Sinv) - 0.5 * n_p * Sinv
-            gAo = -(Sinv @ AoM)
-            for i in range(q):
-                for j in range(q):
-                    gS[idx[i], idx[j]] += G[i, j]
-                for j in range(U):
-                    gA[idx[i], j] += gAo[i, j]
-        if not np.isfinite(total):
-            return -np.inf, np.zeros(Y), np.zeros((Y, W)), np.zeros((Y, Y))
-        return total, -gA[:, 0].copy(), -np.ascontiguousarray(gA[:, 1:1 + W]), gS
-
-    return kernel
+    return pattern_kernel
 
 
 _KERNEL: list = []

@@ -167,6 +167,13 @@ class PriorSet:
                 if p.source == "user" and p.family != "callable"}
 
 
+def lkj_name(prior_set: PriorSet, b: int) -> str:
+    """Name of the LKJ variable of covariance block ``b`` (the samplers' layouts share it)."""
+    diag = np.diag(prior_set.structure.blocks[b].index)
+    # no commas: samplers split dimension labels derived from variable names on commas
+    return "lkj__" + "__".join(prior_set.structure.names[int(i)] for i in diag)
+
+
 def _block_diag(structure: Structure, b: int) -> list[int]:
     return [int(i) for i in np.diag(structure.blocks[b].index)]
 

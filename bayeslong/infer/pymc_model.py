@@ -24,7 +24,7 @@ from bayeslong.dims import PARAMETER
 from bayeslong.errors import SpecError
 from bayeslong.infer.likelihood import pattern_arrays
 from bayeslong.infer.loglik_op import pattern_loglik
-from bayeslong.infer.priors import PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.infer.priors import PriorSet, assemble_theta, family_dist, lkj_name, resolve_priors
 from bayeslong.model.moments import implied_moments
 from bayeslong.model.structure import structure_for
 
@@ -36,13 +36,6 @@ def model_inputs(panel, prior_set: PriorSet) -> dict[str, np.ndarray]:
     """The values of the model's data inputs for ``panel`` and the prior values."""
     counts, cross, masks = pattern_arrays(panel.patterns())
     return {"counts": counts, "cross": cross, "masks": masks, "prior_hyper": prior_set.hyper}
-
-
-def lkj_name(prior_set: PriorSet, b: int) -> str:
-    """Name of the LKJ variable of covariance block ``b``."""
-    diag = np.diag(prior_set.structure.blocks[b].index)
-    # no commas: samplers split dimension labels derived from variable names on commas
-    return "lkj__" + "__".join(prior_set.structure.names[int(i)] for i in diag)
 
 
 def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:

@@ -4,9 +4,11 @@
 person-level latents), samples it with NUTS, adds one log-likelihood term per unit for
 every draw, checks convergence and returns a :class:`Fit`.
 
-Compile once per model structure (docs/engine.md): the compiled sampler is cached by the
-structure and the prior families; a refit with another dataset of the same design or other
-prior values only swaps the model's data inputs.
+Compile once per machine (docs/engine.md): the default sampler runs one numba log density
+for every structure, loaded from numba's disk cache (:mod:`bayeslong.infer.generic_logp`).
+The PyMC paths compile once per model structure: that compiled sampler is cached by the
+structure and the prior families, and a refit with another dataset of the same design or
+other prior values only swaps the model's data inputs.
 """
 
 from __future__ import annotations
@@ -32,8 +34,10 @@ from bayeslong.infer.progress import PymcCounter, SamplingProgress, sample_nutpi
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import Structure, structure_for
 
-#: Sampler names accepted by :func:`fit`.
-SAMPLERS = ("auto", "nutpie", "pymc")
+#: Sampler names accepted by :func:`fit`: ``generic`` is nutpie on the generic kernel
+#: compiled once per machine (:mod:`bayeslong.infer.generic_logp`), ``nutpie`` nutpie on
+#: the PyMC model's graph compiled per structure, ``pymc`` PyMC's NUTS.
+SAMPLERS = ("auto", "generic", "nutpie", "pymc")
 
 #: Convergence thresholds (Vehtari et al. 2021): R-hat below 1.01, bulk and tail ESS above
 #: 100 per chain (400 for 4 chains). E-BFMI below 0.3 flags a chain (Betancourt 2016, common
@@ -65,7 +69,7 @@ class Fit:
         ``constant_data`` (covariates).
     prior_set : PriorSet
     sampler : str
-        The sampler that ran (``nutpie`` or ``pymc``).
+        The sampler that ran (``generic``, ``nutpie`` or ``pymc``).
     timing : dict
         Seconds spent compiling (0 when a cached compile was reused), sampling and
         computing the per-unit log-likelihood.
@@ -217,8 +221,31 @@ def _stat(stats, *names):
     return None
 
 
+@contextlib.contextmanager
+def _arviz_numpy():
+    """ArviZ's NumPy code paths for the diagnostics, whatever its global numba switch.
+
+    With numba installed ArviZ compiles its own numba helpers in every new process (about
+    1-2 s measured under load, more than the diagnostics of a few dozen parameters cost in
+    NumPy); the first fit in a process would pay it. The switch is restored afterwards.
+    """
+    from arviz.utils import Numba
+
+    was = Numba.numba_flag
+    Numba.numba_flag = False
+    try:
+        yield
+    finally:
+        Numba.numba_flag = was
+
+
 def diagnose(idata, names) -> pd.DataFrame:
     """Per-parameter R-hat and ESS with flags, and run-level checks in ``attrs`` (see Fit.diagnostics)."""
+    with _arviz_numpy():
+        return _diagnose(idata, names)
+
+
+def _diagnose(idata, names) -> pd.DataFrame:
     import arviz as az
 
     post = idata.posterior[list(names)]
@@ -379,13 +406,21 @@ def _nutpie_available() -> bool:
     return find_spec("nutpie") is not None
 
 
-def _choose(sampler: str) -> str:
+def _choose(sampler: str, prior_set: PriorSet | None = None) -> str:
     if sampler not in SAMPLERS:
         raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
+    factory = prior_set is not None and prior_set.has_callable
     if sampler == "auto":
-        return "nutpie" if _nutpie_available() else "pymc"
-    if sampler == "nutpie" and not _nutpie_available():
-        raise SpecError("sampler='nutpie' needs the nutpie package; install it with "
+        # the generic kernel when every prior has an array form (docs/engine.md, "Compile
+        # once per machine"); a prior given as a PyMC factory needs the PyMC model
+        if not _nutpie_available():
+            return "pymc"
+        return "nutpie" if factory else "generic"
+    if sampler == "generic" and factory:
+        raise SpecError("sampler='generic' cannot take a prior given as a PyMC factory; "
+                        "use sampler='nutpie' or 'pymc', or give the prior as (family, *args)")
+    if sampler in ("nutpie", "generic") and not _nutpie_available():
+        raise SpecError(f"sampler={sampler!r} needs the nutpie package; install it with "
                         "`pip install nutpie` (or `pip install bayeslong[fast]`), or use sampler='pymc'")
     return sampler
 
@@ -521,14 +556,17 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     seed : int, default 1
     priors : dict, optional
         Overrides by parameter name (see :func:`bayeslong.priors.resolve_priors`).
-    sampler : {"auto", "nutpie", "pymc"}
-        ``auto`` is nutpie when it is installed, PyMC's NUTS otherwise. Measured with
-        ``bench/sampler_speed.py`` (alt, N = 500, T = 6, 4 chains x 1000 draws, on a
-        2-core machine, load 1.6-2.5): nutpie took 58 s for a first fit (51 s of it
-        compiling with numba, its disk cache warm) and 4 s for a refit of the compiled
-        model, against 79 s and 71 s with PyMC's NUTS; ESS per second of the lag, compile
-        included, was 101 with nutpie and 18 with PyMC. On a machine whose numba cache is
-        empty nutpie's first compile takes minutes; ``sampler="pymc"`` avoids it.
+    sampler : {"auto", "generic", "nutpie", "pymc"}
+        ``generic``: nutpie on the generic log density, one numba kernel for every model
+        structure, compiled once per machine and loaded from numba's disk cache
+        (:mod:`bayeslong.infer.generic_logp`; docs/engine.md, "Compile once per machine").
+        ``nutpie``: nutpie on the PyMC model's graph, compiled by numba per structure
+        (20-50 s with numba's cache warm, minutes with it empty). ``pymc``: PyMC's NUTS.
+        ``auto`` is ``generic`` when nutpie is installed and no prior is a PyMC factory,
+        ``nutpie`` when one is, PyMC's NUTS without nutpie. Measured with
+        ``bench/first_fit.py`` (alt, N = 120, T = 5, 4 chains x 1000 draws, fresh process,
+        2-core machine under load) and ``bench/sampler_speed.py``: see docs/engine.md.
+        If nutpie cannot start, the fit goes on with PyMC's NUTS (with a warning).
     progressbar : bool or callable, default True
         ``True`` shows the sampler's own progress bar, ``False`` nothing. A callable
         receives a :class:`bayeslong.infer.progress.SamplingProgress` when compilation
@@ -570,35 +608,49 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
-    which = _choose(sampler)
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)
-    from bayeslong.infer.pymc_model import model_inputs
-
-    t0 = time.perf_counter()
-    entry, built = _entry(spec, panel, structure, prior_set)
-    build_s = time.perf_counter() - t0
-    inputs = model_inputs(panel, prior_set)
-    start = _start_point(entry["model"], structure, panel, prior_set, seed=int(seed))
+    which = _choose(sampler, prior_set)
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
-    run = _sample_nutpie if which == "nutpie" else _sample_pymc
     settings = dict(draws=int(draws), tune=int(tune), chains=int(chains), cores=cores,
                     seed=int(seed), progressbar=progressbar, names=structure.names)
+    state = {}
+
+    def pymc_entry():
+        # the PyMC model and its inputs, built on first need (the generic path needs neither)
+        if not state:
+            from bayeslong.infer.pymc_model import model_inputs
+
+            t0 = time.perf_counter()
+            state["entry"], _ = _entry(spec, panel, structure, prior_set)
+            state["build"] = time.perf_counter() - t0
+            state["inputs"] = model_inputs(panel, prior_set)
+            state["start"] = _start_point(state["entry"]["model"], structure, panel, prior_set,
+                                          seed=int(seed))
+        return state["entry"], state["inputs"], state["start"]
+
     with _one_thread(), warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
         try:
-            raw, compile_s, sample_s = run(entry, inputs, start, **settings)
+            if which == "generic":
+                from bayeslong.infer.generic_logp import sample as sample_generic
+
+                raw, compile_s, sample_s = sample_generic(structure, prior_set, panel, **settings)
+            else:
+                run = _sample_nutpie if which == "nutpie" else _sample_pymc
+                raw, compile_s, sample_s = run(*pymc_entry(), **settings)
         except RuntimeError as err:
             # nutpie 0.16 sometimes rejects a start point whose log density and gradient
             # are finite (seen on a 40-unit ALT panel, "bad initial gradient"); PyMC's NUTS
             # samples the same model from the same start, so the fit goes on with it
-            if which != "nutpie" or "initializ" not in str(err):
+            if which not in ("nutpie", "generic") or "initializ" not in str(err):
                 raise
             warnings.warn(f"model '{spec.name}': nutpie could not start ({str(err).splitlines()[0]}); "
                           "sampling with PyMC's NUTS instead", UserWarning, stacklevel=2)
             which = "pymc"
-            raw, compile_s, sample_s = _sample_pymc(entry, inputs, start, **settings)
+            raw, compile_s, sample_s = _sample_pymc(*pymc_entry(), **settings)
+    build_s = state.get("build", 0.0)
     t0 = time.perf_counter()
     with _one_thread():  # tiny batched matrices: BLAS threads only cost here
         idata = _tidy(raw, structure, panel, prior_set)

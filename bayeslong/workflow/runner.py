@@ -163,9 +163,10 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
                 f"study file {study.source.name}: `sampling.sampler` must be one of "
                 f"{', '.join(repr(x) for x in samplers)}; got {study.sampling['sampler']!r}"
                 f"{nearest_hint(study.sampling['sampler'], samplers)}")
-        if study.sampling["sampler"] == "nutpie" and not _installed("nutpie"):
+        if study.sampling["sampler"] in ("nutpie", "generic") and not _installed("nutpie"):
             raise SpecError(
-                f"study file {study.source.name}: `sampling.sampler = \"nutpie\"` needs the "
+                f"study file {study.source.name}: `sampling.sampler = "
+                f"\"{study.sampling['sampler']}\"` needs the "
                 "nutpie package, which is not installed; install it with `pip install nutpie` "
                 "(or `pip install bayeslong[fast]`), or set `sampler = \"auto\"` to use "
                 "PyMC's NUTS (slower for many draws)")

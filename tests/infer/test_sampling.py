@@ -137,7 +137,7 @@ def test_priors_table_and_override(sleep_panel, sleep_fit):
     assert set(table["source"]) == {"default"}
     with pytest.raises(SpecError, match="valid names are"):
         fit(bl.model("linear-growth"), sleep_panel, priors={"lag": ("normal", 0, 1)})
-    with pytest.raises(SpecError, match="`sampler` must be one of auto, nutpie, pymc"):
+    with pytest.raises(SpecError, match="`sampler` must be one of auto, generic, nutpie, pymc"):
         fit(bl.model("linear-growth"), sleep_panel, sampler="hmc")
     with pytest.raises(SpecError, match="`draws` of fit must be at least 1; got 0"):
         fit(bl.model("linear-growth"), sleep_panel, draws=0)
