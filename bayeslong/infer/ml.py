@@ -259,7 +259,7 @@ def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
     scale = float(np.nanvar(panel.y))
     out = []
     for b in structure.blocks:
-        S = theta[b.index]
+        S = b.matrix(theta)
         for r in range(len(S)):
             # conditional variance of the block's r-th variable given the others before it
             sub = S[: r + 1, : r + 1]
@@ -291,7 +291,7 @@ def hessian(f, theta, data, grad=None) -> np.ndarray:
 
 
 def _admissible(structure: Structure, theta: np.ndarray) -> bool:
-    return all(np.linalg.eigvalsh(theta[b.index]).min() > 0 for b in structure.blocks)
+    return all(np.linalg.eigvalsh(b.matrix(theta)).min() > 0 for b in structure.blocks)
 
 
 def _newton_polish(f, theta, data, structure, steps: int = 6):
