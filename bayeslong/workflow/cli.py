@@ -99,6 +99,7 @@ def cmd_check_data(args) -> int:
         _print_json({
             "data": str(study.data.path), "n_units": panel.n_units, "n_waves": panel.n_waves,
             "waves": list(panel.waves), "outcomes": list(panel.outcomes),
+            "indicators": {str(k): list(v) for k, v in panel.indicators.items()},
             "time_varying": list(panel.time_varying),
             "time_invariant": list(panel.time_invariant),
             "observed": {str(k): v for k, v in desc["observed"].to_dict(orient="index").items()},
@@ -110,9 +111,14 @@ def cmd_check_data(args) -> int:
     print(f"units:     {panel.n_units}")
     print(f"waves:     {panel.n_waves} ({', '.join(map(str, panel.waves))})")
     print(f"outcomes:  {', '.join(map(str, panel.outcomes))}")
+    if panel.has_indicators:
+        for name, group in panel.indicators.items():
+            measured = ("observed directly" if tuple(group) == (name,)
+                        else "measured by " + ", ".join(map(str, group)))
+            print(f"  {name}: {measured}")
     print(f"time-varying covariates:   {', '.join(map(str, panel.time_varying)) or 'none'}")
     print(f"time-invariant covariates: {', '.join(map(str, panel.time_invariant)) or 'none'}")
-    print("\nshare observed by wave:")
+    print("\nshare observed by wave" + (" and indicator:" if panel.has_indicators else ":"))
     print(desc["observed"].round(3).to_string())
     print("\nmissing-data patterns (o observed, . missing):")
     print(desc["patterns"].to_string())
