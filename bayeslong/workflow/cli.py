@@ -254,7 +254,12 @@ def _model_from_args(args):
             from bayeslong.errors import SpecError
 
             raise SpecError(f"--option {item!r} must look like name=value, e.g. initial=endogenous")
-        options[key.strip()] = value.strip()
+        key, value = key.strip(), value.strip()
+        if key == "processes" and value.isdigit():
+            value = int(value)
+        elif key == "same_wave":  # a comma-separated list of pairs, "sleep<-stress,mood<-sleep"
+            value = [v.strip() for v in value.split(",") if v.strip()]
+        options[key] = value
     return model(args.model, **options)
 
 
