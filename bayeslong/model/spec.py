@@ -254,7 +254,12 @@ class Spec:
 
     def __str__(self) -> str:
         opts = ", ".join(f"{k}={v}" for k, v in self.options.items())
-        return f"{self.name} ({opts})"
+        cross, same = self.paths.get("cross_lags", "all"), self.paths.get("same_wave", ())
+        extra = "" if self.processes < 3 else f", processes={self.processes}"
+        extra += (f", cross_lags={cross}" if cross == "none" else
+                  f", cross_lags drop {', '.join(cross['drop'])}" if isinstance(cross, dict) else "")
+        extra += f", same_wave {', '.join(same)}" if same else ""
+        return f"{self.name} ({opts}{extra})"
 
 
 def _resolve_measurement(given, where: str = "") -> dict:

@@ -280,3 +280,52 @@ def test_cross_loading_refused_at_intake_without_the_option():
                      seed=1, outcomes=("a", "b"))
     with pytest.raises(DataError, match=r"an indicator measures one process.*cross_loadings"):
         bl.Panel.from_long(df, unit="unit", wave="wave", outcomes={"p": ["a", "b"], "q": ["b"]})
+
+
+def test_simulated_three_process_panel_reproduces_implied_moments():
+    # bl.simulate solves the structural equations by substitution (model/simulation.py), not
+    # the implied moments: a large panel's sample moments must match moments_at within
+    # normal-theory sampling error (SE(cov_ij) = sqrt((S_ii S_jj + S_ij^2) / N); Anderson
+    # 2003, An Introduction to Multivariate Statistical Analysis, Thm 3.4.4), here with a
+    # dropped cross-lag, a same-wave path, indicators and a cross-loading
+    from bayeslong.model.moments import moments_at
+    from bayeslong.model.simulation import Simulation
+
+    indicators = {"stress": ("tense", "worried", "rushed"), "sleep": ("rested", "fell_asleep",
+                                                                      "woke_rarely"),
+                  "mood": ("mood",)}
+    spec = _spec(3, cross_loadings={"woke_rarely": "stress"})
+    structure = build_structure(spec, outcomes=NAMES[:3], n_waves=T, indicators=indicators)
+    params = dict(zip(structure.names, _random_theta(structure, 4)))
+    n = 50_000
+    sim = Simulation(spec=spec, params=params, n_units=n, n_waves=T, seed=8,
+                     outcomes=NAMES[:3], indicators=indicators)
+    df = sim.data()
+    items = [i for g in indicators.values() for i in g]
+    Y = np.concatenate([df[i].to_numpy().reshape(n, T) for i in items], axis=1)
+    c, _, Sigma = moments_at(sim.structure, sim.theta())
+    R = Y - c
+    d = np.diag(Sigma)
+    np.testing.assert_array_less(np.abs(R.mean(axis=0)), 5 * np.sqrt(d / n))
+    np.testing.assert_array_less(np.abs(np.cov(R, rowvar=False) - Sigma),
+                                 5 * np.sqrt((np.outer(d, d) + Sigma ** 2) / n))
+
+
+@pytest.mark.parametrize("name", ["clpm", "ri-clpm", "bivariate-alt"])
+def test_catalog_models_with_paths_are_identified_at_three(name):
+    # a dropped cross-lag and a same-wave path in each multi-process catalog model, K = 3;
+    # bivariate-alt also with indicators for two processes and a cross-loading
+    spec = _spec(3) if name == "clpm" else bl.model(
+        name, processes=3, cross_lags={"drop": ["stress<-sleep"]}, same_wave=["sleep<-stress"])
+    outcomes = NAMES[:3]
+    indicators = None
+    if name == "bivariate-alt":
+        indicators = {"stress": ["tense", "worried", "rushed"],
+                      "sleep": ["rested", "fell_asleep", "woke_rarely"]}
+        spec = spec.replace(cross_loadings={"woke_rarely": "stress"})
+    full = {o: tuple((indicators or {}).get(o, [o])) for o in outcomes}
+    st = build_structure(spec, outcomes=outcomes, n_waves=5, indicators=full)
+    panel = _panel(spec, outcomes, dict(zip(st.names, _random_theta(st, 2))), indicators,
+                   n=100, waves=5)
+    ident = bl.identify(spec, panel)
+    assert ident.identified, ident.deficient
