@@ -9,9 +9,10 @@ same-wave regression matrix B0)
     eta_1 ~ N(m_1, Phi_1),   eta_t = mu + B0 eta_t + R eta_(t-1) + zeta_t,  zeta_t ~ N(0, Psi)
 
 solved by hand, eta_t = A (mu + R eta_(t-1) + zeta_t) with A = (I - B0)^-1, for the mean and
-covariance of all waves, the indicators added as y = nu + Lam eta + eps (the
-multiple-indicator form of Mulder & Hamaker 2021, Structural Equation Modeling 28(4),
-638-648, with the latent form's lags), and scored unit by unit with
+covariance of all waves, the indicators added as y = nu + Lam eta + eps (a factor model at
+every wave under the cross-lagged structure, as in the multiple-indicator extension of
+Mulder & Hamaker 2021, Structural Equation Modeling 28(4), 638-648, here without random
+intercepts), and scored unit by unit with
 ``scipy.stats.multivariate_normal.logpdf`` on the observed entries.
 """
 

@@ -164,3 +164,19 @@ def test_model_options_of_processes_and_measurement_pass_through(tmp_path):
 def test_model_option_errors_name_the_key(tmp_path, options, message):
     with pytest.raises(SpecError, match=message):
         load_study(_study(tmp_path, options=options))
+
+
+def test_wide_indicator_not_asked_at_a_wave(tmp_path):
+    long = _frame()
+    wide = long.pivot(index="person", columns="week", values=["rested", "fell_asleep", "mood"])
+    wide.columns = [f"{item}_{week}" for item, week in wide.columns]
+    wide = wide.reset_index().drop(columns=["rested_2"])
+    outcomes = ('{ sleep = { rested = ["rested_1", "", "rested_3", "rested_4"], '
+                'fell_asleep = ["fell_asleep_1", "fell_asleep_2", "fell_asleep_3", "fell_asleep_4"] }, '
+                'mood = ["mood_1", "mood_2", "mood_3", "mood_4"] }')
+    panel = load_study(_study(tmp_path, outcomes=outcomes, layout="wide", frame=wide)).panel()
+    # reference: the long table itself, rested missing at week 2 only
+    y = panel.y[:, :, panel.observed_names.index("rested")]
+    assert np.isnan(y[:, 1]).all()
+    expected = long.pivot(index="person", columns="week", values="rested").to_numpy()
+    np.testing.assert_array_equal(y[:, [0, 2, 3]], expected[:, [0, 2, 3]])
