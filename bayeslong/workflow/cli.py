@@ -79,6 +79,9 @@ def cmd_models(args) -> int:
         print(f"{'':<{width}}  defaults: {defaults}")
         if opts:
             print(f"{'':<{width}}  options:  {opts}")
+        if r["processes"] > 1:
+            print(f"{'':<{width}}  processes: {r['processes']} by default, any K with processes = K; "
+                  "cross_lags, same_wave")
     print("\nUse a model in a study file as  [[models]] model = \"<name>\"  "
           "with  options = { initial = \"endogenous\" }.")
     return OK

@@ -330,3 +330,13 @@ def test_catalog_models_with_paths_are_identified_at_three(name):
                    n=100, waves=5)
     ident = bl.identify(spec, panel)
     assert ident.identified, ident.deficient
+
+
+def test_options_round_trip_and_cross_lags_none():
+    spec = _spec(4, cross_loadings={"woke_rarely": "stress"})
+    assert bl.Spec.from_dict(spec.to_dict()) == spec  # plain data (JSON/TOML) and back
+    assert spec.replace(same_wave=[]).paths["same_wave"] == ()
+    none = build_structure(bl.model("clpm", processes=3, cross_lags="none"),
+                           outcomes=NAMES[:3], n_waves=T)
+    # only the three autoregressions remain (counted by hand: K of the K^2 lags)
+    assert [n for n in none.names if n.startswith("lag")] == [f"lag[{y}<-{y}]" for y in NAMES[:3]]
