@@ -140,6 +140,10 @@ def settle_paths(spec, outcomes: tuple) -> Paths:
     else:
         lags = {(k, l) for k in range(K) for l in range(K)} - set(drop)
     same = _pairs(p["same_wave"], outcomes, "same_wave")
+    if same and spec.residuals_at != "latent":
+        raise SpecError(f"`same_wave` needs latent disturbances, and model '{spec.name}' puts its "
+                        "residuals on the indicators (a disturbance-free latent); choose a model "
+                        "with residuals_at = \"latent\" or leave `same_wave` out")
     loop = _loop(same, K)
     if loop:
         shown = " -> ".join(str(outcomes[k]) for k in loop)
