@@ -86,8 +86,10 @@ def _owner(indicators: dict, name: Any, other: Any) -> Any:
 def _twice(name: Any, first: Any, second: Any) -> str:
     where = (f"processes {show(first)} and {show(second)}" if first != second
              else f"process {show(first)} twice")
+    hint = ("" if first == second else ", and to let it load on the other process too, give "
+            "the model option cross_loadings={" + repr(name) + ": " + repr(second) + "}")
     return (f"indicator {show(name)} is listed for {where}; an indicator measures one process "
-            "(cross-loadings are not supported yet): list it under one process only.")
+            f"(its own): list it under one process only{hint}.")
 
 
 def settle_indicators(outcomes: tuple, indicators: Any, time_varying: tuple,

@@ -77,11 +77,22 @@ def lag_parameter(spec: Spec, outcomes) -> str | None:
 
 
 def lag_models(panel) -> list[str]:
-    """Catalog models with a constant lag for the panel's number of outcomes (``alt`` first)."""
-    names = [n for n in catalog() if model(n).processes == len(panel.outcomes)
+    """Catalog models with a constant lag for the panel's number of outcomes (``alt`` first).
+
+    A model written for several processes serves any K >= 2 (:func:`catalog_spec`).
+    """
+    K = len(panel.outcomes)
+    names = [n for n in catalog() if (model(n).processes == K or model(n).processes >= 2 <= K)
              and model(n).options["lag"] == "constant"]
     first = "alt" if len(panel.outcomes) == 1 else "bivariate-alt"
     return sorted(names, key=lambda n: (n != first, n))
+
+
+def catalog_spec(name: str, panel):
+    """``model(name)``, given the panel's number of processes when it is written for several."""
+    spec = model(name)
+    K = len(panel.outcomes)
+    return spec if spec.processes == K or spec.processes < 2 or K < 2 else model(name, processes=K)
 
 
 # --- priors --------------------------------------------------------------------------------
@@ -398,7 +409,8 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     """
     fit_kwargs = dict(fit_kwargs or {})
     panel = check_panel(panel)
-    specs = [check_spec(model(m) if isinstance(m, str) else m) for m in (models or lag_models(panel))]
+    specs = [check_spec(catalog_spec(m, panel) if isinstance(m, str) else m)
+             for m in (models or lag_models(panel))]
     if not specs:
         raise SpecError("`models` is empty; give at least one model with a lag, e.g. ['alt']")
     lag_of = {}

@@ -81,7 +81,7 @@ def approximate_fit(spec: Spec, panel, *, draws: int = 500, chains: int = 2, see
     kept: list[np.ndarray] = []
     while len(kept) < need:
         cand = rng.multivariate_normal(mode, cov, size=need)
-        ok = [all(np.linalg.eigvalsh(t[b.index]).min() > 0 for b in structure.blocks) for t in cand]
+        ok = [all(np.linalg.eigvalsh(b.matrix(t)).min() > 0 for b in structure.blocks) for t in cand]
         kept.extend(cand[np.array(ok, dtype=bool)])
     thetas = np.array(kept[:need])
     ll = unit_loglik(structure, panel, thetas)

@@ -300,13 +300,13 @@ def _kkt_violations(structure: Structure, theta, grad, panel) -> list[str]:
     out = []
     scale = float(np.nanvar(panel.y))
     for b in structure.blocks:
-        S = theta[b.index]
+        S = b.matrix(theta)  # fixed zeros of a block stay zero
         q = len(S)
         w, v = np.linalg.eigh(S)
         null = v[:, w < 1e-7 * max(scale, 1e-300)]
         if null.shape[1] == 0:
             continue
-        G = grad[b.index] * np.where(np.eye(q, dtype=bool), 1.0, 0.5)
+        G = np.where(b.index >= 0, grad[b.index], 0.0) * np.where(np.eye(q, dtype=bool), 1.0, 0.5)
         rise = float(np.linalg.eigvalsh(null.T @ G @ null).max())
         # on the scale of the data: a rise below 1e-6 per unit over the variance is rounding
         if rise > 1e-6 * panel.n_units / max(scale, 1e-300):
@@ -318,7 +318,7 @@ def _boundary(structure: Structure, theta: np.ndarray, panel) -> list[str]:
     scale = float(np.nanvar(panel.y))
     out = []
     for b in structure.blocks:
-        S = theta[b.index]
+        S = b.matrix(theta)
         for r in range(len(S)):
             # conditional variance of the block's r-th variable given the others before it
             sub = S[: r + 1, : r + 1]

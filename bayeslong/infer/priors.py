@@ -229,6 +229,8 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     variance                                      its SD ~ HalfNormal(s)
     covariances of a block of q > 1 variables     correlation matrix ~ LKJ(eta = 2)
     indicator loading ``loading[j]``              Normal(1, 1)
+    cross-loading ``loading[j<-k]``               Normal(0, 1)
+    same-wave path ``same_wave[y<-y']``           as a cross-lag
     indicator intercept ``intercept[j]``          Normal(0, 3 s_j + |m_j|)
     unique variance ``unique_var[j]``             its SD ~ HalfNormal(s_j)
     ============================================  =====================================
@@ -266,8 +268,9 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
         keys = _keys(name)
         if keys and keys[0] in items and name.startswith(("loading[", "intercept[", "unique_")):
             mj, sj = items[keys[0]]["mean"], items[keys[0]]["sd"]
-            if name.startswith("loading["):
-                out.append(Prior(parameter=name, family="normal", args=(1.0, 1.0)))
+            if name.startswith("loading["):  # a cross-loading (j<-k) is centred on none
+                out.append(Prior(parameter=name, family="normal",
+                                 args=(0.0 if "<-" in name else 1.0, 1.0)))
             elif name.startswith("intercept["):
                 out.append(Prior(parameter=name, family="normal", args=(0.0, 3.0 * sj + abs(mj))))
             elif kind == "var":
@@ -320,7 +323,9 @@ def _block_membership(structure: Structure) -> dict[int, int]:
         if (idx < 0).any():
             raise SpecError(
                 f"model '{structure.spec.name}': a covariance block with fixed zero covariances "
-                "is not supported by the Bayesian fit; free those covariances in the model file")
+                "is not supported by the Bayesian fit (a same-wave path among three or more "
+                "processes fixes its pair's disturbance covariance at zero); fit it by maximum "
+                "likelihood, or free those covariances in the model file")
         if len(set(np.diag(idx).tolist())) < len(idx):
             raise SpecError(
                 f"model '{structure.spec.name}': the variances "

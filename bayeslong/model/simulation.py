@@ -51,7 +51,7 @@ _WAVE_SUFFIX = re.compile(r"^(?P<base>[^\[]+)\[(?:(?P<keys>.*),)?(?P<wave>\d+)\]
 
 
 def default_outcomes(spec: Spec) -> tuple[str, ...]:
-    """Outcome names :func:`simulate` uses when none are given: ``y``, or ``y1, y2``."""
+    """Outcome names :func:`simulate` uses when none are given: ``y``, or ``y1, ..., yK``."""
     return ("y",) if spec.processes == 1 else tuple(f"y{k + 1}" for k in range(spec.processes))
 
 
@@ -66,6 +66,8 @@ def _covered_by(name: str, given: str) -> bool:
     base = name.split("[")[0]
     if base in _EVERY_INDICATOR and "[" in name:
         indicator = name[len(base) + 1:-1].split(",")[0]
+        if "<-" in indicator:  # a cross-loading is set by its own name, loading[j<-k]
+            return given == f"{base}[{indicator}]"
         if given in (base, f"{base}[{indicator}]"):
             return True
     m = _WAVE_SUFFIX.match(name)
@@ -235,7 +237,7 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
     time_invariant : dict, optional
         Time-invariant covariates z, as ``covariates`` (an array has shape (N,)).
     outcomes : sequence of str, optional
-        Outcome names; default ``y`` (one process) or ``y1, y2``.
+        Outcome names; default ``y`` (one process) or ``y1, ..., yK``.
     indicators : dict, optional
         For each process, its indicator names, ``{"y": ["y_a", "y_b", "y_c"]}``: the process
         is then a latent measured by those indicators at every wave, with the parameters of

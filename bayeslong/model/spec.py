@@ -41,7 +41,15 @@ MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
 INVARIANCE_LEVELS = ("configural", "metric", "scalar", "strict")
 #: Parts of the measurement model a release frees from the invariance level's equalities.
 RELEASE_PARTS = ("loading", "intercept", "unique_var")
-MEASUREMENT_KEYS = (*MEASUREMENT_VALUES, "marker", "release")
+MEASUREMENT_KEYS = (*MEASUREMENT_VALUES, "marker", "release", "cross_loadings")
+#: Options of the paths among several processes (docs/model-family.md, "Several processes"):
+#: ``cross_lags`` ("all", "none", or {"drop": ["y<-x", ...]}) and ``same_wave`` (a list of
+#: "y<-x" pairs, regressions among the latents of one wave). Names are checked against the
+#: panel's processes when the structure is built (model/paths.py).
+PATH_KEYS = ("cross_lags", "same_wave")
+#: Every keyword :func:`model` accepts besides the file's own: ``processes`` sets K of a
+#: model written for several processes.
+MODEL_KEYWORDS = (*OPTION_VALUES, *MEASUREMENT_KEYS, *PATH_KEYS, "processes")
 
 #: Keys of a model file and what each may hold.
 _FORMS = ("latent", "within")
@@ -52,7 +60,7 @@ _RESIDUALS_AT = ("latent", "indicator")
 _FILE_KEYS = {
     "description", "processes", "form", "factors", "scores", "lag_name", "lag_offset",
     "level_covariates", "residuals_at", "initial_is_level", "options", "allowed", "use",
-    "measurement",
+    "measurement", "paths",
 }
 
 
@@ -81,7 +89,8 @@ class Spec:
     description : str
         One line for tables and reports.
     processes : int
-        Number of outcome processes K (1 or 2).
+        Number of outcome processes K (1 or more; a model file written for several
+        processes takes any K >= 2 through the keyword ``processes``).
     form : {"latent", "within"}
         ``latent``: growth factors and the lag act on the latent outcome (ALT family).
         ``within``: factors load on the observed outcome and the lag acts on the
@@ -118,7 +127,12 @@ class Spec:
         indicators: ``invariance`` (configural | metric | scalar | strict, default scalar),
         ``scale`` (marker | effects), ``marker`` (None: each process's first listed indicator),
         ``release`` (part -> indicator names freed from the level's equalities) and
-        ``unique_covariance`` (same-indicator | none). See docs/model-family.md.
+        ``unique_covariance`` (same-indicator | none) and ``cross_loadings`` (indicator ->
+        the other processes it also loads on). See docs/model-family.md.
+    paths : dict
+        Resolved options of the paths among several processes: ``cross_lags`` ("all",
+        "none", or {"drop": ("y<-x", ...)}) and ``same_wave`` (("y<-x", ...): y at wave t
+        regressed on x at wave t). See model/paths.py.
     """
 
     name: str
@@ -135,11 +149,14 @@ class Spec:
     options: dict = field(default_factory=dict)
     allowed: dict = field(default_factory=dict)
     measurement: dict = field(default_factory=dict)
+    paths: dict = field(default_factory=dict)
 
     def __post_init__(self):
         where = f" in model '{self.name}'"
-        if self.processes not in (1, 2):
-            raise SpecError(f"`processes`{where} must be 1 or 2; got {self.processes!r}")
+        if isinstance(self.processes, bool) or not isinstance(self.processes, int) \
+                or self.processes < 1:
+            raise SpecError(f"`processes`{where} must be a whole number of outcome processes, "
+                            f"1 or more; got {self.processes!r}")
         _choice("form", self.form, _FORMS, where)
         _choice("scores", self.scores, _SCORES, where)
         _choice("level_covariates", self.level_covariates, _LEVEL_COVARIATES, where)
@@ -172,6 +189,7 @@ class Spec:
                 )
         object.__setattr__(self, "options", options)
         object.__setattr__(self, "measurement", _resolve_measurement(self.measurement, where))
+        object.__setattr__(self, "paths", resolve_paths(self.paths, self.processes, where))
         if self.initial_is_level:
             # the lag is what carries the level (the first wave) to later waves
             if "level" not in factors or self.form != "latent":
@@ -204,12 +222,15 @@ class Spec:
         if meas:
             changes["measurement"] = {**self.measurement, **changes.get("measurement", {}),
                                       **meas}
+        paths = {k: changes.pop(k) for k in list(changes) if k in PATH_KEYS}
+        if paths:
+            changes["paths"] = {**self.paths, **changes.get("paths", {}), **paths}
         unknown = [k for k in changes if k not in {f.name for f in dataclasses.fields(self)}]
         if unknown:
             raise SpecError(
                 f"Spec has no field {unknown[0]!r}; fields are "
                 + ", ".join(f.name for f in dataclasses.fields(self))
-                + ", and the options " + ", ".join((*OPTION_VALUES, *MEASUREMENT_KEYS))
+                + ", and the options " + ", ".join((*OPTION_VALUES, *MEASUREMENT_KEYS, *PATH_KEYS))
             )
         return dataclasses.replace(self, **changes)
 
@@ -221,6 +242,9 @@ class Spec:
         d["measurement"] = {k: (list(v) if isinstance(v, tuple) else
                                 {p: list(n) for p, n in v.items()} if isinstance(v, dict) else v)
                             for k, v in self.measurement.items()}
+        d["paths"] = {k: (list(v) if isinstance(v, tuple) else
+                          {p: list(n) for p, n in v.items()} if isinstance(v, dict) else v)
+                      for k, v in self.paths.items()}
         return d
 
     @classmethod
@@ -230,7 +254,12 @@ class Spec:
 
     def __str__(self) -> str:
         opts = ", ".join(f"{k}={v}" for k, v in self.options.items())
-        return f"{self.name} ({opts})"
+        cross, same = self.paths.get("cross_lags", "all"), self.paths.get("same_wave", ())
+        extra = "" if self.processes < 3 else f", processes={self.processes}"
+        extra += (f", cross_lags={cross}" if cross == "none" else
+                  f", cross_lags drop {', '.join(cross['drop'])}" if isinstance(cross, dict) else "")
+        extra += f", same_wave {', '.join(same)}" if same else ""
+        return f"{self.name} ({opts}{extra})"
 
 
 def _resolve_measurement(given, where: str = "") -> dict:
@@ -266,7 +295,67 @@ def _resolve_measurement(given, where: str = "") -> dict:
                             "or release={'intercept': ['fell_asleep']}; got " + repr(release))
         resolved[part] = tuple(dict.fromkeys(names))
     out["release"] = resolved
+    cross = given.get("cross_loadings") or {}
+    if not isinstance(cross, dict) or not all(
+            isinstance(i, str) and i and (isinstance(p, str) and p or isinstance(p, (list, tuple))
+                                          and p and all(isinstance(q, str) and q for q in p))
+            for i, p in cross.items()):
+        raise SpecError(f"`cross_loadings`{where} must map an indicator to the other process(es) "
+                        "it also loads on, e.g. cross_loadings={'woke_rarely': 'stress'}; got "
+                        + repr(cross))
+    out["cross_loadings"] = {i: ((p,) if isinstance(p, str) else tuple(dict.fromkeys(p)))
+                             for i, p in cross.items()}
     return out
+
+
+def _pair(text, option: str, where: str) -> str:
+    """One "y<-x" pair (also written "x->y"), returned as "y<-x"."""
+    example = ("same_wave=['sleep<-stress']" if option == "same_wave"
+               else "cross_lags={'drop': ['sleep<-stress']}")
+    if isinstance(text, str) and text.count("<-") + text.count("->") == 1:
+        left, arrow, right = text.partition("<-") if "<-" in text else text.partition("->")
+        left, right = left.strip(), right.strip()
+        if left and right and left != right:
+            return f"{left}<-{right}" if arrow == "<-" else f"{right}<-{left}"
+    raise SpecError(f"`{option}`{where} must list pairs of two different processes written "
+                    f"'y<-x' (y regressed on x) or 'x->y', e.g. {example}; got {text!r}")
+
+
+def resolve_paths(given, processes: int, where: str = "") -> dict:
+    """Check the syntax of the path options and fill in their defaults (``Spec.paths``).
+
+    The process names are checked against the panel later (model/paths.py).
+    """
+    given = dict(given or {})
+    for key in given:
+        _choice("path option", key, PATH_KEYS, where)
+    cross = given.get("cross_lags", "all")
+    if isinstance(cross, dict):
+        for key in cross:
+            _choice("cross_lags", key, ("drop",), where)
+        drop = cross.get("drop", ())
+        drop = (drop,) if isinstance(drop, str) else drop
+        if not isinstance(drop, (list, tuple)):
+            raise SpecError(f"`cross_lags`{where}: `drop` must list pairs 'y<-x', e.g. "
+                            f"cross_lags={{'drop': ['sleep<-stress']}}; got {drop!r}")
+        drop = tuple(dict.fromkeys(_pair(p, "cross_lags", where) for p in drop))
+        cross = {"drop": drop} if drop else "all"
+    elif cross not in ("all", "none"):
+        raise SpecError(f"`cross_lags`{where} must be 'all', 'none' or a table of pairs to drop, "
+                        f"e.g. cross_lags={{'drop': ['sleep<-stress']}}; got {cross!r}"
+                        f"{_nearest(cross, ('all', 'none'))}")
+    same = given.get("same_wave", ())
+    same = (same,) if isinstance(same, str) else same
+    if not isinstance(same, (list, tuple)):
+        raise SpecError(f"`same_wave`{where} must list pairs 'y<-x', e.g. "
+                        f"same_wave=['sleep<-stress']; got {same!r}")
+    same = tuple(dict.fromkeys(_pair(p, "same_wave", where) for p in same))
+    if processes < 2 and (same or cross != "all"):
+        option = "same_wave" if same else "cross_lags"
+        raise SpecError(f"`{option}`{where} acts among several processes, and this model has "
+                        "one; choose a model for several processes (clpm, ri-clpm, "
+                        "bivariate-alt) or leave the option out")
+    return {"cross_lags": cross, "same_wave": same}
 
 
 # --- the catalog ----------------------------------------------------------------------
@@ -294,11 +383,25 @@ def _spec_from_text(name: str, text: str, source: str, options: dict) -> Spec:
     data.pop("use", None)
     file_options = dict(data.pop("options", {}))
     file_measurement = dict(data.pop("measurement", {}))
+    file_paths = dict(data.pop("paths", {}))
+    options = dict(options)
     for key in options:
-        _choice("option", key, (*OPTION_VALUES, *MEASUREMENT_KEYS))
+        _choice("option", key, MODEL_KEYWORDS)
     measurement = {k: options.pop(k) for k in list(options) if k in MEASUREMENT_KEYS}
+    paths = {k: options.pop(k) for k in list(options) if k in PATH_KEYS}
+    if "processes" in options:
+        k = options.pop("processes")
+        if data.get("processes", 1) < 2 and k != data.get("processes", 1):
+            raise SpecError(f"model {source} is written for one process, so `processes` cannot "
+                            f"be set to {k!r}; for several processes choose clpm, ri-clpm or "
+                            "bivariate-alt (or a model file with processes >= 2)")
+        if isinstance(k, bool) or not isinstance(k, int) or k < 2:
+            raise SpecError(f"`processes` of model {source} must be a whole number, 2 or more; "
+                            f"got {k!r}")
+        data["processes"] = k
     return Spec(name=name, **data, options={**file_options, **options},
-                measurement={**file_measurement, **measurement})
+                measurement={**file_measurement, **measurement},
+                paths={**file_paths, **paths})
 
 
 def model(name: str, **options) -> Spec:
@@ -314,7 +417,10 @@ def model(name: str, **options) -> Spec:
         time-varying), ``intercepts`` (equal | free); the model file narrows them.
         Measurement options (processes with several indicators): ``invariance``
         (configural | metric | scalar | strict), ``marker``, ``release``,
-        ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects).
+        ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects),
+        ``cross_loadings`` (indicator -> other process). Several processes: ``processes``
+        (K, for a model written for several), ``cross_lags`` ("all", "none" or
+        {"drop": ["y<-x"]}), ``same_wave`` (["y<-x"]); see docs/model-family.md.
 
     Raises
     ------

@@ -23,7 +23,8 @@ def start_values(structure: Structure, panel) -> np.ndarray:
     (T-1)^2); free time scores at their linear values.
 
     A process measured by several indicators takes its first indicator's values (the
-    default marker). Indicator loadings start at 1, intercepts at the indicator's overall
+    default marker). Indicator loadings start at 1 (a cross-loading on another process, like
+    a same-wave path, at 0), intercepts at the indicator's overall
     mean minus its process's first indicator's (the marker's own free intercepts at 0),
     unique variances at half the indicator's variance, their covariances at 0.
     """

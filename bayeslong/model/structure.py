@@ -24,6 +24,7 @@ import numpy as np
 from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
 from bayeslong.model.measurement import add_indicators, settle_design
+from bayeslong.model.paths import cross_loading_name, settle_cross_loadings, settle_paths
 from bayeslong.model.spec import Spec, check_spec
 
 #: Names of the measurement part's parameters (model/measurement.py).
@@ -56,6 +57,11 @@ class Block:
     """A free covariance block: ``index[r, c]`` is the parameter of entry (r, c), -1 if fixed 0."""
 
     index: np.ndarray  # (q, q) symmetric
+
+    def matrix(self, theta: np.ndarray) -> np.ndarray:
+        """The block's covariance matrix at ``theta`` (0 where an entry is fixed at zero)."""
+        theta = np.asarray(theta)
+        return np.where(self.index >= 0, theta[..., self.index], 0.0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -223,10 +229,14 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     """
     outcomes = tuple(outcomes)
     if len(outcomes) != spec.processes:
+        how = (f"set processes={len(outcomes)} (bl.model({spec.name!r}, processes={len(outcomes)}), "
+               f"or options = {{ processes = {len(outcomes)} }} in a study file)"
+               if spec.processes > 1 and len(outcomes) > 1 else
+               f"choose a model with processes = {len(outcomes)}")
         raise SpecError(
             f"model '{spec.name}' is for {spec.processes} outcome process(es) but the panel has "
-            f"{len(outcomes)} ({', '.join(outcomes)}); choose a model with processes = {len(outcomes)} "
-            "or give the panel that many outcomes"
+            f"{len(outcomes)} ({', '.join(map(str, outcomes))}); {how}, or give the panel that "
+            "many outcomes"
         )
     T, K = int(n_waves), len(outcomes)
     xs, zs = tuple(time_varying), tuple(time_invariant)
@@ -242,12 +252,14 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         initial = "level"
 
     indicators = settle_design(spec, outcomes, indicators)
+    paths = settle_paths(spec, outcomes)
+    cross_loads = settle_cross_loadings(spec, outcomes, indicators)
     obs_names = [n for k in range(K) for n in indicators[outcomes[k]]]
     first_v = [obs_names.index(indicators[outcomes[k]][0]) for k in range(K)]
     several = [len(indicators[outcomes[k]]) > 1 for k in range(K)]
     if any(several) and spec.residuals_at == "indicator" and K > 1:
         raise SpecError(f"model '{spec.name}' puts its residuals on the indicators, which is not "
-                        "available with several indicators per wave and two processes yet")
+                        "available with several indicators per wave and several processes yet")
     latents = [_label(f, pk(k)) for k in range(K) for f in F]
     latents += [_label("eta", pk(k), t) for k in range(K) for t in range(1, T + 1)]
     observed = [_label(v, t) for v in obs_names for t in range(1, T + 1)]
@@ -310,6 +322,13 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
                 name = _label("intercept", pk(k), t if opts["intercepts"] == "free" else None)
                 tab.put("nu", obs(k, t), name, "intercept")
 
+    # an indicator that also measures another process's latent (model/paths.py)
+    for name, k, l in cross_loads:
+        v = obs_names.index(name)
+        for t in range(1, T + 1):
+            tab.put("Lam", (v * T + (t - 1), eta(l, t)),
+                    cross_loading_name(spec, name, outcomes[l], t), "loading")
+
     # --- factor means ----------------------------------------------------------------
     if not within:
         for k in range(K):
@@ -344,6 +363,8 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
             # lags
             if lag != "none" and t >= 2:
                 for l in range(K):
+                    if (k, l) not in paths.lags:
+                        continue  # a dropped cross-lag (model/paths.py)
                     who = f"{outcomes[k]}<-{outcomes[l]}" if multi else None
                     name = _label(spec.lag_name, who, t if lag == "time-varying" else None)
                     tab.put("B", (row, eta(l, t - 1)), name, "lag",
@@ -432,24 +453,34 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     # wave residuals: latent disturbances, or measurement errors (dual change)
     resid_waves = range(1, T + 1) if spec.residuals_at == "indicator" else [
         t for t in eq_waves if not (initial == "endogenous" and t == 1)]
+    # same-wave paths act at the waves whose latents have the wave's disturbances (not the
+    # first wave's own covariance), and replace the pair's disturbance covariance
+    for t in ([] if spec.residuals_at == "indicator" else resid_waves):
+        for k, l in paths.same_wave:
+            tab.put("B", (eta(k, t), eta(l, t)),
+                    _label("same_wave", f"{outcomes[k]}<-{outcomes[l]}"), "lag")
+    zero = paths.uncorrelated if spec.residuals_at == "latent" else frozenset()
     if spec.residuals_at == "indicator" and any(several):
         # the latent is disturbance-free and the indicators' unique variances are its
         # measurement error (one process: checked above)
         resid_waves = []
+    groups = [list(range(K))] if spec.residuals_at == "indicator" else paths.groups(K)
     for t in resid_waves:
         tt = t if opts["residuals"] == "free" else None
-        names = [[(_label("resid_var", outcomes[r] if multi else None, tt) if r == c else
-                   _label("resid_cov", outcomes[c], outcomes[r], tt)) if c <= r else None
-                  for c in range(K)] for r in range(K)]
-        if spec.residuals_at == "indicator":
-            tab.block("Theta", [obs(k, t) for k in range(K)], names)
-        else:
-            tab.block("Psi", [eta(k, t) for k in range(K)], names)
+        for group in groups:
+            names = [[(_label("resid_var", outcomes[r] if multi else None, tt) if r == c else
+                       None if frozenset((r, c)) in zero else
+                       _label("resid_cov", outcomes[c], outcomes[r], tt)) if i >= j else None
+                      for j, c in enumerate(group)] for i, r in enumerate(group)]
+            if spec.residuals_at == "indicator":
+                tab.block("Theta", [obs(k, t) for k in group], names)
+            else:
+                tab.block("Psi", [eta(k, t) for k in group], names)
 
     # the structural parameters first, the indicators' measurement parameters after them
     tab.reorder(sorted(range(len(tab.names)), key=lambda i: tab.names[i].split("[")[0] in
                        _MEASUREMENT_BASES and tab.names[i][tab.names[i].find("[") + 1:]
-                       .split(",")[0].rstrip("]") in obs_names and any(several)))
+                       .split(",")[0].rstrip("]").split("<-")[0] in obs_names and any(several)))
     structure = Structure(
         spec=spec, names=tuple(tab.names), kinds=tuple(tab.kinds), latents=tuple(latents),
         observed=tuple(observed), covariates=tuple(covariates), matrices=tab.m,
@@ -498,4 +529,5 @@ def _check_recursive(structure: Structure) -> None:
     if reach.any():
         raise SpecError(
             f"model '{structure.spec.name}' has a loop among its latent variables; the engine "
-            "needs a recursive model (every lag points to an earlier wave)")
+            "needs a recursive model (every lag points to an earlier wave, and the same-wave "
+            "paths have an order)")

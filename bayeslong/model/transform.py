@@ -1,4 +1,12 @@
-"""Unconstrained parameterisation for optimisers: log-Cholesky for covariance blocks."""
+"""Unconstrained parameterisation for optimisers: log-Cholesky for covariance blocks.
+
+A block with covariances fixed at zero (three processes joined by one same-wave path,
+model/paths.py) keeps its zeros by solving for the Cholesky entry under each zero: with
+S = L L' and j < i, S[i, j] = sum_(m < j) L[i, m] L[j, m] + L[i, j] L[j, j], so
+L[i, j] = -sum_(m < j) L[i, m] L[j, m] / L[j, j] makes S[i, j] = 0 exactly. Every positive
+definite matrix with those zeros has such a factor (its own Cholesky factor), so the map
+reaches all of them. Its derivative is taken by the complex step (the map is analytic).
+"""
 
 from __future__ import annotations
 
@@ -17,11 +25,15 @@ class Unconstrained:
 
     def __init__(self, structure: Structure):
         self.blocks = []
+        self.zero_blocks = []  # (index, free lower-triangle positions, their parameter slots)
         singles = []  # 1 x 1 blocks (a lone variance) are handled together: theta = exp(2 u)
         for b in structure.blocks:
             idx = b.index
             if (idx < 0).any():
-                raise NotImplementedError("covariance blocks with fixed zeros are not supported")
+                rows, cols = np.tril_indices(len(idx))
+                keep = idx[rows, cols] >= 0
+                self.zero_blocks.append((idx, rows[keep], cols[keep], idx[rows, cols][keep]))
+                continue
             if len(idx) == 1:
                 singles.append(int(idx[0, 0]))
                 continue
@@ -46,6 +58,8 @@ class Unconstrained:
             L[d] = np.exp(np.clip(L[d], -30, 30))
             S = L @ L.T
             theta[slots] = S[rows, cols]
+        for idx, rows, cols, slots in self.zero_blocks:
+            theta[slots] = _zero_block(idx, rows, cols, u[slots]).real
         return theta
 
     def from_natural(self, theta: np.ndarray) -> np.ndarray:
@@ -57,6 +71,18 @@ class Unconstrained:
             w, v = np.linalg.eigh(S)
             S = (v * np.maximum(w, 1e-8 * max(w.max(), 1e-12))) @ v.T  # nearest PD
             L = np.linalg.cholesky(S)
+            d = np.diag_indices(len(idx))
+            L[d] = np.log(L[d])
+            u[slots] = L[rows, cols]
+        for idx, rows, cols, slots in self.zero_blocks:
+            S = np.where(idx >= 0, theta[idx], 0.0)
+            w, v = np.linalg.eigh(S)
+            S = (v * np.maximum(w, 1e-8 * max(w.max(), 1e-12))) @ v.T
+            S[idx < 0] = 0.0  # the zeros stay zeros (the nearest-PD step may move them)
+            try:
+                L = np.linalg.cholesky(S)
+            except np.linalg.LinAlgError:  # zeroing made it indefinite: start from the diagonal
+                L = np.diag(np.sqrt(np.maximum(np.diag(S), 1e-12)))
             d = np.diag_indices(len(idx))
             L[d] = np.log(L[d])
             u[slots] = L[rows, cols]
@@ -78,6 +104,11 @@ class Unconstrained:
             dL = 2.0 * Gs @ L
             dL[d] *= L[d]
             g[slots] = dL[rows, cols]
+        for idx, rows, cols, slots in self.zero_blocks:
+            h = 1e-30
+            steps = u[slots] + 1j * h * np.eye(len(slots))
+            J = np.array([_zero_block(idx, rows, cols, s).imag / h for s in steps])  # du x dtheta
+            g[slots] = J @ np.asarray(grad_theta, dtype=float)[slots]
         return g
 
 
@@ -164,3 +195,19 @@ class Cholesky:
             G = grad_theta[idx] * np.where(np.eye(q, dtype=bool), 1.0, 0.5)
             C[np.ix_(slots, slots)] = 2.0 * G[np.ix_(rows, rows)] * (cols[:, None] == cols[None, :])
         return C
+
+
+def _zero_block(idx, rows, cols, values):
+    """The free entries of S = L L' from the free Cholesky entries (module notes)."""
+    q = len(idx)
+    L = np.zeros((q, q), dtype=np.result_type(values, float))
+    L[rows, cols] = values
+    for i in range(q):
+        for j in range(i + 1):
+            if i == j:
+                L[i, i] = np.exp(np.clip(L[i, i].real, -30, 30) + 1j * L[i, i].imag) \
+                    if np.iscomplexobj(L) else np.exp(np.clip(L[i, i], -30, 30))
+            elif idx[i, j] < 0:
+                L[i, j] = -(L[i, :j] @ L[j, :j]) / L[j, j]
+    S = L @ L.T
+    return S[rows, cols]

@@ -88,6 +88,9 @@ def cmd_models(args) -> int:
         print(f"{'':<{width}}  defaults: {defaults}")
         if opts:
             print(f"{'':<{width}}  options:  {opts}")
+        if r["processes"] > 1:
+            print(f"{'':<{width}}  processes: {r['processes']} by default, any K with processes = K; "
+                  "cross_lags, same_wave")
     print("\nUse a model in a study file as  [[models]] model = \"<name>\"  "
           "with  options = { initial = \"endogenous\" }.")
     return OK
@@ -108,6 +111,7 @@ def cmd_check_data(args) -> int:
         _print_json({
             "data": str(study.data.path), "n_units": panel.n_units, "n_waves": panel.n_waves,
             "waves": list(panel.waves), "outcomes": list(panel.outcomes),
+            "indicators": {str(k): list(v) for k, v in panel.indicators.items()},
             "time_varying": list(panel.time_varying),
             "time_invariant": list(panel.time_invariant),
             "observed": {str(k): v for k, v in desc["observed"].to_dict(orient="index").items()},
@@ -119,9 +123,14 @@ def cmd_check_data(args) -> int:
     print(f"units:     {panel.n_units}")
     print(f"waves:     {panel.n_waves} ({', '.join(map(str, panel.waves))})")
     print(f"outcomes:  {', '.join(map(str, panel.outcomes))}")
+    if panel.has_indicators:
+        for name, group in panel.indicators.items():
+            measured = ("observed directly" if tuple(group) == (name,)
+                        else "measured by " + ", ".join(map(str, group)))
+            print(f"  {name}: {measured}")
     print(f"time-varying covariates:   {', '.join(map(str, panel.time_varying)) or 'none'}")
     print(f"time-invariant covariates: {', '.join(map(str, panel.time_invariant)) or 'none'}")
-    print("\nshare observed by wave:")
+    print("\nshare observed by wave" + (" and indicator:" if panel.has_indicators else ":"))
     print(desc["observed"].round(3).to_string())
     print("\nmissing-data patterns (o observed, . missing):")
     print(desc["patterns"].to_string())
@@ -269,7 +278,12 @@ def _model_from_args(args):
             from bayeslong.errors import SpecError
 
             raise SpecError(f"--option {item!r} must look like name=value, e.g. initial=endogenous")
-        options[key.strip()] = value.strip()
+        key, value = key.strip(), value.strip()
+        if key == "processes" and value.isdigit():
+            value = int(value)
+        elif key == "same_wave":  # a comma-separated list of pairs, "sleep<-stress,mood<-sleep"
+            value = [v.strip() for v in value.split(",") if v.strip()]
+        options[key] = value
     return model(args.model, **options)
 
 

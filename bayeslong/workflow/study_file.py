@@ -33,6 +33,15 @@ Top level
 ``outcomes`` (required)
     Long: a list of outcome columns, ``["quality"]``. Wide: a table from each outcome
     to its columns in wave order, ``outcomes = { quality = ["q1", "q2", "q3"] }``.
+    A process measured by several indicators (items of a scale) is a latent variable
+    named by its key. Long: a table from each process to its indicator columns, one
+    column per indicator, ``outcomes = { sleep = ["rested", "fell_asleep", "woke_rarely"],
+    stress = ["stress"] }`` (a process observed directly lists its own column). Wide: a
+    table from the process to a table from each indicator to its columns in wave order,
+    ``outcomes = { sleep = { rested = ["r1", "r2", "r3"], fell_asleep = ["f1", "f2",
+    "f3"] } }``, with ``""`` at a wave where an indicator was not asked. An indicator
+    measures one process; to let it load on another too, use the model option
+    ``cross_loadings``.
 ``time_varying`` (default none)
     Time-varying covariates: a list of columns (long) or a table like ``outcomes`` (wide).
 ``time_invariant`` (list of text, default none)
@@ -50,8 +59,18 @@ Top level
 ``label`` (text, default the model name, plus the options when two candidates share it)
     The name used in tables, plots and file names; labels must be unique.
 ``options`` (table, default the model's own)
-    ``initial``, ``lag``, ``residuals``, ``effects``, ``intercepts``, as in
-    ``bayeslong.model(name, **options)``.
+    As in ``bayeslong.model(name, **options)``: ``initial``, ``lag``, ``residuals``,
+    ``effects``, ``intercepts`` (text). Several processes: ``processes`` (a whole number,
+    for a model written for several, e.g. ``clpm`` with three outcomes: ``processes = 3``),
+    ``cross_lags`` (``"all"``, ``"none"``, or ``{ drop = ["stress<-sleep"] }``: the lag of
+    stress on the previous wave's sleep left out), ``same_wave`` (``["sleep<-stress"]``:
+    sleep regressed on stress at the same wave; ``"stress->sleep"`` says the same).
+    Processes measured by several indicators: ``invariance`` (``"configural"``,
+    ``"metric"``, ``"scalar"``, ``"strict"``), ``release`` (indicator names, or
+    ``{ intercept = ["fell_asleep"] }``), ``unique_covariance`` (``"same-indicator"``,
+    ``"none"``), ``scale`` (``"marker"``, ``"effects"``), ``marker`` (an indicator name, or
+    a list with one per process), ``cross_loadings`` (``{ woke_rarely = "stress" }``).
+    docs/model-family.md describes each.
 
 ``[priors]`` (default: the documented weakly informative defaults)
 
@@ -144,6 +163,23 @@ Example
     specification = true
     initial = true
 
+With indicators and three processes (long layout, one column per indicator):
+
+.. code-block:: toml
+
+    [data]
+    path = "diary.csv"
+    unit = "person"
+    wave = "week"
+    outcomes = { sleep = ["rested", "fell_asleep", "woke_rarely"],
+                 stress = ["tense", "worried", "rushed"], mood = ["mood"] }
+
+    [[models]]
+    model = "clpm"
+    options = { processes = 3, same_wave = ["sleep<-stress"],
+                cross_lags = { drop = ["stress<-mood"] },
+                cross_loadings = { woke_rarely = "stress" }, invariance = "scalar" }
+
 Resuming
 --------
 Each candidate's fit is identified by a content hash of the data settings, the bytes of the
@@ -154,7 +190,6 @@ another candidate does not invalidate a saved fit; changing anything the fit dep
 
 from __future__ import annotations
 
-import dataclasses
 import difflib
 import hashlib
 import json
@@ -167,6 +202,7 @@ from typing import Any
 
 from bayeslong.data.validation import SOURCE
 from bayeslong.errors import DataError, SpecError
+from bayeslong.workflow.study_data import DataSource, read_data_table
 
 __all__ = ["Study", "Candidate", "DataSource", "load_study"]
 
@@ -175,8 +211,6 @@ DEFAULT_OUTPUT = "bayeslong-output"
 
 _TOP = ("title", "output", "data", "models", "priors", "sampling", "checks", "comparison",
         "sensitivity")
-_DATA = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_invariant",
-         "waves", "drop_incomplete_covariates")
 _MODEL = ("model", "label", "options")
 _SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
              "sampler": "auto", "workers": 1}
@@ -184,9 +218,7 @@ _CHECKS = {"ppc": True, "ppc_draws": 200, "ml": False}
 _COMPARISON = {"future": False}
 _SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
                 "power_scaling": False}
-_LAYOUTS = ("long", "wide")
 _METHODS = ("bayes", "ml")
-_DATA_SUFFIXES = (".csv", ".parquet")
 
 
 # --------------------------------------------------------------------------------------------
@@ -294,45 +326,6 @@ _EXAMPLES = {
 
 
 @dataclass(frozen=True, kw_only=True)
-class DataSource:
-    """Where the panel data are and how to read them (the ``[data]`` table)."""
-
-    path: Path
-    layout: str = "long"
-    unit: str
-    wave: str | None = None
-    outcomes: Any
-    time_varying: Any = ()
-    time_invariant: tuple[str, ...] = ()
-    waves: tuple | None = None
-    drop_incomplete_covariates: bool = False
-
-    def settings(self) -> dict:
-        """Plain-data form without the absolute path (used in the content hash and report)."""
-        d = dataclasses.asdict(self)
-        d["path"] = self.path.name
-        for key in ("outcomes", "time_varying"):
-            value = getattr(self, key)
-            d[key] = {k: list(v) for k, v in value.items()} if isinstance(value, dict) else list(value)
-        d["time_invariant"] = list(self.time_invariant)
-        d["waves"] = None if self.waves is None else list(self.waves)
-        return d
-
-    def columns(self) -> list[tuple[str, str]]:
-        """Every column the study names, with the key that names it."""
-        cols = [(self.unit, "data.unit")]
-        if self.layout == "long":
-            cols.append((self.wave, "data.wave"))
-            cols += [(c, "data.outcomes") for c in self.outcomes]
-            cols += [(c, "data.time_varying") for c in self.time_varying]
-        else:
-            cols += [(c, f"data.outcomes.{k}") for k, v in self.outcomes.items() for c in v]
-            cols += [(c, f"data.time_varying.{k}") for k, v in self.time_varying.items() for c in v]
-        cols += [(c, "data.time_invariant") for c in self.time_invariant]
-        return cols
-
-
-@dataclass(frozen=True, kw_only=True)
 class Candidate:
     """One candidate model of a study: the resolved spec and the label it is shown under."""
 
@@ -418,12 +411,12 @@ class Study:
             warnings.simplefilter("always")
             if d.layout == "long":
                 panel = Panel.from_long(
-                    df, unit=d.unit, wave=d.wave, outcomes=list(d.outcomes),
+                    df, unit=d.unit, wave=d.wave, outcomes=d.outcome_argument(),
                     time_varying=list(d.time_varying), time_invariant=list(d.time_invariant),
                     drop_incomplete_covariates=d.drop_incomplete_covariates)
             else:
                 panel = Panel.from_wide(
-                    df, unit=d.unit, outcomes={k: list(v) for k, v in d.outcomes.items()},
+                    df, unit=d.unit, outcomes=d.outcome_argument(),
                     time_varying={k: list(v) for k, v in d.time_varying.items()},
                     time_invariant=list(d.time_invariant),
                     waves=None if d.waves is None else list(d.waves),
@@ -548,7 +541,7 @@ def load_study(path) -> Study:
         check_folder(output, "output")
     except SpecError as err:
         r.fail(str(err))
-    data = _read_data(r, r.table(r.required(raw, "data", ""), "data"), base)
+    data = read_data_table(r, r.table(r.required(raw, "data", ""), "data"), base)
     models = _read_models(r, r.required(raw, "models", ""), base)
     priors = _read_priors(r, r.table(raw.get("priors", {}), "priors"))
     sampling = r.settings(raw, "sampling", _SAMPLING)
@@ -561,53 +554,8 @@ def load_study(path) -> Study:
                  sensitivity=sensitivity)
 
 
-def _read_data(r: _Reader, raw: dict, base: Path) -> DataSource:
-    r.keys(raw, _DATA, "data")
-    rel = r.text(r.required(raw, "path", "data"), "data.path")
-    path = (base / rel).resolve()
-    if path.suffix.lower() not in _DATA_SUFFIXES:
-        r.fail(f"`data.path` must name a .csv or .parquet file; got {rel!r}", DataError)
-    if not path.is_file():
-        r.fail(f"the data file {rel!r} (`data.path`) does not exist; looked for {str(path)!r}. "
-               "Paths are relative to the study file's folder.", DataError)
-    layout = r.choice(raw.get("layout", "long"), _LAYOUTS, "data.layout")
-    unit = r.text(r.required(raw, "unit", "data"), "data.unit")
-    invariant = r.texts(raw.get("time_invariant", []), "data.time_invariant")
-    drop = r.flag(raw.get("drop_incomplete_covariates", False), "data.drop_incomplete_covariates")
-    if layout == "long":
-        if "waves" in raw:
-            r.fail("`data.waves` is for the wide layout only; in the long layout the wave "
-                   "labels come from the `data.wave` column: remove `data.waves`")
-        wave = r.text(r.required(raw, "wave", "data"), "data.wave")
-        outcomes = r.texts(r.required(raw, "outcomes", "data"), "data.outcomes")
-        varying = r.texts(raw.get("time_varying", []), "data.time_varying")
-        waves = None
-    else:
-        if "wave" in raw:
-            r.fail("`data.wave` is for the long layout only; in the wide layout give the "
-                   "columns per wave in `data.outcomes` (and optional labels in `data.waves`)")
-        wave = None
-
-        def per_wave(value, where):
-            value = r.table(value, where)
-            return {name: r.texts(cols, f"{where}.{name}") for name, cols in value.items()}
-
-        outcomes = per_wave(r.required(raw, "outcomes", "data"), "data.outcomes")
-        varying = per_wave(raw.get("time_varying", {}), "data.time_varying")
-        waves = raw.get("waves")
-        if waves is not None:
-            if not isinstance(waves, list):
-                r.fail(f"`data.waves` must be a list of wave labels; got {waves!r}")
-            waves = tuple(waves)
-    if not outcomes:
-        r.fail("`data.outcomes` is empty; name at least one outcome column")
-    return DataSource(path=path, layout=layout, unit=unit, wave=wave, outcomes=outcomes,
-                      time_varying=varying, time_invariant=invariant, waves=waves,
-                      drop_incomplete_covariates=drop)
-
-
 def _read_models(r: _Reader, raw: Any, base: Path) -> tuple[Candidate, ...]:
-    from bayeslong.model.spec import OPTION_VALUES, catalog, model
+    from bayeslong.model.spec import MODEL_KEYWORDS, OPTION_VALUES, catalog, model
 
     if isinstance(raw, dict):
         raw = [raw]
@@ -623,9 +571,12 @@ def _read_models(r: _Reader, raw: Any, base: Path) -> tuple[Candidate, ...]:
                    f"table; add e.g. model = \"alt\" (the catalog: {', '.join(catalog())})")
         name = r.text(entry["model"], f"{where}.model")
         options = r.table(entry.get("options", {}), f"{where}.options")
-        r.keys(options, tuple(OPTION_VALUES), f"{where}.options")
+        r.keys(options, MODEL_KEYWORDS, f"{where}.options")
         for key, value in options.items():
-            r.text(value, f"{where}.options.{key}")
+            if key in OPTION_VALUES:
+                r.text(value, f"{where}.options.{key}")
+            elif key == "processes":
+                r.whole(value, f"{where}.options.{key}", 2)
         if name.endswith(".toml"):
             file = (base / name).resolve()
             if not file.is_file():

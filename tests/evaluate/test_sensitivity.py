@@ -330,3 +330,16 @@ def test_settings_equal_to_a_given_fit_are_read_from_it_others_are_refitted(monk
                            initial=False, specification=True, power_scaling=False,
                            fit_kwargs={**kw, "seed": 5}, priors=priors, fits=[given])
     assert asked == [priors]
+
+
+def test_lag_models_for_three_processes():
+    from bayeslong.evaluate.sensitivity import catalog_spec
+    from bayeslong.workflow.cli import default_params
+
+    spec = bl.model("clpm", processes=3)
+    panel = Simulation(spec=spec, params=default_params(spec, n_waves=4), n_units=20,
+                       n_waves=4, seed=1).panel()
+    # the catalog models written for several processes (models/*.toml), bivariate-alt first
+    assert lag_models(panel) == ["bivariate-alt", "clpm", "ri-clpm"]
+    assert catalog_spec("ri-clpm", panel).processes == 3
+    assert lag_parameter(spec, panel.outcomes) == "lag[y1<-y1]"
