@@ -12,6 +12,13 @@ fresh process, so the compiled model starts from that setting's own first start.
 Command (2 chains x 200 draws per fit keep it short; the start is what is measured):
 
     PYTHONPATH=. .venv/bin/python bench/small_start.py [--panels 50]
+
+Measured (2-core machine, load average 3-5, numba cache warm; nutpie on the PyMC graph,
+the default sampler then): moderate panels, 50 x 2 fits: 0 fallbacks with either start
+(an earlier one-process version of this script); test-scale panels, 15 x 2 fits (seeds
+0-14, same settings, by hand): 2 fallbacks with the data-based start (seed 0, N = 20,
+both priors; each fell back to PyMC's NUTS at 83-146 s) and 0 with the nudged start. The
+full two-kind run of this script was not completed in that session.
 """
 
 import argparse
