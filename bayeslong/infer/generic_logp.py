@@ -342,25 +342,15 @@ def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, cha
     """
     import time
 
-    import nutpie
 
     t0 = time.perf_counter()
     from bayeslong.infer import generic_kernel  # noqa: F401  (loads or compiles the kernel)
 
     compile_s = time.perf_counter() - t0
     compiled, init = nutpie_model(layout(structure, prior_set), panel, callback, seed)
-    t0 = time.perf_counter()
-    idata = None
-    if callable(progressbar):  # live counts per chain for the caller (infer/progress.py)
-        from bayeslong.infer.progress import sample_nutpie
+    from bayeslong.infer.progress import run_nutpie
 
-        try:
-            idata = sample_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                                  seed=seed, init_mean=init, report=progressbar)
-        except (AttributeError, TypeError):  # another nutpie layout: sample without counts
-            idata = None
-    if idata is None:
-        idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                              seed=seed, progress_bar=progressbar is True, init_mean=init,
-                              save_warmup=False, low_rank_modified_mass_matrix=True)
+    t0 = time.perf_counter()
+    idata = run_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
+                       init_mean=init, progressbar=progressbar)
     return idata, compile_s, time.perf_counter() - t0

@@ -30,7 +30,7 @@ from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import ConvergenceWarning, SpecError
 from bayeslong.infer.priors import PriorSet, resolve_priors
-from bayeslong.infer.progress import PymcCounter, SamplingProgress, sample_nutpie
+from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.model.spec import Spec
 from bayeslong.model.structure import Structure, structure_for
 
@@ -499,21 +499,8 @@ def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, pr
     compiled = dataclasses.replace(entry["nutpie"].with_data(**inputs),
                                    initial_point_func=lambda seed: init.copy())
     t0 = time.perf_counter()
-    # a low-rank-modified mass matrix: the lag correlates about -0.9 with the growth means
-    # in these posteriors, which a diagonal metric cannot absorb; measured on alt (N = 500,
-    # T = 6) it gave 7 times the effective sample size of the lag per fit, at fewer
-    # leapfrog steps per draw (nutpie's own low-rank adaptation; bench/sampler_speed.py)
-    idata = None
-    if report is not None:  # live counts per chain for the caller (infer/progress.py)
-        try:
-            idata = sample_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                                  seed=seed, init_mean=init, report=report)
-        except (AttributeError, TypeError):  # another nutpie layout: sample without counts
-            idata = None
-    if idata is None:
-        idata = nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                              seed=seed, progress_bar=progressbar is True, init_mean=init,
-                              save_warmup=False, low_rank_modified_mass_matrix=True)
+    idata = run_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
+                       init_mean=init, progressbar=progressbar)
     return idata, compile_s, time.perf_counter() - t0
 
 
