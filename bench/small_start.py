@@ -74,7 +74,7 @@ def run(panels: int, old: bool, kind: str) -> dict:
                     fit = bl.fit(spec, panel, draws=200, tune=200, chains=2, seed=seed,
                                  priors=priors)
                 fits += 1
-                if fit.sampler != "nutpie":
+                if fit.sampler == "pymc":  # nutpie (either engine) could not start
                     fallbacks.append((seed, n, label))
                     print(f"  fallback: seed {seed}, N = {n}, {label} priors: "
                           + "; ".join(str(w.message)[:90] for w in caught
