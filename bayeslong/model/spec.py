@@ -36,6 +36,10 @@ MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
     "invariance": ("scalar", "configural", "metric", "strict"),
     "scale": ("marker", "effects"),
     "unique_covariance": ("same-indicator", "none"),
+    # categorical indicators (model/thresholds.py): the latent response's error
+    # distribution, and whether thresholds are equal over waves
+    "link": ("probit", "logit"),
+    "thresholds": ("equal", "free"),
 }
 #: Invariance levels from the least to the most restricted (Meredith 1993).
 INVARIANCE_LEVELS = ("configural", "metric", "scalar", "strict")
@@ -315,6 +319,8 @@ def model(name: str, **options) -> Spec:
         Measurement options (processes with several indicators): ``invariance``
         (configural | metric | scalar | strict), ``marker``, ``release``,
         ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects).
+        Categorical indicators: ``link`` (probit | logit), ``thresholds`` (equal | free
+        over waves).
 
     Raises
     ------
