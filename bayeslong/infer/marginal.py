@@ -250,3 +250,32 @@ def unit_marginal_loglik(cat: Categorical, panel, theta, tau, *, points: int = P
                     err[sl, units] = est.std(axis=0, ddof=1) / np.sqrt(len(est)) / np.maximum(p, 1e-300)
             out[sl, units] = total
     return (out, err) if return_error else out
+
+
+def treatment_conflict(panels: dict) -> str | None:
+    """Why fits on these panels cannot be compared by LOO, if one treats a variable as
+    categorical and another as continuous; None when they treat every variable alike.
+
+    ``panels`` maps a fit's name to its panel. A categorical variable's term is a log
+    probability (of a category), a continuous one's a log density (of a value on the
+    variable's scale): the two are on different scales, and their difference says nothing
+    about which model predicts better.
+    """
+    names = list(panels)
+    first = getattr(panels[names[0]], "categories", None) or {}
+    for name in names[1:]:
+        other = getattr(panels[name], "categories", None) or {}
+        for v in sorted(set(first) ^ set(other), key=str):
+            cat_in, cont_in = (names[0], name) if v in first else (name, names[0])
+            return (f"fits {cat_in!r} and {cont_in!r} treat {v!r} differently: as categorical in "
+                    f"{cat_in!r} (its log-likelihood terms are log probabilities of categories) "
+                    f"and as continuous in {cont_in!r} (log densities of values on the "
+                    "variable's scale). The two are on different scales, so their LOO or WAIC "
+                    "values cannot be compared; compare models that treat each variable the "
+                    "same way.")
+        for v in first:
+            if tuple(first[v]) != tuple(other[v]):
+                return (f"fits {names[0]!r} and {name!r} give {v!r} different categories "
+                        f"({list(first[v])} and {list(other[v])}); the log probabilities of "
+                        "different categories cannot be compared: use one coding.")
+    return None
