@@ -40,8 +40,8 @@ def main(sampler="nutpie", n=200):
     fit = bl.fit(spec, panel, draws=1000, tune=1000, chains=4, seed=2, sampler=sampler,
                  progressbar=False, loglik_draws=1000)
     total = time.perf_counter() - t0
-    ess = float(az.ess(fit.idata.posterior["lag"]))
-    rhat = float(az.rhat(fit.idata.posterior["lag"]))
+    ess = float(az.ess(fit.idata.posterior[["lag"]])["lag"])
+    rhat = float(az.rhat(fit.idata.posterior[["lag"]])["lag"])
     sample_s = fit.timing["sample"]
     print(f"sampler {fit.sampler}: build {fit.timing['build']:.1f} s, compile "
           f"{fit.timing['compile']:.1f} s, sampling {sample_s:.1f} s (4 x 1000 after 1000 "

@@ -90,3 +90,56 @@ def test_pareto_k_of_marginal_terms_on_binary_alt():
                      progressbar=False)
     k = bl.pareto_k(fit)
     assert (k > 0.7).mean() <= 0.05, k.sort_values().tail()
+
+
+def _polychoric(a, b):
+    """Pairwise polychoric correlation by maximum likelihood (Olsson 1979, two-step):
+    thresholds from each variable's cumulative proportions, then rho maximising the
+    likelihood of the cross table, cell probabilities from scipy's bivariate normal cdf."""
+    from scipy.optimize import minimize_scalar
+    from scipy.stats import multivariate_normal, norm
+
+    cats = np.unique(np.concatenate([a, b]))
+    counts = np.array([[np.sum((a == i) & (b == j)) for j in cats] for i in cats])
+
+    def cuts(v):
+        cum = np.cumsum([np.mean(v == c) for c in cats])[:-1]
+        return np.concatenate([[-8.0], norm.ppf(cum), [8.0]])
+
+    ta, tb = cuts(a), cuts(b)
+
+    def minus_loglik(rho):
+        mvn = multivariate_normal([0.0, 0.0], [[1.0, rho], [rho, 1.0]])
+        F = np.array([[mvn.cdf([x, y]) for y in tb] for x in ta])
+        cells = F[1:, 1:] - F[:-1, 1:] - F[1:, :-1] + F[:-1, :-1]
+        return -np.sum(counts * np.log(np.maximum(cells, 1e-300)))
+
+    return minimize_scalar(minus_loglik, bounds=(-0.99, 0.99), method="bounded",
+                           options={"xatol": 1e-6}).x
+
+
+@pytest.mark.slow
+def test_latent_correlations_match_pairwise_polychoric():
+    # three waves of one three-category item; latent responses N(mu_t, R), cut at 0 and 0.8
+    R = np.array([[1.0, 0.6, 0.4], [0.6, 1.0, 0.5], [0.4, 0.5, 1.0]])
+    rng = np.random.default_rng(12)
+    n = 400
+    ystar = rng.multivariate_normal([0.2, 0.4, 0.5], R, size=n)
+    y = 1 + (ystar[:, :, None] > np.array([0.0, 0.8])).sum(axis=2)
+    df = pd.DataFrame({"id": np.repeat(np.arange(n), 3), "t": np.tile([1, 2, 3], n),
+                       "y": y.ravel()})
+    panel = bl.Panel.from_long(df, unit="id", wave="t", outcomes=["y"],
+                               categorical={"y": "ordinal"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        fit = bl.fit(bl.model("waves-free"), panel, draws=500, tune=500, chains=2,
+                     sampler="pymc", progressbar=False, loglik_draws=20)
+    post = fit.idata.posterior
+    for s, t in ((1, 2), (1, 3), (2, 3)):
+        # correlation of the latent responses y* = eta + eps (the error's variance is 1)
+        cov = post[f"resid_cov[{s},{t}]"].values.ravel()
+        var_s = post[f"resid_var[{s}]"].values.ravel() + 1.0
+        var_t = post[f"resid_var[{t}]"].values.ravel() + 1.0
+        r = cov / np.sqrt(var_s * var_t)
+        reference = _polychoric(y[:, s - 1], y[:, t - 1])
+        assert abs(r.mean() - reference) < 0.1 * r.std(), (s, t, r.mean(), r.std(), reference)
