@@ -323,8 +323,11 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
             compile_s = time.perf_counter() - t0
             t0 = time.perf_counter()
+            # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
+            # correlates strongly with the variances and the first wave's parameters
             raw = nutpie.sample(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
-                                cores=cores, seed=int(seed), progress_bar=progressbar)
+                                cores=cores, seed=int(seed), progress_bar=progressbar,
+                                low_rank_modified_mass_matrix=True)
         else:
             import pymc as pm
 
