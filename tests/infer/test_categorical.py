@@ -148,6 +148,12 @@ def test_latent_correlations_match_pairwise_polychoric():
         r = cov / np.sqrt(var_s * var_t)
         reference = _polychoric(y[:, s - 1], y[:, t - 1])
         found.append((s, t, r.mean(), r.std(), reference))
-    print(found, fit.diagnostics()[["ess_bulk", "r_hat"]])
+    # Measured (n = 400, 2 x 1000 draws): the posterior means lie 0.14-0.17 posterior SD
+    # below the pairwise estimates (0.521, 0.432, 0.569 against 0.527, 0.441, 0.577), and the
+    # joint trivariate maximum likelihood agrees with the pairwise one to 0.003, so the gap
+    # is not the pairwise estimator's. Its cause is the model: y* = eta + eps with eps of
+    # unit variance, so a higher correlation of the responses needs a larger scale of eta,
+    # whose prior mass (the scale is not identified in the saturated model) shrinks the
+    # correlations slightly. The bound is therefore 0.25 posterior SD, not 0.1.
     for s, t, mean, sd, reference in found:
-        assert abs(mean - reference) < 0.1 * sd, found
+        assert abs(mean - reference) < 0.25 * sd, found
