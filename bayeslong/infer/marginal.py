@@ -101,9 +101,9 @@ def _genz(L: np.ndarray, lo: np.ndarray, hi: np.ndarray, u: np.ndarray) -> np.nd
     for j in range(q):
         shift = np.einsum("sk,snmk->snm", L[:, j, :j], w[..., :j]) if j else 0.0
         d = L[:, j, j][:, None, None]
-        a = (lo[:, :, j, None] - shift) / d
+        a = (lo[:, :, j, None] - shift) / d  # (S, n, 1) for the first variable: no points yet
         b = (hi[:, :, j, None] - shift) / d
-        width, pa, upper = _interval(np.broadcast_to(a, (S, n, M)), np.broadcast_to(b, (S, n, M)))
+        width, pa, upper = _interval(a, b)
         f *= width
         if j < q - 1:
             p = np.clip(pa + u[None, None, :, j] * width, 1e-300, 1.0 - 1e-16)
