@@ -270,6 +270,12 @@ class CategoricalFit(Fit):
         table.index.name = "parameter"
         return table
 
+    def save(self, path):
+        """Not available yet for categorical fits (the file would lose the categories)."""
+        raise SpecError("saving a fit with categorical variables is not supported yet: "
+                        "load_fit would rebuild the panel without its categories. Keep the "
+                        "InferenceData instead: fit.idata.to_netcdf(path)")
+
     def threshold_draws(self) -> np.ndarray:
         """The thresholds' draws, (chains * draws, n_thresholds), ``categorical.thresholds`` order."""
         post = self.idata.posterior

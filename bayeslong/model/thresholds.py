@@ -173,7 +173,7 @@ def _categorical(spec: Spec, structure: Structure, categories: dict, with_error:
     indicators = structure.indicators or {k: (k,) for k in structure.outcomes}
     observed = [n for g in indicators.values() for n in g]
     names = structure.names
-    Theta, Psi, B, Lam = (structure.matrices[m] for m in ("Theta", "Psi", "B", "Lam"))
+    Theta = structure.matrices["Theta"]
     theta_fixed = Theta.fixed.copy()
     pinned: dict[str, float] = {}
     rows, n_cat, cuts, thresholds = {}, {}, {}, []
@@ -248,9 +248,3 @@ def _uncarried_disturbances(structure: Structure, rows: np.ndarray) -> list[int]
             places[k].append(False)
     return [k for k, ok in places.items() if all(ok)]
 
-
-def check_categorical(spec: Spec, panel) -> Categorical | None:
-    """The categorical part when ``panel`` has categorical variables, else None."""
-    if not getattr(panel, "categories", None):
-        return None
-    return categorical_structure(spec, panel)
