@@ -21,7 +21,8 @@ from bayeslong.model.identification import Identification, identify
 from bayeslong.model.spec import Spec, catalog, load_model, model
 
 _LAZY = {
-    "Fit": "infer.sampling", "fit": "infer.sampling", "load_fit": "infer.sampling",
+    "Fit": "infer.sampling", "fit": "infer.fitting", "load_fit": "infer.sampling",
+    "CategoricalFit": "infer.categorical",
     "Prior": "infer.priors", "PriorSet": "infer.priors", "prior_predictive": "infer.priors",
     "build_model": "infer.pymc_model",
     "Task": "infer.batch", "TaskResult": "infer.batch", "BatchResult": "infer.batch",

@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from bayeslong.data.categories import code_categories, read_categorical
 from bayeslong.data.indicators import read_outcomes, read_wide_outcomes, settle_indicators
 from bayeslong.data.validation import (
     check_columns,
@@ -94,18 +95,21 @@ class _Intake:
         return np.column_stack([numeric_column(self.df, c, "covariate") for c in self.invariant]
                                or [np.empty((len(self.df), 0))])
 
-    def finish(self, units, waves, y, x, z, present, drop: bool, where: str) -> dict[str, Any]:
+    def finish(self, units, waves, y, x, z, present, drop: bool, where: str,
+               categories: dict | None = None) -> dict[str, Any]:
         """Check and warn about the waves, settle missing covariates, return Panel's arguments."""
         check_wave_count(waves)
         warn_wave_spacing(waves, where, stacklevel=_USER)
         units, y, x, z = settle_covariates(units, waves, y, x, z, self.varying, self.invariant,
                                            present, drop, stacklevel=_USER - 1)
+        extra = {"categories": categories} if categories else {}
         return dict(units=tuple(units), waves=tuple(waves), outcomes=self.processes,
-                    indicators=self.indicators, time_varying=self.varying, time_invariant=self.invariant, y=y, x=x, z=z)
+                    indicators=self.indicators, time_varying=self.varying,
+                    time_invariant=self.invariant, y=y, x=x, z=z, **extra)
 
 
 def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
-              drop_incomplete_covariates=False) -> dict[str, Any]:
+              drop_incomplete_covariates=False, categorical=None) -> dict[str, Any]:
     """Panel arguments from long data (one row per unit and wave); see Panel.from_long."""
     if unit == wave:
         raise DataError(
@@ -119,7 +123,16 @@ def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
     outcomes_, varying, invariant = it.outcomes, it.varying, it.invariant
     it.columns([(wave, "wave")], outcomes_, varying)
     check_no_missing_labels(df, wave, "wave label")
-    y_long = np.column_stack([numeric_column(df, c, "outcome") for c in outcomes_])
+    declared, categories = read_categorical(categorical, outcomes_), {}
+
+    def outcome(c):  # a categorical column becomes category positions 0..C-1
+        if c not in declared:
+            return numeric_column(df, c, "outcome")
+        where = [f"column {show(c)} row {show(r)}" for r in df.index]
+        codes, categories[c] = code_categories(df[c].to_numpy(object), where, c, declared[c])
+        return codes
+
+    y_long = np.column_stack([outcome(c) for c in outcomes_])
     x_long = np.column_stack(
         [numeric_column(df, c, "covariate") for c in varying] or [np.empty((len(df), 0))]
     )
@@ -188,11 +201,11 @@ def read_long(df, *, unit, wave, outcomes, time_varying=(), time_invariant=(),
         z[firsts.index.to_numpy()] = firsts.to_numpy()
 
     return it.finish(units, waves, y, x, z, present, drop_incomplete_covariates,
-                     f" in column {show(wave)}")
+                     f" in column {show(wave)}", categories)
 
 
 def read_wide(df, *, unit, outcomes, time_varying=None, time_invariant=(), waves=None,
-              drop_incomplete_covariates=False) -> dict[str, Any]:
+              drop_incomplete_covariates=False, categorical=None) -> dict[str, Any]:
     """Panel arguments from wide data (one row per unit); see Panel.from_wide."""
     if not isinstance(outcomes, Mapping):
         raise DataError(
@@ -281,11 +294,20 @@ def read_wide(df, *, unit, outcomes, time_varying=None, time_invariant=(), waves
             axis=2,
         )
 
-    y = block(outcome_map, "outcome")
+    declared, categories = read_categorical(categorical, outcomes_), {}
+    y = block({n: c for n, c in outcome_map.items() if n not in declared}, "outcome")
+    for k, name in enumerate(outcome_map):  # a categorical variable: its waves coded together
+        if name in declared:
+            cols = [outcome_map[name][t] for t in order]
+            raw = np.concatenate([np.full(len(df), None, object) if c is None
+                                  else df[c].to_numpy(object) for c in cols])
+            where = [f"column {show(c)} row {show(r)}" for c in cols for r in df.index]
+            codes, categories[name] = code_categories(raw, where, name, declared[name])
+            y = np.insert(y, k, codes.reshape(len(cols), len(df)).T, axis=2)
     x = block(varying_map, "covariate")
     z = it.invariant_values()
     ids = df[unit].tolist()
     units = sorted_labels(ids, "unit", unit)
     rows = pd.Index(ids).get_indexer(units)
     return it.finish(units, labels, y[rows], x[rows], z[rows], None, drop_incomplete_covariates,
-                     " given in `waves`")
+                     " given in `waves`", categories)

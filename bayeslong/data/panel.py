@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from bayeslong.data.categories import settle_categories
 from bayeslong.data.intake import read_long, read_wide
 from bayeslong.data.patterns import Patterns
 from bayeslong.data.indicators import indicator_labels, settle_indicators
@@ -71,6 +72,10 @@ class Panel:
         Time-varying covariates; never NaN.
     z : numpy.ndarray of float, shape (N, len(time_invariant))
         Time-invariant covariates; never NaN.
+    categories : mapping of str to tuple, optional
+        For each categorical (binary or ordinal) observed variable, its categories in order
+        (integer codes or labels); its values in ``y`` are then the positions 0..C-1
+        (data/categories.py). Built by ``categorical=`` at intake.
 
     Raises
     ------
@@ -102,6 +107,7 @@ class Panel:
     y: np.ndarray
     x: np.ndarray = field(default=None)  # type: ignore[assignment]  # filled in __post_init__
     z: np.ndarray = field(default=None)  # type: ignore[assignment]
+    categories: Mapping[str, tuple] | None = None
 
     # ---------------------------------------------------------------- validation
 
@@ -192,6 +198,7 @@ class Panel:
                         f"`{'time_varying' if name == 'x' else 'time_invariant'}`."
                     )
         check_magnitudes(y, x, z, observed_names, time_varying, time_invariant, labels=described)
+        categories = settle_categories(self.categories, observed_names, y, described)
         for name, value in (
             ("units", units),
             ("waves", waves),
@@ -202,6 +209,7 @@ class Panel:
             ("y", y),
             ("x", x),
             ("z", z),
+            ("categories", categories),
         ):
             object.__setattr__(self, name, value)
 
@@ -218,6 +226,7 @@ class Panel:
         time_varying: Sequence[str] | str = (),
         time_invariant: Sequence[str] | str = (),
         drop_incomplete_covariates: bool = False,
+        categorical: Mapping[str, Any] | None = None,
     ) -> Panel:
         """Build a panel from long data: one row per unit and wave.
 
@@ -245,6 +254,14 @@ class Panel:
         drop_incomplete_covariates : bool, default False
             Drop units with a missing covariate value (with a warning naming them) instead of
             raising.
+        categorical : mapping, optional
+            Binary and ordinal outcomes or indicators: ``{"woke": "binary", "rested":
+            "ordinal"}`` reads the categories from integer codes in the data;
+            ``{"rested": ["never", "sometimes", "often"]}`` gives labels in order. The panel
+            then holds category positions 0..C-1 and records the categories in
+            :attr:`categories`. A category that is never observed, a label not in the
+            declared list and a non-integer code are errors (docs/model-family.md,
+            "Categorical indicators").
 
         Returns
         -------
@@ -284,7 +301,8 @@ class Panel:
         """
         return cls(**read_long(
             df, unit=unit, wave=wave, outcomes=outcomes, time_varying=time_varying,
-            time_invariant=time_invariant, drop_incomplete_covariates=drop_incomplete_covariates))
+            time_invariant=time_invariant, drop_incomplete_covariates=drop_incomplete_covariates,
+            categorical=categorical))
 
     @classmethod
     def from_wide(
@@ -297,6 +315,7 @@ class Panel:
         time_invariant: Sequence[str] | str = (),
         waves: Sequence[Any] | None = None,
         drop_incomplete_covariates: bool = False,
+        categorical: Mapping[str, Any] | None = None,
     ) -> Panel:
         """Build a panel from wide data: one row per unit, one column per variable and wave.
 
@@ -324,6 +343,9 @@ class Panel:
         drop_incomplete_covariates : bool, default False
             Drop units with a missing covariate value (with a warning naming them) instead of
             raising.
+        categorical : mapping, optional
+            Categorical outcomes or indicators, as in :meth:`from_long` (all waves of a
+            variable share its categories).
 
         Returns
         -------
@@ -350,7 +372,7 @@ class Panel:
         return cls(**read_wide(
             df, unit=unit, outcomes=outcomes, time_varying=time_varying,
             time_invariant=time_invariant, waves=waves,
-            drop_incomplete_covariates=drop_incomplete_covariates))
+            drop_incomplete_covariates=drop_incomplete_covariates, categorical=categorical))
 
     # ---------------------------------------------------------------- sizes and equality
 
@@ -384,6 +406,7 @@ class Panel:
             and self.indicators == other.indicators
             and self.time_varying == other.time_varying
             and self.time_invariant == other.time_invariant
+            and self.categories == other.categories
             and arrays_equal(self.y, other.y)
             and arrays_equal(self.x, other.x)
             and arrays_equal(self.z, other.z)
@@ -538,6 +561,7 @@ class Panel:
             y=y[keep],
             x=self.x[keep, :n_waves],
             z=self.z[keep],
+            categories=self.categories,
         )
 
     def to_long(self) -> pd.DataFrame:

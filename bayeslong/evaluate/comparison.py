@@ -45,6 +45,7 @@ from bayeslong.dims import UNIT
 from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.evaluate.checks import conditional_normal
 from bayeslong.infer.likelihood import mvn_logpdf
+from bayeslong.infer.marginal import treatment_conflict
 from bayeslong.model.moments import moment_draws, unit_means
 from bayeslong.model.spec import Spec, check_spec
 from bayeslong.model.structure import structure_for
@@ -139,6 +140,9 @@ def _check_fits(fits) -> dict:
     for name, fit in fits.items():
         _check_loglik(name, fit)
     names = list(fits)
+    conflict = treatment_conflict({name: fit.panel for name, fit in fits.items()})
+    if conflict:
+        raise DataError(conflict)
     first = fits[names[0]].panel
     key = data_fingerprint(first)
     for name in names[1:]:

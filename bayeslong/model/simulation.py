@@ -215,7 +215,8 @@ def _solve_latents(structure: Structure, B: np.ndarray, r: np.ndarray) -> np.nda
 
 def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | None = None, *,
              covariates: dict | None = None, time_invariant: dict | None = None,
-             outcomes=None, missing: dict | None = None, indicators: dict | None = None) -> pd.DataFrame:
+             outcomes=None, missing: dict | None = None, indicators: dict | None = None,
+             categorical: dict | None = None) -> pd.DataFrame:
     """Draw a panel in long form from ``spec`` at parameter values ``params``.
 
     Parameters
@@ -250,6 +251,14 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
         Intermittent missingness is completely at random: each remaining outcome row at
         t >= 2 is missing with probability p. Wave 1 is never removed, so every unit keeps
         an observation; the expected share observed at wave t is (1 - d)^(t-1) (1 - p).
+    categorical : dict, optional
+        Categorical outcomes or indicators and their number of categories, ``{"y": 3}``
+        (or ``"binary"``): the variable is then the category (1..C) in which its latent
+        response y* = nu + lambda eta + eps falls, with eps from the model's ``link``
+        (standard normal or logistic) and the thresholds among the params
+        (``threshold[y,2]`` ...; the first is 0, and parameters the categorical model fixes,
+        such as an uncarried ``resid_var``, take their fixed values when not given;
+        model/thresholds.py).
 
     Returns
     -------
@@ -280,7 +289,8 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
     """
     return Simulation(spec=spec, params=dict(params), n_units=n_units, n_waves=n_waves, seed=seed,
                       covariates=covariates or {}, time_invariant=time_invariant or {},
-                      outcomes=outcomes, missing=missing, indicators=indicators).data()
+                      outcomes=outcomes, missing=missing, indicators=indicators,
+                      categorical=categorical).data()
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -301,6 +311,7 @@ class Simulation:
     outcomes: tuple | None = None
     missing: dict | None = None
     indicators: dict | None = None
+    categorical: dict | None = None
 
     def __post_init__(self):
         check_spec(self.spec)
@@ -319,6 +330,8 @@ class Simulation:
 
     @property
     def structure(self) -> Structure:
+        if self.categorical:
+            return self._categorical().structure
         return build_structure(self.spec, outcomes=self.outcomes, n_waves=int(self.n_waves),
                                time_varying=tuple(self.covariates),
                                time_invariant=tuple(self.time_invariant),
@@ -326,12 +339,46 @@ class Simulation:
 
     def theta(self) -> np.ndarray:
         """The parameter vector in ``structure.names`` order."""
-        return parameter_vector(self.structure, self.params)
+        return self._theta_tau()[0]
+
+    def _categorical(self, with_error: bool = False):
+        from bayeslong.model.thresholds import categorical_design
+
+        counts = {v: 2 if c == "binary" else c for v, c in (self.categorical or {}).items()}
+        for v, c in counts.items():
+            if not isinstance(c, int) or c < 2:
+                raise SpecError(f"categorical[{v!r}] must be a number of categories >= 2 or "
+                                f"'binary'; got {self.categorical[v]!r}")
+        return categorical_design(self.spec, outcomes=self.outcomes, n_waves=int(self.n_waves),
+                                  time_varying=tuple(self.covariates),
+                                  time_invariant=tuple(self.time_invariant),
+                                  indicators=self.indicators, n_categories=counts,
+                                  with_error=with_error)
+
+    def _theta_tau(self):
+        """The structure's parameters and the free thresholds (empty without categories)."""
+        if not self.categorical:
+            return parameter_vector(self.structure, self.params), np.empty(0)
+        cat = self._categorical()
+        params = dict(self.params)
+        fitted = self._categorical(with_error=True).pinned
+        for name, value in cat.pinned.items():
+            if name in params and float(params[name]) != fitted[name]:
+                raise SpecError(f"params[{name!r}] is {params[name]!r}, but with categorical "
+                                f"indicators the model fixes it at {fitted[name]:g} "
+                                "(model/thresholds.py); leave it out of params")
+            params[name] = value
+        tau = np.array([float(params.pop(n)) if n in params else np.nan for n in cat.thresholds])
+        if np.isnan(tau).any():
+            missing = [n for n, v in zip(cat.thresholds, tau) if np.isnan(v)]
+            raise SpecError(f"params lacks the thresholds {', '.join(missing)} (each the cut "
+                            "between two neighbouring categories; the first cut is 0)")
+        return parameter_vector(cat.structure, params), tau
 
     def data(self) -> pd.DataFrame:
         """Draw the panel in long form (see :func:`simulate`)."""
         structure = self.structure
-        theta = parameter_vector(structure, self.params)
+        theta, tau = self._theta_tau()
         N, T = int(self.n_units), int(self.n_waves)
         names = [n for g in (self.indicators or {k: (k,) for k in self.outcomes}).values() for n in g]
         K = len(names)  # observed variables
@@ -351,6 +398,14 @@ class Simulation:
         eps = rng.standard_normal((N, len(structure.observed))) @ theta_root.T
         eta = _solve_latents(structure, B, a + w @ G.T + zeta)
         y = nu + eta @ Lam.T + eps  # (N, K*T), process-major
+        if self.categorical:  # latent responses cut at the thresholds
+            cat = self._categorical()
+            for v, cuts in cat.cut_values(tau).items():
+                r = cat.rows[v]
+                noise = (rng.standard_normal((N, len(r))) if cat.link == "probit"
+                         else rng.logistic(size=(N, len(r))))
+                ystar = y[:, r] + noise
+                y[:, r] = 1 + (ystar[:, :, None] > cuts[None, :, 1:-1]).sum(axis=2)
         y = y.reshape(N, K, T).transpose(0, 2, 1).copy()  # (N, T, K observed variables)
         # missingness, wave 1 always kept
         if dropout > 0 or intermittent > 0:
@@ -374,6 +429,8 @@ class Simulation:
 
         outcomes = ({k: list(v) for k, v in self.indicators.items()} if self.indicators
                     else list(self.outcomes))
+        categorical = {v: "ordinal" for v in self.categorical or {}}
         return Panel.from_long(self.data(), unit="unit", wave="wave", outcomes=outcomes,
                                time_varying=list(self.covariates),
-                               time_invariant=list(self.time_invariant))
+                               time_invariant=list(self.time_invariant),
+                               categorical=categorical or None)

@@ -36,6 +36,10 @@ MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
     "invariance": ("scalar", "configural", "metric", "strict"),
     "scale": ("marker", "effects"),
     "unique_covariance": ("same-indicator", "none"),
+    # categorical indicators (model/thresholds.py): the latent response's error
+    # distribution, and whether thresholds are equal over waves
+    "link": ("probit", "logit"),
+    "thresholds": ("equal", "free"),
 }
 #: Invariance levels from the least to the most restricted (Meredith 1993).
 INVARIANCE_LEVELS = ("configural", "metric", "scalar", "strict")
@@ -60,6 +64,7 @@ _RESIDUALS_AT = ("latent", "indicator")
 _FILE_KEYS = {
     "description", "processes", "form", "factors", "scores", "lag_name", "lag_offset",
     "level_covariates", "residuals_at", "initial_is_level", "options", "allowed", "use",
+    "wave_covariance",
     "measurement", "paths",
 }
 
@@ -110,6 +115,10 @@ class Spec:
     level_covariates : {"none", "every-wave"}
         ``every-wave``: the level factor is regressed on x at every wave (the
         correlated-effects projection of the fixed-effects model); no z may enter.
+    wave_covariance : {"none", "free"}
+        ``free``: one process's wave disturbances covary freely over waves (one covariance
+        block; parameters ``resid_cov[s,t]``), the saturated model of a model without
+        factors or lag (``waves-free``). One process, latent residuals, no lag.
     residuals_at : {"latent", "indicator"}
         Where the wave-specific variance sits: the latent disturbance, or a measurement
         error on the observed outcome with a disturbance-free latent (dual change).
@@ -145,6 +154,7 @@ class Spec:
     lag_offset: float = 0.0
     level_covariates: str = "none"
     residuals_at: str = "latent"
+    wave_covariance: str = "none"
     initial_is_level: bool = False
     options: dict = field(default_factory=dict)
     allowed: dict = field(default_factory=dict)
@@ -161,6 +171,10 @@ class Spec:
         _choice("scores", self.scores, _SCORES, where)
         _choice("level_covariates", self.level_covariates, _LEVEL_COVARIATES, where)
         _choice("residuals_at", self.residuals_at, _RESIDUALS_AT, where)
+        _choice("wave_covariance", self.wave_covariance, ("none", "free"), where)
+        if self.wave_covariance == "free" and (self.processes != 1 or self.residuals_at != "latent"):
+            raise SpecError(f"`wave_covariance = \"free\"`{where} needs one process with "
+                            "latent residuals")
         factors = tuple(self.factors)
         for f in factors:
             _choice("factors", f, _FACTOR_NAMES, where)
@@ -420,7 +434,8 @@ def model(name: str, **options) -> Spec:
         ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects),
         ``cross_loadings`` (indicator -> other process). Several processes: ``processes``
         (K, for a model written for several), ``cross_lags`` ("all", "none" or
-        {"drop": ["y<-x"]}), ``same_wave`` (["y<-x"]); see docs/model-family.md.
+        {"drop": ["y<-x"]}), ``same_wave`` (["y<-x"]); see docs/model-family.md. Categorical indicators: ``link``
+        (probit | logit), ``thresholds`` (equal | free over waves).
 
     Raises
     ------

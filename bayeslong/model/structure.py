@@ -464,6 +464,14 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         # the latent is disturbance-free and the indicators' unique variances are its
         # measurement error (one process: checked above)
         resid_waves = []
+    if spec.wave_covariance == "free":  # one free block over the waves (saturated)
+        if lag != "none" or opts["residuals"] != "free":
+            raise SpecError(f"model '{spec.name}': free covariances of the wave disturbances "
+                            "need lag = \"none\" and residuals = \"free\"")
+        tab.block("Psi", [eta(0, t) for t in resid_waves],
+                  [[_label("resid_var", t) if s_ == t else _label("resid_cov", s_, t)
+                    if s_ < t else None for s_ in resid_waves] for t in resid_waves])
+        resid_waves = []
     groups = [list(range(K))] if spec.residuals_at == "indicator" else paths.groups(K)
     for t in resid_waves:
         tt = t if opts["residuals"] == "free" else None

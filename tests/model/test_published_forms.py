@@ -328,6 +328,22 @@ def waves_apart(d):
     return ys
 
 
+def waves_free(d):
+    """Saturated waves: the multivariate regression of the T waves on the covariates with a
+    free covariance (Anderson 2003, An Introduction to Multivariate Statistical Analysis,
+    3rd ed., ch. 8): y_t = intercept_t + b x_t + b' z + e_t, Cov(e_s, e_t) = resid_cov[s,t]."""
+    (k,) = d.outcomes
+    tags = [f"e:{t}" for t in range(1, d.T + 1)]
+
+    def name(a, b):
+        s, t = sorted((int(a[2:]), int(b[2:])))
+        return d.p[label("resid_var", t) if s == t else label("resid_cov", s, t)]
+
+    es = d.disturbances(tags, name)
+    return [d.const(d.p[label("intercept", t)]) + d.x_effects(k, t, with_z=True) + es[t - 1]
+            for t in range(1, d.T + 1)]
+
+
 def random_effects(d):
     """Random-effects panel model (Laird & Ware 1982, Biometrics 38(4), random intercept):
     y_t = level + b x_t + e_t, level = level_mean + g z + u uncorrelated with x."""
@@ -382,6 +398,7 @@ NAIVE = {
     "ri-clpm": ri_clpm,
     "bivariate-alt": bivariate_alt,
     "waves-apart": waves_apart,
+    "waves-free": waves_free,
 }
 
 VARIANTS = {  # option settings whose published form differs, beside each model's defaults

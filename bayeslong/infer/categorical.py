@@ -1,0 +1,392 @@
+"""Bayesian fits of models with categorical indicators: person-level latents and thresholds.
+
+A continuous panel is fitted on its marginal likelihood (pattern cross-products, no
+latents); a categorical variable has no such closed form, so here every unit's latents are
+parameters of the PyMC model (docs/model-family.md, "Categorical indicators"):
+
+    eta_i = E[eta | w_i] + (I - B)^-1 zeta_i,   zeta_i = chol(Psi_a) z_i,   z_i ~ N(0, I)
+    y*_i  = nu + Lam eta_i (+ eps_i, integrated out by the link)
+
+E[eta | w_i] = alpha + Gamma w_i comes from :func:`bayeslong.model.moments.latent_moments`
+and the disturbances are carried through the structure's own B, so the latents have the
+engine's implied mean and covariance Phi; the parameterisation is non-centred (the z_i are
+standard normal a priori whatever the variances), which keeps the sampler away from the
+funnel between a variance and the latents it scales (Papaspiliopoulos, Roberts & Sköld
+2007). Only disturbances with a free or non-zero variance are drawn (Psi_a: Psi on those).
+Observed categories follow ``pm.OrderedProbit`` / ``pm.OrderedLogistic`` at their thresholds
+(a binary variable is the case of one threshold, fixed at 0); continuous indicators of a
+mixed model are normal around their latent response with their unique variance.
+
+Thresholds are ordered by construction: tau_1 = 0 and each later one is the previous plus a
+positive gap with a half-normal prior. After sampling, each unit's marginal log-likelihood
+(latents integrated out, :mod:`bayeslong.infer.marginal`) is stored for LOO and WAIC.
+
+References
+----------
+Papaspiliopoulos, O., Roberts, G. O. & Sköld, M. (2007). A general framework for the
+parametrization of hierarchical models. Statistical Science 22(1), 59-73.
+doi:10.1214/088342307000000014
+"""
+
+from __future__ import annotations
+
+import os
+import time
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from bayeslong.arguments import seed_value, whole_number
+from bayeslong.dims import PARAMETER, UNIT, WAVE
+from bayeslong.errors import SpecError
+from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
+from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, warn_convergence
+from bayeslong.model.thresholds import Categorical, categorical_structure
+
+#: Scale s of a categorical variable's latent response for the default priors, in units
+#: of the probit error's SD: means Normal(0, 3 s), SDs HalfNormal(s), effects
+#: Normal(0, 2.5 s / s_x) as in :func:`default_priors`. With binary data the overall scale
+#: of the latents against the fixed error is only weakly identified; measured on binary alt
+#: (N = 200, T = 5, bench/categorical.py) s = 2 let the variances drift to 4-8 times their
+#: true values with posterior SDs as large as their means, s = 1 kept them near the truth.
+LATENT_SD = 1.0
+#: Default prior of each gap between neighbouring thresholds: HalfNormal(GAP_SD).
+GAP_SD = 3.0
+#: Draws at most used for the per-unit marginal log-likelihood (thinned evenly beyond).
+LOGLIK_DRAWS = 1000
+
+
+class _LatentScale:
+    """The panel as the default priors see it: a categorical variable on its latent scale."""
+
+    def __init__(self, panel, cat: Categorical):
+        self._panel, self._cat = panel, cat
+
+    def __getattr__(self, name):
+        return getattr(self._panel, name)
+
+    def indicator_scale(self):
+        scale = self._panel.indicator_scale()
+        scale.update({v: {"mean": 0.0, "sd": LATENT_SD} for v in self._cat.variables})
+        return scale
+
+    def summary_scale(self):
+        scale = self.indicator_scale()
+        return {name: scale[group[0]] for name, group in self._panel.indicators.items()}
+
+
+def categorical_priors(cat: Categorical, panel, priors: dict | None = None):
+    """``(PriorSet of the structure, {threshold: (family, *args)} of the gaps)``.
+
+    A prior given for a threshold is the prior of its gap to the threshold below (a
+    positive family); a prior for a parameter the categorical model fixes is refused.
+    """
+    priors = dict(priors or {})
+    gaps = {}
+    for name in cat.thresholds:
+        value = priors.pop(name, ("halfnormal", GAP_SD))
+        if isinstance(value, str):
+            value = (value,)
+        family = str(value[0]).lower() if value else ""
+        if family not in FAMILIES or FAMILIES[family][1] != "positive" \
+                or len(value) - 1 != len(FAMILIES[family][0]):
+            positive = ", ".join(f for f, (_, sup) in FAMILIES.items() if sup == "positive")
+            raise SpecError(f"prior for {name!r} is on the gap to the threshold below it, which "
+                            f"is positive: give one of {positive} with its arguments, e.g. "
+                            f"('halfnormal', 3); got {value!r}")
+        gaps[name] = (family, *(float(a) for a in value[1:]))
+    fixed = [n for n in priors if n in cat.pinned]
+    if fixed:
+        raise SpecError(f"`priors` names {fixed[0]!r}, which the categorical model fixes at "
+                        f"{cat.pinned[fixed[0]]:g} (docs/model-family.md, 'Categorical "
+                        "indicators'); leave it out")
+    return resolve_priors(cat.structure, _LatentScale(panel, cat), priors), gaps
+
+
+def _observed_parts(cat: Categorical, panel):
+    """Per observed variable: rows, the (unit, wave) positions observed and their values."""
+    ys = panel.outcome_matrix()
+    T = panel.n_waves
+    parts = []
+    for j, name in enumerate(panel.observed_names):
+        rows = np.arange(j * T, (j + 1) * T)
+        seen = ~np.isnan(ys[:, rows])
+        units, waves = np.nonzero(seen)
+        parts.append((name, rows, units, waves, ys[:, rows][seen]))
+    return parts
+
+
+def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: dict):
+    """The PyMC model of a categorical fit (module notes)."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    from bayeslong.infer.pymc_model import lkj_name
+    from bayeslong.model.moments import latent_moments, model_matrices
+
+    structure = cat.structure
+    N, L = panel.n_units, len(structure.latents)
+    slices = prior_set.hyper_slices()
+    Theta = structure.matrices["Theta"]
+    with pm.Model(coords={PARAMETER: list(cat.names), UNIT: list(panel.units)}) as model:
+        hyper = pm.Data("prior_hyper", prior_set.hyper)
+        values, corr = {}, {}
+        in_lkj = {int(i) for b in prior_set.blocks for i in np.diag(structure.blocks[b].index)}
+        for i, p in enumerate(prior_set.priors):
+            name = structure.names[i]
+            if p.target == "correlation" or i in in_lkj:
+                continue
+            if name in cat.pinned:
+                fixed = cat.pinned[name]
+                values[p.rv_name] = pt.constant(np.sqrt(fixed) if p.target == "sd" else fixed)
+            elif p.factory is not None:
+                values[p.rv_name] = p.factory(p.rv_name)
+            else:
+                sl = slices[p.parameter]
+                cls, kwargs = family_dist(p.family, [hyper[j] for j in range(sl.start, sl.stop)])
+                values[p.rv_name] = cls(p.rv_name, **kwargs)
+        for b in prior_set.blocks:  # as in pymc_model.build_model: LKJ(eta) via a potential
+            diag = [int(i) for i in np.diag(structure.blocks[b].index)]
+            members = [prior_set.priors[i] for i in diag]
+            q = len(members)
+            args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
+                    for j in range(len(members[0].args))]
+            cls, kwargs = family_dist(members[0].family, args)
+            first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
+            eta = hyper[slices[first.parameter].start]
+            packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
+                                       sd_dist=cls.dist(**kwargs, shape=q),
+                                       compute_corr=False, store_in_trace=False)
+            Lb = pm.expand_packed_triangular(q, packed, lower=True)
+            sds = pt.sqrt(pt.sum(Lb**2, axis=1))
+            for r, m in enumerate(members):
+                values[m.rv_name] = sds[r]
+            Lc = Lb / sds[:, None]
+            pm.Potential(f"{lkj_name(prior_set, b)}_eta",
+                         (eta - 1.0) * 2.0 * pt.sum(pt.log(pt.diagonal(Lc))))
+            corr[b] = Lc @ Lc.T
+        theta = assemble_theta(prior_set, values, corr, pt.stack)
+        for i, p in enumerate(prior_set.priors):
+            if p.target != "value" or structure.names[i] in cat.pinned:
+                pm.Deterministic(structure.names[i], theta[i])
+        # thresholds: tau_1 = 0, each later one the previous plus a positive gap
+        tau = {}
+        for v in cat.variables:
+            table = cat.cuts[v]
+            for c in range(1, table.shape[1]):
+                for t in range(table.shape[0]):
+                    k = int(table[t, c])
+                    name = cat.thresholds[k]
+                    if name in tau:
+                        continue
+                    below = int(table[t, c - 1])
+                    family, *args = gaps[name]
+                    cls, kwargs = family_dist(family, args)
+                    gap = cls(f"{name}__gap", **kwargs)
+                    tau[name] = pm.Deterministic(name, (tau[cat.thresholds[below]] if below >= 0
+                                                        else 0.0) + gap)
+        # person-level latents, non-centred, with the engine's implied moments
+        m = model_matrices(structure, theta)
+        alpha, Gamma, _, _ = latent_moments(structure, theta)
+        w = pm.Data("covariates", panel.covariate_matrix())
+        eta_mean = alpha[None, :] + pt.dot(w, Gamma.T)
+        active = _active_disturbances(cat)
+        if active:
+            root = pt.linalg.cholesky(m["Psi"][active][:, active])
+            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(active)))
+            zeta = pt.set_subtensor(pt.zeros((N, L))[:, active], pt.dot(z, root.T))
+            dev = zeta
+            for _ in range(structure.path_depth - 1):  # (I - B)^-1 zeta: B is nilpotent
+                dev = zeta + pt.dot(dev, m["B"].T)
+            eta_i = eta_mean + dev
+        else:
+            eta_i = eta_mean
+        ystar = m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T)
+        for name, rows, units, waves, obs in _observed_parts(cat, panel):
+            mean = ystar[units, rows[waves]]
+            if name in cat.rows:
+                table = cat.cuts[name]
+                cut = pt.stack([pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
+                                          for k in table[t]]) for t in range(len(table))])
+                dist = pm.OrderedProbit if cat.link == "probit" else pm.OrderedLogistic
+                dist(f"y[{name}]", eta=mean, cutpoints=cut[waves], compute_p=False,
+                     observed=obs.astype(np.int64))
+            else:
+                sd = pt.sqrt(pt.diagonal(_unique_variances(cat, Theta, m, name, rows)))
+                pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves], observed=obs)
+    return model
+
+
+def _active_disturbances(cat: Categorical) -> list[int]:
+    """Latents whose disturbance has a free or non-zero variance (the rest are 0)."""
+    Psi = cat.structure.matrices["Psi"]
+    names = cat.structure.names
+    out = []
+    for l in range(Psi.index.shape[0]):
+        k = int(Psi.index[l, l])
+        if (k >= 0 and cat.pinned.get(names[k], 1.0) != 0.0) or (k < 0 and Psi.fixed[l, l] != 0):
+            out.append(l)
+    return out
+
+
+def _unique_variances(cat: Categorical, Theta, m, name: str, rows: np.ndarray):
+    """Theta on a continuous variable's rows, refused unless diagonal and free (mixed models)."""
+    block = Theta.index[np.ix_(rows, np.arange(Theta.index.shape[0]))].copy()
+    block[np.arange(len(rows)), rows] = -1
+    if (block >= 0).any() or (Theta.fixed[np.ix_(rows, rows)] - np.diag(np.diag(
+            Theta.fixed[np.ix_(rows, rows)]))).any():
+        raise SpecError(f"continuous indicator {name!r} has unique covariances over waves; a model "
+                        "with categorical indicators needs unique_covariance='none'")
+    if (Theta.index[rows, rows] < 0).any() and not (Theta.fixed[rows, rows] > 0).all():
+        raise SpecError(
+            f"{name!r} is continuous and observed without measurement error (y = eta), which a "
+            "model with categorical indicators cannot sample with person-level latents yet; "
+            "measure that process by several indicators, or treat all variables alike")
+    return m["Theta"][rows][:, rows]
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class CategoricalFit(Fit):
+    """A :class:`~bayeslong.infer.sampling.Fit` of a model with categorical indicators.
+
+    ``categorical`` is the model's categorical part (thresholds, fixed parameters);
+    ``idata.posterior`` holds every structure parameter (fixed ones as constants) and the
+    thresholds; ``idata.log_likelihood["y"]`` the per-unit marginal log-likelihood, with
+    its numerical error in ``idata.log_likelihood.attrs``.
+    """
+
+    categorical: Categorical | None = None
+
+    def diagnostics(self) -> pd.DataFrame:
+        return diagnose(self.idata, self.categorical.names)
+
+    def summary(self) -> pd.DataFrame:
+        import arviz as az
+
+        names = list(self.categorical.names)
+        table = az.summary(self.idata, var_names=names, hdi_prob=0.9, kind="stats")
+        diag = self.diagnostics()
+        table = table.join(diag[["r_hat", "ess_bulk", "ess_tail", "flag"]])
+        table.index.name = "parameter"
+        return table
+
+    def save(self, path):
+        """Not available yet for categorical fits (the file would lose the categories)."""
+        raise SpecError("saving a fit with categorical variables is not supported yet: "
+                        "load_fit would rebuild the panel without its categories. Keep the "
+                        "InferenceData instead: fit.idata.to_netcdf(path)")
+
+    def threshold_draws(self) -> np.ndarray:
+        """The thresholds' draws, (chains * draws, n_thresholds), ``categorical.thresholds`` order."""
+        post = self.idata.posterior
+        return np.stack([post[n].values.reshape(-1) for n in self.categorical.thresholds], axis=1) \
+            if self.categorical.thresholds else np.empty((post.sizes["chain"] * post.sizes["draw"], 0))
+
+
+def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
+                    seed: int = 1, priors: dict | None = None, sampler: str = "auto",
+                    progressbar: bool = True, cores: int | None = None,
+                    loglik_draws: int = LOGLIK_DRAWS, points: int = POINTS,
+                    replicates: int = REPLICATES) -> CategoricalFit:
+    """Fit ``spec`` to a panel with categorical variables by NUTS with person-level latents.
+
+    Parameters are those of :func:`bayeslong.fit`, plus ``loglik_draws`` (the per-unit
+    marginal log-likelihood is computed on at most this many draws, thinned evenly within
+    each chain; ``attrs["thin"]`` of the log-likelihood group says by how much) and
+    ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
+    ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
+    free over waves) choose the categorical model (model/thresholds.py).
+
+    Returns
+    -------
+    CategoricalFit
+    """
+    for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1),
+                              ("loglik_draws", loglik_draws, 1)):
+        whole_number(value, label, least=low, where="fit")
+    seed_value(seed, where="fit")
+    if sampler not in SAMPLERS:
+        raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
+    from importlib.util import find_spec
+
+    which = "nutpie" if sampler == "nutpie" or (sampler == "auto" and find_spec("nutpie")) else "pymc"
+    cat = categorical_structure(spec, panel)
+    prior_set, gaps = categorical_priors(cat, panel, priors)
+    t0 = time.perf_counter()
+    model = build_categorical_model(cat, panel, prior_set, gaps)
+    build_s = time.perf_counter() - t0
+    keep = list(cat.structure.names) + list(cat.thresholds)
+    cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
+    from bayeslong.threads import single_thread
+
+    with single_thread(), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=RuntimeWarning)
+        warnings.filterwarnings("ignore", category=FutureWarning)
+        t0 = time.perf_counter()
+        if which == "nutpie":
+            import nutpie
+
+            compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+            compile_s = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
+            # correlates strongly with the variances and the first wave's parameters
+            raw = nutpie.sample(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
+                                cores=cores, seed=int(seed), progress_bar=progressbar,
+                                low_rank_modified_mass_matrix=True)
+        else:
+            import pymc as pm
+
+            compile_s = 0.0
+            with model:
+                raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
+                                random_seed=int(seed), progressbar=progressbar, var_names=keep,
+                                compute_convergence_checks=False)
+        sample_s = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        idata = _tidy(raw, cat, panel, keep, int(loglik_draws), int(points), int(replicates), int(seed))
+        loglik_s = time.perf_counter() - t0
+    result = CategoricalFit(spec=spec, panel=panel, structure=cat.structure, seed=int(seed),
+                            idata=idata, prior_set=prior_set, sampler=which, categorical=cat,
+                            timing={"build": build_s, "compile": compile_s, "sample": sample_s,
+                                    "loglik": loglik_s})
+    warn_convergence(result.diagnostics())
+    return result
+
+
+def _tidy(raw, cat: Categorical, panel, keep, loglik_draws, points, replicates, seed):
+    """The parameters, the per-unit marginal log-likelihood, observed and constant data."""
+    import arviz as az
+    import xarray as xr
+
+    post = raw.posterior[keep]
+    post = post.drop_vars([c for c in post.coords if c not in ("chain", "draw")])
+    nc, nd = post.sizes["chain"], post.sizes["draw"]
+    thin = max(1, int(np.ceil(nc * nd / loglik_draws)))
+    sub = post.isel(draw=slice(None, None, thin))
+    theta = np.stack([sub[n].values for n in cat.structure.names], axis=-1)
+    tau = (np.stack([sub[n].values for n in cat.thresholds], axis=-1) if cat.thresholds
+           else np.empty(theta.shape[:2] + (0,)))
+    s = theta.shape[0] * theta.shape[1]
+    ll, err = unit_marginal_loglik(cat, panel, theta.reshape(s, -1), tau.reshape(s, -1),
+                                   points=points, replicates=replicates, seed=seed,
+                                   return_error=True)
+    units = list(panel.units)
+    loglik = xr.Dataset({"y": (("chain", "draw", UNIT), ll.reshape(nc, -1, panel.n_units))},
+                        coords={"chain": sub.chain.values, "draw": sub.draw.values, UNIT: units})
+    loglik.attrs.update({"thin": thin, "marginal": "latents integrated out",
+                         "error_max": float(err.max()), "error_median": float(np.median(err)),
+                         "points": points, "replicates": replicates})
+    obs = xr.Dataset({n: ((UNIT, WAVE), panel.y[:, :, k]) for k, n in enumerate(panel.observed_names)},
+                     coords={UNIT: units, WAVE: list(panel.waves)})
+    const = {n: ((UNIT, WAVE), panel.x[:, :, j]) for j, n in enumerate(panel.time_varying)}
+    const.update({n: ((UNIT,), panel.z[:, j]) for j, n in enumerate(panel.time_invariant)})
+    groups = {"posterior": post, "log_likelihood": loglik, "observed_data": obs}
+    if "sample_stats" in raw.groups():
+        groups["sample_stats"] = raw.sample_stats
+    if const:
+        groups["constant_data"] = xr.Dataset(const, coords={UNIT: units, WAVE: list(panel.waves)})
+    return az.InferenceData(**groups)

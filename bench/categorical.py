@@ -1,0 +1,70 @@
+"""Categorical indicators: sampling speed of the lag and the per-unit marginal likelihood.
+
+Measures, on binary ``alt`` data (residuals equal over waves; N = 200, T = 5, simulated
+with a fixed seed from the parameters below): the wall time of 4 chains x 1000 draws
+(1000 warm-up) with person-level latents after compilation, the effective sample size of
+the lag and its ESS per second (target: ESS(lag) >= 400 within 3 minutes); then the
+per-unit marginal log-likelihood (latents integrated out) for 200 units x 1000 draws
+(target: under 60 s), with its numerical error.
+
+Command:  .venv/bin/python bench/categorical.py [sampler] [N]      (sampler: nutpie | pymc)
+Machine:  2-core Linux VM shared with other jobs; read the timings with the load average
+          printed at the start.
+"""
+
+import os
+import sys
+import time
+import warnings
+
+import numpy as np
+
+warnings.filterwarnings("ignore")
+
+import arviz as az  # noqa: E402
+
+import bayeslong as bl  # noqa: E402
+from bayeslong.infer.marginal import unit_marginal_loglik  # noqa: E402
+
+TRUE = {"level_mean": 0.0, "slope_mean": 0.1, "lag": 0.4, "initial_mean": 0.0,
+        "level_var": 0.5, "slope_var": 0.05, "level_slope_cov": 0.0, "initial_var": 1.0,
+        "initial_level_cov": 0.3, "initial_slope_cov": 0.0, "resid_var": 0.5}
+
+
+def main(sampler="nutpie", n=200):
+    print("load average:", os.getloadavg())
+    spec = bl.model("alt", residuals="equal")
+    panel = bl.Simulation(spec=spec, params=TRUE, n_units=n, n_waves=5, seed=11,
+                          categorical={"y": "binary"}).panel()
+    t0 = time.perf_counter()
+    fit = bl.fit(spec, panel, draws=1000, tune=1000, chains=4, seed=2, sampler=sampler,
+                 progressbar=False, loglik_draws=1000)
+    total = time.perf_counter() - t0
+    ess = float(az.ess(fit.idata.posterior[["lag"]])["lag"])
+    rhat = float(az.rhat(fit.idata.posterior[["lag"]])["lag"])
+    sample_s = fit.timing["sample"]
+    print(f"sampler {fit.sampler}: build {fit.timing['build']:.1f} s, compile "
+          f"{fit.timing['compile']:.1f} s, sampling {sample_s:.1f} s (4 x 1000 after 1000 "
+          f"warm-up), total with log-likelihood {total:.1f} s")
+    print(f"lag: mean {float(fit.idata.posterior['lag'].mean()):.3f} (true {TRUE['lag']}), "
+          f"ESS bulk {ess:.0f}, R-hat {rhat:.3f}, ESS/s (sampling) {ess / sample_s:.1f}; "
+          f"divergences {fit.diagnostics().attrs['divergences']}")
+    attrs = fit.idata.log_likelihood.attrs
+    print(f"per-unit marginal log-likelihood in the fit: {fit.timing['loglik']:.1f} s for "
+          f"{n} units x {fit.idata.log_likelihood.sizes['chain'] * fit.idata.log_likelihood.sizes['draw']}"
+          f" draws (thin {attrs['thin']}); error of a log term: median {attrs['error_median']:.2g}, "
+          f"max {attrs['error_max']:.2g}")
+    k = bl.pareto_k(fit)
+    print(f"Pareto k > 0.7: {int((k > 0.7).sum())} of {n} units; max {k.max():.2f}")
+    # the marginal likelihood alone, 1000 draws
+    theta = fit.theta_draws()[:1000]
+    tau = fit.threshold_draws()[:1000]
+    t0 = time.perf_counter()
+    _, err = unit_marginal_loglik(fit.categorical, panel, theta, tau, return_error=True)
+    print(f"unit_marginal_loglik alone: {time.perf_counter() - t0:.1f} s for {n} units x "
+          f"{len(theta)} draws; error median {np.median(err):.2g}, max {err.max():.2g}")
+    print("load average:", os.getloadavg())
+
+
+if __name__ == "__main__":
+    main(*(sys.argv[1:2] or ["nutpie"]), *([int(sys.argv[2])] if len(sys.argv) > 2 else []))
