@@ -17,8 +17,11 @@ Measured (2-core machine, load average 3-5, numba cache warm; nutpie on the PyMC
 the default sampler then): moderate panels, 50 x 2 fits: 0 fallbacks with either start
 (an earlier one-process version of this script); test-scale panels, 15 x 2 fits (seeds
 0-14, same settings, by hand): 2 fallbacks with the data-based start (seed 0, N = 20,
-both priors; each fell back to PyMC's NUTS at 83-146 s) and 0 with the nudged start. The
-full two-kind run of this script was not completed in that session.
+both priors; each fell back to PyMC's NUTS at 83-146 s) and 0 with the nudged start.
+With the generic kernel (the default sampler since; `--panels 20`, load about 2): moderate
+panels with the data-based start, 18 of 40 fits fell back (seeds 3, 6, 11-17, both
+priors); the same 9 panels from the nudged start, default priors, 2 x 200 draws, by hand:
+0 of 9. The full two-kind run of this script was not completed in that session.
 """
 
 import argparse
