@@ -357,6 +357,27 @@ def _sample_job(spec, panel, kwargs: dict, path: str, future_kwargs: dict | None
     return out
 
 
+def _fit_failed(err: Exception, cand, notes: list, say, strict: bool) -> None:
+    """Record a failed Bayesian fit of one candidate; the others go on (``strict`` raises)."""
+    if isinstance(err, BayeslongError):
+        notes.append(f"Bayesian fit failed: {err}")
+        say(f"{cand.label}: Bayesian fit failed: {err}")
+        return
+    if strict:
+        raise err
+    notes.append(f"Bayesian fit failed with an internal error ({type(err).__name__}: "
+                 f"{err}); rerun with --debug for the traceback and report it")
+    say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
+
+
+def _say_problems(cand, bayes, say) -> None:
+    """Say a fit's convergence problems loudly (the report shows them in red)."""
+    if bayes is not None:
+        problems = tuple(convergence_problems(bayes))
+        if problems:
+            say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+
+
 def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler,
                    strict, job=None, live=None):
     """Identify, ML-fit and (when asked) sample one candidate; return (result, what happened).
@@ -401,19 +422,9 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
             detail = _timing_text(done["timing"])
             say(f"{cand.label}: fitted in {done['seconds']:.0f} s in a worker process"
                 + (f" ({detail})" if detail else ""))
-        except BayeslongError as err:
-            notes.append(f"Bayesian fit failed: {err}")
-            say(f"{cand.label}: Bayesian fit failed: {err}")
         except Exception as err:  # an internal failure of one fit must not lose the others
-            if strict:
-                raise
-            notes.append(f"Bayesian fit failed with an internal error ({type(err).__name__}: "
-                         f"{err}); rerun with --debug for the traceback and report it")
-            say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
-        if bayes is not None:
-            problems = tuple(convergence_problems(bayes))
-            if problems:
-                say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+            _fit_failed(err, cand, notes, say, strict)
+        _say_problems(cand, bayes, say)
     elif fit_module is not None:
         path = fits_dir / f"{stem}.nc"
         if path.exists():
@@ -448,19 +459,9 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                 detail = _timing_text(getattr(bayes, "timing", {}) or {})
                 say(f"{cand.label}: fitted in {time.perf_counter() - t0:.0f} s"
                     + (f" ({detail})" if detail else ""))
-            except BayeslongError as err:
-                notes.append(f"Bayesian fit failed: {err}")
-                say(f"{cand.label}: Bayesian fit failed: {err}")
             except Exception as err:  # an internal failure of one fit must not lose the others
-                if strict:
-                    raise
-                notes.append(f"Bayesian fit failed with an internal error ({type(err).__name__}: "
-                             f"{err}); rerun with --debug for the traceback and report it")
-                say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
-        if bayes is not None:
-            problems = tuple(convergence_problems(bayes))
-            if problems:
-                say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+                _fit_failed(err, cand, notes, say, strict)
+        _say_problems(cand, bayes, say)
     seconds = time.perf_counter() - t0
     if job is not None and bayes is not None:
         seconds = done["seconds"]  # the worker's time; this process only waited for it
