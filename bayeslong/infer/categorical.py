@@ -39,11 +39,11 @@ import numpy as np
 import pandas as pd
 
 from bayeslong.arguments import seed_value, whole_number
-from bayeslong.dims import PARAMETER, UNIT, WAVE
+from bayeslong.dims import PARAMETER, UNIT
 from bayeslong.errors import SpecError
 from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
 from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
-from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, warn_convergence
+from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
 #: Scale s of a categorical variable's latent response for the default priors, in units
@@ -124,7 +124,7 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
     import pymc as pm
     import pytensor.tensor as pt
 
-    from bayeslong.infer.pymc_model import lkj_name
+    from bayeslong.infer.pymc_model import lkj_block
     from bayeslong.model.moments import latent_moments, model_matrices
 
     structure = cat.structure
@@ -148,26 +148,8 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                 sl = slices[p.parameter]
                 cls, kwargs = family_dist(p.family, [hyper[j] for j in range(sl.start, sl.stop)])
                 values[p.rv_name] = cls(p.rv_name, **kwargs)
-        for b in prior_set.blocks:  # as in pymc_model.build_model: LKJ(eta) via a potential
-            diag = [int(i) for i in np.diag(structure.blocks[b].index)]
-            members = [prior_set.priors[i] for i in diag]
-            q = len(members)
-            args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
-                    for j in range(len(members[0].args))]
-            cls, kwargs = family_dist(members[0].family, args)
-            first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
-            eta = hyper[slices[first.parameter].start]
-            packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
-                                       sd_dist=cls.dist(**kwargs, shape=q),
-                                       compute_corr=False, store_in_trace=False)
-            Lb = pm.expand_packed_triangular(q, packed, lower=True)
-            sds = pt.sqrt(pt.sum(Lb**2, axis=1))
-            for r, m in enumerate(members):
-                values[m.rv_name] = sds[r]
-            Lc = Lb / sds[:, None]
-            pm.Potential(f"{lkj_name(prior_set, b)}_eta",
-                         (eta - 1.0) * 2.0 * pt.sum(pt.log(pt.diagonal(Lc))))
-            corr[b] = Lc @ Lc.T
+        for b in prior_set.blocks:  # LKJ(eta) via a potential, as in the continuous model
+            corr[b] = lkj_block(structure, prior_set, b, hyper, slices, values)
         theta = assemble_theta(prior_set, values, corr, pt.stack)
         for i, p in enumerate(prior_set.priors):
             if p.target != "value" or structure.names[i] in cat.pinned:
@@ -359,7 +341,6 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
 
 def _tidy(raw, cat: Categorical, panel, keep, loglik_draws, points, replicates, seed):
     """The parameters, the per-unit marginal log-likelihood, observed and constant data."""
-    import arviz as az
     import xarray as xr
 
     post = raw.posterior[keep]
@@ -380,13 +361,4 @@ def _tidy(raw, cat: Categorical, panel, keep, loglik_draws, points, replicates, 
     loglik.attrs.update({"thin": thin, "marginal": "latents integrated out",
                          "error_max": float(err.max()), "error_median": float(np.median(err)),
                          "points": points, "replicates": replicates})
-    obs = xr.Dataset({n: ((UNIT, WAVE), panel.y[:, :, k]) for k, n in enumerate(panel.observed_names)},
-                     coords={UNIT: units, WAVE: list(panel.waves)})
-    const = {n: ((UNIT, WAVE), panel.x[:, :, j]) for j, n in enumerate(panel.time_varying)}
-    const.update({n: ((UNIT,), panel.z[:, j]) for j, n in enumerate(panel.time_invariant)})
-    groups = {"posterior": post, "log_likelihood": loglik, "observed_data": obs}
-    if "sample_stats" in raw.groups():
-        groups["sample_stats"] = raw.sample_stats
-    if const:
-        groups["constant_data"] = xr.Dataset(const, coords={UNIT: units, WAVE: list(panel.waves)})
-    return az.InferenceData(**groups)
+    return inference_data(raw, post, loglik, panel, panel.observed_names)

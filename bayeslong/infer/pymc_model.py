@@ -95,31 +95,7 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
                 rv = cls(p.rv_name, **kwargs)
             values[p.rv_name] = rv
         for b in prior_set.blocks:
-            diag = [int(i) for i in np.diag(structure.blocks[b].index)]
-            members = [prior_set.priors[i] for i in diag]
-            q = len(members)
-            n_args = len(members[0].args)
-            # the members' SD priors share a family (resolve_priors checks): one vector prior
-            args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
-                    for j in range(n_args)]
-            cls, kwargs = family_dist(members[0].family, args)
-            first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
-            eta = hyper[slices[first.parameter].start]
-            # PyMC's LKJ needs a constant eta: the factor is drawn with eta = 1 (uniform over
-            # correlation matrices) and LKJ(eta)'s density det(C)^(eta - 1) is added as a
-            # potential, which keeps eta a model input (the normalising constant depends on
-            # eta only). The SDs are the row norms of the Cholesky factor of the covariance.
-            packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
-                                       sd_dist=cls.dist(**kwargs, shape=q),
-                                       compute_corr=False, store_in_trace=False)
-            L = pm.expand_packed_triangular(q, packed, lower=True)
-            sds = pt.sqrt(pt.sum(L**2, axis=1))
-            for r, m in enumerate(members):
-                values[m.rv_name] = sds[r]
-            Lc = L / sds[:, None]
-            log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(Lc)))
-            pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
-            corr[b] = Lc @ Lc.T
+            corr[b] = lkj_block(structure, prior_set, b, hyper, slices, values)
         theta = assemble_theta(prior_set, values, corr, pt.stack)
         for i, p in enumerate(prior_set.priors):
             if p.target != "value":  # variances and covariances are not themselves RVs
@@ -128,3 +104,35 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
         pm.Potential("loglik", pattern_loglik(c, D, Sigma, data["counts"], data["cross"],
                                               data["masks"]))
     return model
+
+
+def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, values: dict):
+    """The random variables of covariance block ``b``: its SDs (put into ``values`` by name)
+    and its correlation matrix (returned), under LKJ(eta) and the members' SD priors.
+
+    The members' SD priors share a family (resolve_priors checks): one vector prior. PyMC's
+    LKJ needs a constant eta: the factor is drawn with eta = 1 (uniform over correlation
+    matrices) and LKJ(eta)'s density det(C)^(eta - 1) is added as a potential, which keeps
+    eta a model input (the normalising constant depends on eta only). The SDs are the row
+    norms of the Cholesky factor of the covariance.
+    """
+    diag = [int(i) for i in np.diag(structure.blocks[b].index)]
+    members = [prior_set.priors[i] for i in diag]
+    q = len(members)
+    args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
+            for j in range(len(members[0].args))]
+    cls, kwargs = family_dist(members[0].family, args)
+    first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
+    eta = hyper[slices[first.parameter].start]
+    packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
+                               sd_dist=cls.dist(**kwargs, shape=q),
+                               compute_corr=False, store_in_trace=False)
+    L = pm.expand_packed_triangular(q, packed, lower=True)
+    sds = pt.sqrt(pt.sum(L**2, axis=1))
+    for r, m in enumerate(members):
+        values[m.rv_name] = sds[r]
+    Lc = L / sds[:, None]
+    log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(Lc)))
+    pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
+    return Lc @ Lc.T
+

@@ -652,7 +652,6 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
 
 def _tidy(raw, structure: Structure, panel, prior_set) -> object:
     """Keep the parameters, add log_likelihood, observed_data and constant_data."""
-    import arviz as az
     import xarray as xr
 
     post = raw.posterior[list(structure.names)]
@@ -664,13 +663,24 @@ def _tidy(raw, structure: Structure, panel, prior_set) -> object:
     units = list(panel.units)
     loglik = xr.Dataset({"y": (("chain", "draw", UNIT), ll)},
                         coords={"chain": post.chain.values, "draw": post.draw.values, UNIT: units})
-    obs = xr.Dataset({name: ((UNIT, WAVE), panel.y[:, :, k]) for k, name in enumerate(panel.outcomes)},
-                     coords={UNIT: units, WAVE: list(panel.waves)})
+    return inference_data(raw, post, loglik, panel, panel.outcomes)
+
+
+def inference_data(raw, post, loglik, panel, observed_names):
+    """The fit's InferenceData: posterior, per-unit log-likelihood, the sampler's statistics,
+    the observed variables (``observed_names``, in the order of ``panel.y``'s last axis) and
+    the covariates, all on the dims unit and wave."""
+    import arviz as az
+    import xarray as xr
+
+    units, waves = list(panel.units), list(panel.waves)
+    obs = xr.Dataset({name: ((UNIT, WAVE), panel.y[:, :, k]) for k, name in enumerate(observed_names)},
+                     coords={UNIT: units, WAVE: waves})
     const = {name: ((UNIT, WAVE), panel.x[:, :, j]) for j, name in enumerate(panel.time_varying)}
     const.update({name: ((UNIT,), panel.z[:, j]) for j, name in enumerate(panel.time_invariant)})
     groups = {"posterior": post, "log_likelihood": loglik, "observed_data": obs}
     if "sample_stats" in raw.groups():
         groups["sample_stats"] = raw.sample_stats
     if const:
-        groups["constant_data"] = xr.Dataset(const, coords={UNIT: units, WAVE: list(panel.waves)})
+        groups["constant_data"] = xr.Dataset(const, coords={UNIT: units, WAVE: waves})
     return az.InferenceData(**groups)
