@@ -35,6 +35,7 @@ from numba.extending import intrinsic
 LOG_2PI = float(np.log(2.0 * np.pi))
 _HALF_LOG_2PI = 0.5 * LOG_2PI
 _HALF_LOG_2_OVER_PI = 0.5 * float(np.log(2.0 / np.pi))
+_LOG2 = float(np.log(2.0))
 
 # NumPy's error model: a division by zero or an overflow gives inf or nan (then -inf log
 # density), never an exception, which a C callback could not pass on to the sampler
@@ -46,12 +47,13 @@ H_IDX = 9        # 7 offsets of the matrices' index arrays in ints
 H_FIX = 16       # 7 offsets of the matrices' fixed parts in floats
 H_SCALAR = 23    # offset of the scalar table in ints (5 per row)
 H_SCALAR_F = 24  # offset of the scalar hyperparameters in floats (3 per row)
-H_BLOCK = 25     # offset of the block table in ints (4 per row)
+H_BLOCK = 25     # offset of the block table in ints (BLOCK_ROW per row)
 H_BLOCK_F = 26   # offset of the block floats (per block: eta, norm, 3 per member)
 H_COUNTS = 27    # offsets in floats of counts (P), cross (P U U), masks (P Y)
 H_CROSS = 28
 H_MASKS = 29
 HEADER_SIZE = 30
+BLOCK_ROW = 5    # x offset, q, SD family, member table offset, SD transform
 
 # family codes (generic_logp.FAMILY_CODES maps the names of priors.FAMILIES to these)
 NORMAL, STUDENT_T, UNIFORM, HALFNORMAL, HALFSTUDENT_T, EXPONENTIAL, LOGNORMAL, GAMMA = range(8)
@@ -240,24 +242,58 @@ def natural(x, ints, floats):
         target, tr = ints[so + 5 * j + 3], ints[so + 5 * j + 4]
         v = _scalar_value(tr, x[xp], floats[sf + 3 * j], floats[sf + 3 * j + 1])[0]
         theta[k] = v * v if target == 1 else v
-    bo = ints[H_BLOCK]
+    bo, fpos = ints[H_BLOCK], ints[H_BLOCK_F]
     for b in range(ints[H_NBLOCK]):
-        L = _block_factor(x, ints[bo + 4 * b], ints[bo + 4 * b + 1])
-        S = L @ L.T
-        _block_put(ints, ints[bo + 4 * b + 3], ints[bo + 4 * b + 1], S, theta)
+        off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
+        sd, L = _block_parts(x, off, q, ints[bo + BLOCK_ROW * b + 4], floats, fpos)
+        _block_put(ints, ints[bo + BLOCK_ROW * b + 3], q, _block_cov(sd, L), theta)
+        fpos += 2 + 3 * q
     return theta
 
 
 @_njit
-def _block_factor(x, off, q):
-    # the packed lower Cholesky factor (row-major, diagonal on the log scale) as a matrix
-    L = np.zeros((q, q))
-    pos = off
+def _log1m_tanh2(y):
+    # log(1 - tanh(y)^2) = 2 (log 2 - |y| - log1p(exp(-2 |y|))), exact for large |y|
+    a = abs(y)
+    return 2.0 * (_LOG2 - a - math.log1p(math.exp(-2.0 * a)))
+
+
+@_njit
+def _block_parts(x, off, q, tr, floats, fpos):
+    """The SDs and the Cholesky factor L of the correlation matrix of a covariance block.
+
+    x[off:off + q] are the SDs on their transform's scale; x[off + q:] the canonical
+    partial correlations z = tanh(y), row by row of the strict lower triangle:
+    L_rc = z_rc sqrt(1 - sum_{k<c} L_rk^2), L_rr = sqrt(1 - sum_{k<r} L_rk^2)
+    (Lewandowski, Kurowicka & Joe 2009; docs/engine.md).
+    """
+    sd = np.empty(q)
     for r in range(q):
-        for c in range(r + 1):
-            L[r, c] = math.exp(x[pos]) if r == c else x[pos]
+        h = fpos + 2 + 3 * r
+        sd[r] = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[0]
+    L = np.zeros((q, q))
+    L[0, 0] = 1.0
+    pos = off + q
+    for r in range(1, q):
+        rest = 1.0
+        for c in range(r):
+            z = math.tanh(x[pos])
+            L[r, c] = z * math.sqrt(rest)
+            rest *= 1.0 - z * z
             pos += 1
-    return L
+        L[r, r] = math.sqrt(rest)
+    return sd, L
+
+
+@_njit
+def _block_cov(sd, L):
+    # diag(sd) L L' diag(sd)
+    C = L @ L.T
+    q = len(sd)
+    for r in range(q):
+        for c in range(q):
+            C[r, c] *= sd[r] * sd[c]
+    return C
 
 
 @_njit
@@ -304,39 +340,33 @@ def logp_grad(x, ints, floats):
         grad[xp] += dprior * dvdx + dlogjac
         dv[j], vals[j] = dvdx, v
         theta[k] = v * v if target == 1 else v
-    # --- LKJ covariance blocks -------------------------------------------------------------
+    # --- covariance blocks: SDs times an LKJ correlation matrix ---------------------------
     bo, bf = ints[H_BLOCK], ints[H_BLOCK_F]
     nb = ints[H_NBLOCK]
     fpos = bf
     for b in range(nb):
-        off, q = ints[bo + 4 * b], ints[bo + 4 * b + 1]
-        fam, mo = ints[bo + 4 * b + 2], ints[bo + 4 * b + 3]
+        off, q, fam = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1], ints[bo + BLOCK_ROW * b + 2]
+        mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
         eta, norm = floats[fpos], floats[fpos + 1]
-        L = _block_factor(x, off, q)
-        _block_put(ints, mo, q, L @ L.T, theta)
+        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        _block_put(ints, mo, q, _block_cov(sd, L), theta)
         lp += norm
-        pos = off
-        for r in range(q):
-            var = 0.0
-            for c in range(r + 1):
-                var += L[r, c] * L[r, c]
-            sd = math.sqrt(var)
+        for r in range(q):  # each member's SD prior, on its transform's scale
             h = fpos + 2 + 3 * r
-            a0, a1, a2 = floats[h], floats[h + 1], floats[h + 2]
-            prior, dprior = family_logp(fam, sd, a0, a1, a2)
-            # PyMC's LKJCholeskyCov with eta = 1 and the potential (eta - 1) log det C:
-            # kappa log(L_rr / sd_r) - r log sd_r, plus log L_rr from the log transform
-            kappa = q - r + 2.0 * eta - 2.0
-            lp += prior + (kappa + 1.0) * math.log(L[r, r]) - (kappa + r) * math.log(sd)
-            coef = dprior / sd - (kappa + r) / var
-            for c in range(r + 1):
-                g = coef * L[r, c]
-                if c == r:
-                    g += (kappa + 1.0) / L[r, r]
-                    grad[pos + c] += g * L[r, r]  # diagonal on the log scale
-                else:
-                    grad[pos + c] += g
-            pos += r + 1
+            v, dvdx, logjac, dlogjac = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])
+            prior, dprior = family_logp(fam, v, floats[h], floats[h + 1], floats[h + 2])
+            lp += prior + logjac
+            grad[off + r] += dprior * dvdx + dlogjac
+        # LKJ(eta) on the correlation matrix with the Jacobian of the canonical partial
+        # correlations z = tanh(y): sum over z_rc of (eta + (q - c - 2) / 2) log(1 - z_rc^2),
+        # whose derivative in y_rc is -2 (eta + (q - c - 2) / 2) z_rc (docs/engine.md)
+        pos = off + q
+        for r in range(1, q):
+            for c in range(r):
+                coef = eta + 0.5 * (q - c - 2.0)
+                lp += coef * _log1m_tanh2(x[pos])
+                grad[pos] += -2.0 * coef * math.tanh(x[pos])
+                pos += 1
         fpos += 2 + 3 * q
     if not np.isfinite(lp):
         return -np.inf, np.zeros(n_x)
@@ -397,21 +427,44 @@ def logp_grad(x, ints, floats):
         xp, k, target = ints[so + 5 * j], ints[so + 5 * j + 1], ints[so + 5 * j + 3]
         g = gtheta[k] * (2.0 * vals[j] if target == 1 else 1.0)
         grad[xp] += g * dv[j]
+    fpos = bf
     for b in range(nb):
-        off, q, mo = ints[bo + 4 * b], ints[bo + 4 * b + 1], ints[bo + 4 * b + 3]
-        L = _block_factor(x, off, q)
-        # theta_block = L L'; a covariance fills two entries, so half its gradient on each
+        off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
+        mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
+        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        # Sigma = M M' with M = diag(sd) L; a covariance fills two entries, so half its
+        # gradient on each
         Gs = np.empty((q, q))
         for r in range(q):
             for cc in range(q):
                 g = gtheta[ints[mo + q + r * q + cc]]
                 Gs[r, cc] = g if r == cc else 0.5 * g
-        gL = 2.0 * (Gs @ L)
-        pos = off
+        M = np.empty((q, q))
         for r in range(q):
+            for cc in range(q):
+                M[r, cc] = sd[r] * L[r, cc]
+        gM = 2.0 * (Gs @ M)
+        for r in range(q):  # SDs, through their transform
+            h = fpos + 2 + 3 * r
+            dvdx = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[1]
+            gsd = 0.0
             for cc in range(r + 1):
-                grad[pos + cc] += gL[r, cc] * (L[r, r] if r == cc else 1.0)
-            pos += r + 1
+                gsd += gM[r, cc] * L[r, cc]
+            grad[off + r] += gsd * dvdx
+        # row r of L: L_rc = z_rc w_c (c < r), L_rr = w_r, w_c = prod_{k<c} sqrt(1 - z_rk^2);
+        # d/dy_rc = gL_rc w_c (1 - z_rc^2) - z_rc sum_{k=c+1..r} gL_rk L_rk
+        pos = off + q
+        for r in range(1, q):
+            w = 1.0
+            for c in range(r):
+                z = math.tanh(x[pos])
+                tail = 0.0
+                for k in range(c + 1, r + 1):
+                    tail += sd[r] * gM[r, k] * L[r, k]
+                grad[pos] += sd[r] * gM[r, c] * w * (1.0 - z * z) - z * tail
+                w *= math.sqrt(1.0 - z * z)
+                pos += 1
+        fpos += 2 + 3 * q
     for i in range(n_x):
         if not np.isfinite(grad[i]):
             return -np.inf, np.zeros(n_x)

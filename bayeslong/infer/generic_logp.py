@@ -12,8 +12,8 @@ The unconstrained vector has the layout of the PyMC model of
 :func:`bayeslong.infer.pymc_model.build_model`: first one entry per scalar random variable
 (parameters with a ``value`` prior, and the SDs of variances outside LKJ blocks, in prior
 order; PyMC's default transform for the family's support: none, log, or log-odds for
-uniform), then each LKJ block's packed lower Cholesky factor with its diagonal on the log
-scale. The log density is the PyMC model's term for term, so the posterior is the same.
+uniform), then per covariance block its SDs and its canonical partial correlations (atanh
+scale). The log density is the PyMC model's term for term, so the posterior is the same.
 A prior given as a PyMC factory (a callable) has no array form: :func:`supported` is False
 and :func:`bayeslong.infer.sampling.fit` takes the PyMC path.
 """
@@ -27,7 +27,7 @@ import numpy as np
 
 from bayeslong.errors import SpecError
 from bayeslong.infer.likelihood import pattern_arrays
-from bayeslong.infer.priors import PriorSet, lkj_name
+from bayeslong.infer.priors import CPC_TRANSFORM, PriorSet, lkj_name, lkj_sd_name
 from bayeslong.model.structure import Structure
 
 #: Family name -> code of :func:`bayeslong.infer.generic_kernel.family_logp`.
@@ -36,6 +36,7 @@ FAMILY_CODES = {"normal": 0, "student_t": 1, "uniform": 2, "halfnormal": 3, "hal
 _IDENTITY, _LOG, _INTERVAL = range(3)
 _MATRICES = ("a", "B", "G", "Psi", "nu", "Lam", "Theta")
 HEADER_SIZE = 30  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
+BLOCK_ROW = 5     # generic_kernel.BLOCK_ROW
 
 
 def _transform(family: str) -> int:
@@ -43,6 +44,32 @@ def _transform(family: str) -> int:
     if family in ("normal", "student_t"):
         return _IDENTITY
     return _INTERVAL if family == "uniform" else _LOG
+
+
+def block_to_x(S: np.ndarray, tr: int, lo=None, hi=None) -> np.ndarray:
+    """The unconstrained values of a covariance block ``S``: its SDs on the transform ``tr``'s
+    scale (``lo``, ``hi``: the bounds of a uniform prior per member), then the canonical
+    partial correlations' ``atanh`` (docs/engine.md); ``S`` is made PD if it is not."""
+    w, v = np.linalg.eigh(S)
+    S = (v * np.maximum(w, 1e-8 * max(w.max(), 1e-12))) @ v.T
+    sd = np.sqrt(np.diag(S))
+    L = np.linalg.cholesky(S / np.outer(sd, sd))
+    q = len(sd)
+    if tr == _LOG:
+        head = np.log(sd)
+    elif tr == _INTERVAL:
+        u = np.clip((sd - lo) / (hi - lo), 1e-9, 1 - 1e-9)
+        head = np.log(u / (1 - u))
+    else:
+        head = sd
+    cpc = []
+    for r in range(1, q):
+        rest = 1.0
+        for c in range(r):
+            z = np.clip(L[r, c] / np.sqrt(rest), -1 + 1e-12, 1 - 1e-12)
+            cpc.append(np.arctanh(z))
+            rest -= L[r, c] ** 2
+    return np.concatenate([head, cpc])
 
 
 def supported(prior_set: PriorSet) -> bool:
@@ -53,7 +80,7 @@ def supported(prior_set: PriorSet) -> bool:
 def lkj_norm(n: int) -> float:
     """log normalising constant of LKJ(eta = 1) over n x n correlation matrices.
 
-    PyMC's ``LKJCholeskyCov`` (the model draws the factor with eta = 1 and adds
+    PyMC's ``LKJCorr`` (the model draws the matrix with eta = 1 and adds
     (eta - 1) log det C as a potential) adds this constant; the formula is the eta = 1
     case of Lewandowski, Kurowicka & Joe (2009), as PyMC writes it. PyMC's graph types
     some of its number constants as single precision, so some terms are rounded to
@@ -128,17 +155,11 @@ class Layout:
             x[xp] = v
         bo = self.ints[25]
         for b in range(self.ints[7]):
-            off, q, _, mo = self.ints[bo + 4 * b: bo + 4 * b + 4]
+            off, q, _, mo, tr = self.ints[bo + BLOCK_ROW * b: bo + BLOCK_ROW * (b + 1)]
             idx = self.ints[mo + q: mo + q + q * q].reshape(q, q)
-            S = theta[idx]
-            w, v = np.linalg.eigh(S)
-            S = (v * np.maximum(w, 1e-8 * max(w.max(), 1e-12))) @ v.T
-            L = np.linalg.cholesky(S)
-            rows, cols = np.tril_indices(q)
-            packed = L[rows, cols]
-            diag = rows == cols
-            packed[diag] = np.log(packed[diag])
-            x[off: off + len(packed)] = packed
+            h = self.ints[26] + sum(2 + 3 * self.ints[bo + BLOCK_ROW * k + 1] for k in range(b))
+            lo, hi = self.floats[h + 2: h + 2 + 3 * q: 3], self.floats[h + 3: h + 3 + 3 * q: 3]
+            x[off: off + q + q * (q - 1) // 2] = block_to_x(theta[idx], tr, lo, hi)
         return x
 
 
@@ -177,21 +198,24 @@ def _build_layout(structure: Structure, prior_set: PriorSet) -> Layout:
     ints[24] = len(floats)
     floats.extend(hyper)
     table, members, bfloats = [], [], []
+    suffix = {_IDENTITY: "", _LOG: "_log__", _INTERVAL: "_interval__"}
     for b in prior_set.blocks:
         idx = structure.blocks[b].index
         q = len(idx)
         diag = [int(i) for i in np.diag(idx)]
         family = prior_set.priors[diag[0]].family
-        table.append([n_x, q, FAMILY_CODES[family], -1])
+        tr = _transform(family)
+        table.append([n_x, q, FAMILY_CODES[family], -1, tr])
         members.append(diag + [int(v) for v in idx.ravel()])
         bfloats.extend([prior_set.lkj_eta(b), lkj_norm(q)])
         for i in diag:
             bfloats.extend(list(prior_set.priors[i].args) + [0.0] * (3 - len(prior_set.priors[i].args)))
-        names.append((lkj_name(prior_set, b) + "_cholesky-cov-packed__", q * (q + 1) // 2))
-        n_x += q * (q + 1) // 2
+        names.append((lkj_sd_name(prior_set, b) + suffix[tr], q))
+        names.append((lkj_name(prior_set, b) + "_" + CPC_TRANSFORM + "__", q * (q - 1) // 2))
+        n_x += q + q * (q - 1) // 2
     ints[7] = len(table)
     ints[25] = len(ints)
-    member_start = len(ints) + 4 * len(table)
+    member_start = len(ints) + BLOCK_ROW * len(table)
     for row, mem in zip(table, members):
         row[3] = member_start
         member_start += len(mem)

@@ -167,6 +167,16 @@ class PriorSet:
                 if p.source == "user" and p.family != "callable"}
 
 
+#: Name of the transform of a block's correlation matrix to its canonical partial
+#: correlations (``atanh`` scale): the sampler's value variable is ``<lkj name>_cpc__``.
+CPC_TRANSFORM = "cpc"
+
+
+def lkj_sd_name(prior_set: PriorSet, b: int) -> str:
+    """Name of the vector of SDs of covariance block ``b`` (one entry per member)."""
+    return lkj_name(prior_set, b) + "__sd"
+
+
 def lkj_name(prior_set: PriorSet, b: int) -> str:
     """Name of the LKJ variable of covariance block ``b`` (the samplers' layouts share it)."""
     diag = np.diag(prior_set.structure.blocks[b].index)

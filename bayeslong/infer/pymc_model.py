@@ -19,12 +19,21 @@ from __future__ import annotations
 import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
+from pymc.logprob.transforms import Transform
 
 from bayeslong.dims import PARAMETER
 from bayeslong.errors import SpecError
 from bayeslong.infer.likelihood import pattern_arrays
 from bayeslong.infer.loglik_op import pattern_loglik
-from bayeslong.infer.priors import PriorSet, assemble_theta, family_dist, lkj_name, resolve_priors
+from bayeslong.infer.priors import (
+    CPC_TRANSFORM,
+    PriorSet,
+    assemble_theta,
+    family_dist,
+    lkj_name,
+    lkj_sd_name,
+    resolve_priors,
+)
 from bayeslong.model.moments import implied_moments
 from bayeslong.model.structure import structure_for
 
@@ -106,15 +115,82 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
     return model
 
 
+class PartialCorrelations(Transform):
+    """A q x q correlation matrix (PyMC's LKJCorr value: the strict upper triangle, row by
+    row) from its canonical partial correlations z = tanh(y), y unconstrained.
+
+    Row r of the Cholesky factor L of the correlation matrix: L_rc = z_rc w_c for c < r and
+    L_rr = w_r, with w_c = prod_{k<c} sqrt(1 - z_rk^2) (Lewandowski, Kurowicka & Joe 2009).
+    log |d corr / d y| = sum_rc (1 + (q - c - 2) / 2) log(1 - z_rc^2): the Jacobian of the
+    canonical partial correlations to the correlation matrix (Joe 2006, J. Multivariate
+    Analysis 97(10), as the inverse of its eq. 11) and of tanh. The generic kernel writes
+    the same density (docs/engine.md); the tests hold the Jacobian to finite differences.
+    """
+
+    name = CPC_TRANSFORM
+    ndim_supp = 1
+
+    def __init__(self, q: int):
+        self.q = q
+
+    def _factor(self, y):
+        q, pos = self.q, 0
+        rows = [[pt.ones(())] + [pt.zeros(())] * (q - 1)]
+        for r in range(1, q):
+            row, rest = [], pt.ones(())
+            for _ in range(r):
+                z = pt.tanh(y[pos])
+                row.append(z * pt.sqrt(rest))
+                rest = rest * (1.0 - z * z)
+                pos += 1
+            rows.append(row + [pt.sqrt(rest)] + [pt.zeros(())] * (q - r - 1))
+        return pt.stack([pt.stack(row) for row in rows])
+
+    def backward(self, value, *inputs):
+        L = self._factor(value)
+        C = L @ L.T
+        return C[np.triu_indices(self.q, 1)]
+
+    def forward(self, value, *inputs):
+        q = self.q
+        C = LKJCorr_matrix(value, q)
+        L = pt.linalg.cholesky(C)
+        out = []
+        for r in range(1, q):
+            rest = pt.ones(())
+            for c in range(r):
+                out.append(pt.arctanh(L[r, c] / pt.sqrt(rest)))
+                rest = rest - L[r, c] ** 2
+        return pt.stack(out)
+
+    def log_jac_det(self, value, *inputs):
+        q, pos, total = self.q, 0, pt.zeros(())
+        for r in range(1, q):
+            for c in range(r):
+                a = pt.abs(value[pos])
+                total = total + (1.0 + 0.5 * (q - c - 2.0)) * 2.0 * (
+                    np.log(2.0) - a - pt.log1p(pt.exp(-2.0 * a)))
+                pos += 1
+        return total
+
+
+def LKJCorr_matrix(vec, q: int):
+    """The q x q correlation matrix of its strict upper triangle ``vec`` (row by row)."""
+    return pm.LKJCorr.vec_to_corr_mat(vec, q)
+
+
 def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, values: dict):
     """The random variables of covariance block ``b``: its SDs (put into ``values`` by name)
-    and its correlation matrix (returned), under LKJ(eta) and the members' SD priors.
+    and its correlation matrix (returned), under the members' SD priors and LKJ(eta).
 
-    The members' SD priors share a family (resolve_priors checks): one vector prior. PyMC's
-    LKJ needs a constant eta: the factor is drawn with eta = 1 (uniform over correlation
-    matrices) and LKJ(eta)'s density det(C)^(eta - 1) is added as a potential, which keeps
-    eta a model input (the normalising constant depends on eta only). The SDs are the row
-    norms of the Cholesky factor of the covariance.
+    The members' SD priors share a family (resolve_priors checks): one vector of SDs, on
+    the family's default transform, apart from the correlation matrix, which is sampled as
+    its canonical partial correlations (:class:`PartialCorrelations`). SDs and
+    correlations on separate axes keep the posterior free of the funnel a covariance-scale
+    Cholesky factor has when a variance nears zero (docs/priors.md). PyMC's LKJ needs a
+    constant eta: the matrix is drawn with eta = 1 (uniform over correlation matrices) and
+    LKJ(eta)'s density det(C)^(eta - 1) is added as a potential, which keeps eta a model
+    input (the normalising constant depends on eta only).
     """
     diag = [int(i) for i in np.diag(structure.blocks[b].index)]
     members = [prior_set.priors[i] for i in diag]
@@ -122,17 +198,14 @@ def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, value
     args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
             for j in range(len(members[0].args))]
     cls, kwargs = family_dist(members[0].family, args)
-    first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
-    eta = hyper[slices[first.parameter].start]
-    packed = pm.LKJCholeskyCov(lkj_name(prior_set, b), eta=1.0, n=q,
-                               sd_dist=cls.dist(**kwargs, shape=q),
-                               compute_corr=False, store_in_trace=False)
-    L = pm.expand_packed_triangular(q, packed, lower=True)
-    sds = pt.sqrt(pt.sum(L**2, axis=1))
+    sds = cls(lkj_sd_name(prior_set, b), **kwargs, shape=q)
     for r, m in enumerate(members):
         values[m.rv_name] = sds[r]
-    Lc = L / sds[:, None]
-    log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(Lc)))
+    first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
+    eta = hyper[slices[first.parameter].start]
+    vec = pm.LKJCorr(lkj_name(prior_set, b), n=q, eta=1.0,
+                     default_transform=PartialCorrelations(q))
+    C = LKJCorr_matrix(vec, q)
+    log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(pt.linalg.cholesky(C))))
     pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
-    return Lc @ Lc.T
-
+    return C

@@ -432,10 +432,9 @@ _COMPILED: dict = {}
 def _start_point(model, structure, panel, prior_set, seed: int = 0) -> dict:
     """Start values on the model's variables from :func:`bayeslong.model.start.sampler_start`.
 
-    Variances start at the start values, correlations at 0 (the packed Cholesky factor of
-    a block is then diagonal with the SDs).
+    Variances start at the start values, correlations at 0.
     """
-    from bayeslong.infer.pymc_model import lkj_name
+    from bayeslong.infer.priors import lkj_name, lkj_sd_name
     from bayeslong.model.start import sampler_start
 
     theta = sampler_start(structure, panel, seed)
@@ -446,9 +445,8 @@ def _start_point(model, structure, panel, prior_set, seed: int = 0) -> dict:
         diag = [int(i) for i in np.diag(structure.blocks[b].index)]
         in_lkj.update(diag)
         q = len(diag)
-        packed = np.zeros(q * (q + 1) // 2)
-        packed[[r * (r + 3) // 2 for r in range(q)]] = sd[diag]  # row-major packed lower
-        point[lkj_name(prior_set, b)] = packed
+        point[lkj_sd_name(prior_set, b)] = sd[diag]
+        point[lkj_name(prior_set, b)] = np.zeros(q * (q - 1) // 2)
     for i, p in enumerate(prior_set.priors):
         if p.factory is not None or i in in_lkj:
             continue

@@ -72,19 +72,14 @@ def test_posterior_names_and_data(sleep_panel):
     assert {"counts", "cross", "masks", "prior_hyper"} <= set(model.named_vars)
 
 
-def _lkj_point(sd1, sd2, r):
-    # packed lower Cholesky factor (L11, L21, L22) of [[sd1^2, r sd1 sd2], [., sd2^2]]
-    return np.array([sd1, sd2 * r, sd2 * np.sqrt(1 - r**2)])
-
-
 @pytest.mark.parametrize("eta", [2.0, 4.0])
 def test_lkj_block_density_closed_form(sleep_panel, eta):
     # With the data switched off (counts and cross-products 0, so the likelihood is 0)
-    # the model's log density is the prior. For a 2 x 2 block with half-normal SD priors
-    # and LKJ(eta) correlation, the density of the packed Cholesky factor
-    # L = (sd1, sd2 r, sd2 sqrt(1 - r^2)) is, worked by hand (Jacobian of (sd1, sd2, r) -> L
-    # is sd2 / sqrt(1 - r^2), and LKJ(eta) for 2 x 2 is c (1 - r^2)^(eta - 1)):
-    #   log HN(sd1) + log HN(sd2) + (eta - 1) log(1 - r^2) + 1/2 log(1 - r^2) - log sd2 + c.
+    # the model's log density is the prior. A 2 x 2 block is sampled as (log sd1, log sd2,
+    # y) with the correlation r = tanh(y). Worked by hand: half-normal SD priors with the
+    # log transform's Jacobian sd, and LKJ(eta) for 2 x 2, c (1 - r^2)^(eta - 1)
+    # (Lewandowski, Kurowicka & Joe 2009), with tanh's Jacobian dr/dy = 1 - r^2:
+    #   log HN(sd1) + log sd1 + log HN(sd2) + log sd2 + eta log(1 - r^2) + c.
     # Differences between two points remove c.
     model = build_model(bl.model("linear-growth"), sleep_panel,
                         {"level_slope_cov": ("lkj", 3.0)})
@@ -98,20 +93,18 @@ def test_lkj_block_density_closed_form(sleep_panel, eta):
                         {"level_slope_cov": ("lkj", eta)})
     with model:
         pm.set_data({"prior_hyper": ps.hyper})  # a new prior value, same compiled graph
-    f = model.compile_logp(vars=[model[lkj]] + list(model.potentials)[:1], jacobian=False)
+    f = model.compile_logp(vars=[model[lkj], model[lkj + "__sd"]] + list(model.potentials)[:1])
 
     def hand(sd1, sd2, r):
-        return (stats.halfnorm(scale=s).logpdf(sd1) + stats.halfnorm(scale=s).logpdf(sd2)
-                + (eta - 1) * np.log(1 - r**2) + 0.5 * np.log(1 - r**2) - np.log(sd2))
+        return (stats.halfnorm(scale=s).logpdf(sd1) + np.log(sd1)
+                + stats.halfnorm(scale=s).logpdf(sd2) + np.log(sd2) + eta * np.log(1 - r**2))
 
     base = {v.name: np.asarray(model.initial_point()[v.name]) for v in model.value_vars}
-    vv = model.rvs_to_values[model[lkj]].name
 
     def at(sd1, sd2, r):
         point = dict(base)
-        packed = _lkj_point(sd1, sd2, r)
-        packed[[0, 2]] = np.log(packed[[0, 2]])  # PyMC's packed-Cholesky transform: log diagonal
-        point[vv] = packed
+        point[lkj + "__sd_log__"] = np.log([sd1, sd2])
+        point[lkj + "_cpc__"] = np.array([np.arctanh(r)])
         return f(point)
 
     got = at(20.0, 5.0, 0.6) - at(30.0, 8.0, -0.2)
@@ -126,3 +119,34 @@ def test_factory_prior_and_wrong_name(sleep_panel):
     with pytest.raises(SpecError, match="must use the name it is given, 'slope_mean'"):
         build_model(bl.model("linear-growth"), sleep_panel,
                     {"slope_mean": lambda name: pm.Normal("other", 10.0, 5.0)})
+
+
+@pytest.mark.parametrize("q", [3, 4])
+def test_partial_correlation_jacobian_by_finite_differences(q):
+    # The transform's log-Jacobian against a central-difference Jacobian of y -> the
+    # correlations (a map of q(q-1)/2 numbers to as many), and the round trip; the LKJ prior
+    # in the sampler's coordinates is LKJ(C) times this Jacobian, so an error here would
+    # bias every block's correlations.
+    import pytensor
+    import pytensor.tensor as pt
+
+    from bayeslong.infer.pymc_model import PartialCorrelations
+
+    tr = PartialCorrelations(q)
+    y = pt.dvector("y")
+    back = pytensor.function([y], tr.backward(y))
+    logjac = pytensor.function([y], tr.log_jac_det(y))
+    fwd = pytensor.function([y], tr.forward(y))
+    rng = np.random.default_rng(q)
+    m = q * (q - 1) // 2
+    for _ in range(3):
+        y0 = rng.normal(scale=0.8, size=m)
+        h = 1e-6
+        J = np.column_stack([(back(y0 + h * e) - back(y0 - h * e)) / (2 * h) for e in np.eye(m)])
+        # tolerance: central differences with h = 1e-6 on O(1) functions, about 1e-9
+        assert logjac(y0) == pytest.approx(np.log(abs(np.linalg.det(J))), abs=1e-6)
+        np.testing.assert_allclose(fwd(back(y0)), y0, atol=1e-9)
+        corr = np.eye(q)
+        corr[np.triu_indices(q, 1)] = back(y0)
+        corr = corr + np.triu(corr, 1).T
+        assert np.all(np.linalg.eigvalsh(corr) > 0)  # every y gives a correlation matrix
