@@ -153,7 +153,7 @@ class PartialCorrelations(Transform):
 
     def forward(self, value, *inputs):
         q = self.q
-        C = LKJCorr_matrix(value, q)
+        C = corr_matrix(value, q)
         L = pt.linalg.cholesky(C)
         out = []
         for r in range(1, q):
@@ -174,9 +174,47 @@ class PartialCorrelations(Transform):
         return total
 
 
-def LKJCorr_matrix(vec, q: int):
+def corr_matrix(vec, q: int):
     """The q x q correlation matrix of its strict upper triangle ``vec`` (row by row)."""
     return pm.LKJCorr.vec_to_corr_mat(vec, q)
+
+
+def _uniform_corr_draw(q: int, rng, size=None) -> np.ndarray:
+    # LKJ(1) draws by the canonical partial correlations, z_rc ~ 2 Beta(b_c, b_c) - 1 with
+    # b_c = (q - c) / 2 (Lewandowski, Kurowicka & Joe 2009): the strict upper triangle
+    shape = () if size is None else tuple(np.atleast_1d(size))
+    out = np.empty(shape + (q * (q - 1) // 2,))
+    iu = np.triu_indices(q, 1)
+    for idx in np.ndindex(*shape):
+        L = np.zeros((q, q))
+        L[0, 0] = 1.0
+        for r in range(1, q):
+            rest = 1.0
+            for c in range(r):
+                z = 2.0 * rng.beta((q - c) / 2.0, (q - c) / 2.0) - 1.0
+                L[r, c] = z * np.sqrt(rest)
+                rest *= 1.0 - z * z
+            L[r, r] = np.sqrt(rest)
+        out[idx] = (L @ L.T)[iu]
+    return out
+
+
+def uniform_correlations(name: str, q: int):
+    """A q x q correlation matrix (its strict upper triangle) uniform over correlation
+    matrices, LKJ(1), sampled by :class:`PartialCorrelations`.
+
+    PyMC's ``LKJCorr`` would do, but its log density checks positive definiteness with an
+    Op that nutpie's compiled graph runs in Python (object mode); here every value of the
+    transform is a correlation matrix, so the density is the normalising constant alone.
+    """
+    from bayeslong.infer.generic_logp import lkj_norm
+
+    norm = lkj_norm(q)
+    m = q * (q - 1) // 2
+    return pm.CustomDist(name, np.zeros(m), signature="(m)->(m)",
+                         logp=lambda value, _zero: norm + 0.0 * pt.sum(value),
+                         random=lambda _zero, rng=None, size=None: _uniform_corr_draw(q, rng, size),
+                         default_transform=PartialCorrelations(q))
 
 
 def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, values: dict):
@@ -203,9 +241,8 @@ def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, value
         values[m.rv_name] = sds[r]
     first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
     eta = hyper[slices[first.parameter].start]
-    vec = pm.LKJCorr(lkj_name(prior_set, b), n=q, eta=1.0,
-                     default_transform=PartialCorrelations(q))
-    C = LKJCorr_matrix(vec, q)
+    vec = uniform_correlations(lkj_name(prior_set, b), q)
+    C = corr_matrix(vec, q)
     log_det_corr = 2.0 * pt.sum(pt.log(pt.diagonal(pt.linalg.cholesky(C))))
     pm.Potential(f"{lkj_name(prior_set, b)}_eta", (eta - 1.0) * log_det_corr)
     return C
