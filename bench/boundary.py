@@ -64,7 +64,7 @@ def main():
     print("command: PYTHONPATH=. .venv/bin/python bench/boundary.py " + " ".join(sys.argv[1:]))
     print(f"before: load average {os.getloadavg()}", flush=True)
     t0 = time.perf_counter()
-    clean_fits = clean_refits = 0
+    clean_fits = clean_refits = reruns = 0
     for seed in range(1, args.panels + 1):
         spec, panel = panel_for(seed)
         with warnings.catch_warnings():
@@ -72,7 +72,9 @@ def main():
             f = bl.fit(spec, panel, progressbar=False)
             ok, text = verdict(f.diagnostics())
             clean_fits += ok
-            line = f"panel {seed:2d} [{f.sampler}]: {'clean  ' if ok else 'FLAGGED'} {text}"
+            reruns += bool(f.rerun)
+            line = (f"panel {seed:2d} [{f.sampler}, target_accept {f.target_accept}]: "
+                    f"{'clean  ' if ok else 'FLAGGED'} {text}")
             if not args.no_lfo:
                 score = bl.forecast_score(spec, panel, progressbar=False)
                 refit_ok = not score.problems
@@ -80,7 +82,8 @@ def main():
                 line += "  | LFO refit " + ("clean" if refit_ok else
                                             "FLAGGED: " + score.problems[0][:120])
         print(line, flush=True)
-    print(f"clean fits: {clean_fits} of {args.panels}")
+    print(f"clean fits: {clean_fits} of {args.panels} ({reruns} sampled again at the careful "
+          "target acceptance after a flagged first run)")
     if not args.no_lfo:
         print(f"clean leave-future-out refits: {clean_refits} of {args.panels}")
     print(f"wall {time.perf_counter() - t0:.0f} s; after: load average {os.getloadavg()}")

@@ -356,7 +356,7 @@ def _pyfunc_model(lay: Layout, ints, floats, init, names):
 
 
 def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, chains, cores, seed,
-           progressbar, names=None, callback: str = "c"):
+           progressbar, names=None, callback: str = "c", target_accept: float = 0.8):
     """NUTS with nutpie on the generic kernel: ``(idata, compile seconds, sample seconds)``.
 
     "Compile" is loading the kernel: importing :mod:`bayeslong.infer.generic_kernel` loads
@@ -376,5 +376,5 @@ def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, cha
 
     t0 = time.perf_counter()
     idata = run_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
-                       init_mean=init, progressbar=progressbar)
+                       init_mean=init, progressbar=progressbar, target_accept=target_accept)
     return idata, compile_s, time.perf_counter() - t0

@@ -90,7 +90,7 @@ def parse_nutpie(text: str) -> tuple[tuple, tuple, int]:
 
 
 def sample_nutpie(compiled, *, draws, tune, chains, cores, seed, init_mean, report,
-                  low_rank: bool = True):
+                  low_rank: bool = True, target_accept: float = 0.8):
     """``nutpie.sample`` with the draws per chain sent to ``report`` as it runs.
 
     Builds the sampler as ``nutpie.sample`` does (nutpie 0.16) but with a
@@ -102,6 +102,7 @@ def sample_nutpie(compiled, *, draws, tune, chains, cores, seed, init_mean, repo
     lib = module._lib
     settings = (lib.PyNutsSettings.LowRank if low_rank else lib.PyNutsSettings.Diag)(seed)
     settings.num_tune, settings.num_draws, settings.num_chains = tune, draws, chains
+    settings.target_accept = float(target_accept)  # write-only in nutpie 0.16, as it sets it
     t0 = time.perf_counter()
 
     def callback(text: str) -> None:
@@ -174,7 +175,8 @@ class PymcCounter:
         self._send("done")
 
 
-def run_nutpie(compiled, *, draws, tune, chains, cores, seed, init_mean, progressbar):
+def run_nutpie(compiled, *, draws, tune, chains, cores, seed, init_mean, progressbar,
+               target_accept: float = 0.8):
     """Sample ``compiled`` with nutpie's low-rank-modified mass matrix.
 
     A callable ``progressbar`` receives live counts per chain (:func:`sample_nutpie`; with
@@ -189,10 +191,11 @@ def run_nutpie(compiled, *, draws, tune, chains, cores, seed, init_mean, progres
     if callable(progressbar):
         try:
             return sample_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores,
-                                 seed=seed, init_mean=init_mean, report=progressbar)
+                                 seed=seed, init_mean=init_mean, report=progressbar,
+                                 target_accept=target_accept)
         except (AttributeError, TypeError):  # another nutpie layout: sample without counts
             pass
     return nutpie.sample(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
                          progress_bar=progressbar is True, init_mean=init_mean, save_warmup=False,
-                         low_rank_modified_mass_matrix=True)
+                         low_rank_modified_mass_matrix=True, target_accept=target_accept)
 

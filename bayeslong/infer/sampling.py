@@ -27,7 +27,15 @@ import pandas as pd
 
 from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
-from bayeslong.errors import ConvergenceWarning, SpecError
+from bayeslong.errors import SpecError
+from bayeslong.infer.diagnostics import (  # noqa: F401  (their home before; imported from here)
+    EBFMI_MIN,
+    ESS_PER_CHAIN,
+    RHAT_MAX,
+    diagnose,
+    flagged,
+    warn_convergence,
+)
 from bayeslong.infer.priors import PriorSet, resolve_priors
 from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.model.spec import Spec
@@ -38,14 +46,10 @@ from bayeslong.model.structure import Structure, structure_for
 #: the PyMC model's graph compiled per structure, ``pymc`` PyMC's NUTS.
 SAMPLERS = ("auto", "generic", "nutpie", "pymc")
 
-#: Convergence thresholds (Vehtari et al. 2021): R-hat below 1.01, bulk and tail ESS above
-#: 100 per chain (400 for 4 chains). E-BFMI below 0.3 flags a chain (Betancourt 2016, common
-#: practice).
-RHAT_MAX = 1.01
-ESS_PER_CHAIN = 100
-EBFMI_MIN = 0.3
-
-
+#: Target acceptance rates: the first run's (nutpie's and PyMC's default), and the careful
+#: re-run's after a first run that failed a convergence check (docs/engine.md).
+FIRST_TARGET_ACCEPT = 0.8
+CAREFUL_TARGET_ACCEPT = 0.95
 
 # --------------------------------------------------------------------------------------------
 # the Fit object
@@ -82,6 +86,17 @@ class Fit:
     prior_set: PriorSet
     sampler: str = ""
     timing: dict = field(default_factory=dict)
+
+    @property
+    def target_accept(self) -> float | None:
+        """The target acceptance rate of the run kept (None for a fit saved before it was recorded)."""
+        value = self.idata.posterior.attrs.get("bayeslong_target_accept")
+        return None if value is None else float(value)
+
+    @property
+    def rerun(self) -> str:
+        """Why the fit was sampled a second time at a higher target acceptance ("" if not)."""
+        return str(self.idata.posterior.attrs.get("bayeslong_rerun", "") or "")
 
     def theta_draws(self) -> np.ndarray:
         """Return the draws as an array (chains * draws, n_params) in ``structure.names`` order."""
@@ -210,101 +225,6 @@ def load_fit(path) -> Fit:
                timing={})
 
 
-# --------------------------------------------------------------------------------------------
-# diagnostics
-# --------------------------------------------------------------------------------------------
-def _stat(stats, *names):
-    for name in names:
-        if name in stats:
-            return stats[name]
-    return None
-
-
-@contextlib.contextmanager
-def _arviz_numpy():
-    """ArviZ's NumPy code paths for the diagnostics, whatever its global numba switch.
-
-    With numba installed ArviZ compiles its own numba helpers in every new process (about
-    1-2 s measured under load, more than the diagnostics of a few dozen parameters cost in
-    NumPy); the first fit in a process would pay it. The switch is restored afterwards.
-    """
-    from arviz.utils import Numba
-
-    was = Numba.numba_flag
-    Numba.numba_flag = False
-    try:
-        yield
-    finally:
-        Numba.numba_flag = was
-
-
-def diagnose(idata, names) -> pd.DataFrame:
-    """Per-parameter R-hat and ESS with flags, and run-level checks in ``attrs`` (see Fit.diagnostics)."""
-    with _arviz_numpy():
-        return _diagnose(idata, names)
-
-
-def _diagnose(idata, names) -> pd.DataFrame:
-    import arviz as az
-
-    post = idata.posterior[list(names)]
-    chains = int(post.sizes["chain"])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # ArviZ warns on single chains; the flags say it
-        rhat = az.rhat(post)
-        bulk = az.ess(post, method="bulk")
-        tail = az.ess(post, method="tail")
-    ess_min = ESS_PER_CHAIN * chains
-    rows = []
-    for name in names:
-        r, b, t = float(rhat[name]), float(bulk[name]), float(tail[name])
-        flags = []
-        if not (r < RHAT_MAX):
-            flags.append(f"r_hat {r:.3f} >= {RHAT_MAX}")
-        if not (b > ess_min):
-            flags.append(f"ess_bulk {b:.0f} <= {ess_min}")
-        if not (t > ess_min):
-            flags.append(f"ess_tail {t:.0f} <= {ess_min}")
-        rows.append({"parameter": name, "r_hat": r, "ess_bulk": b, "ess_tail": t,
-                     "flag": "; ".join(flags)})
-    table = pd.DataFrame(rows).set_index("parameter")
-    stats = idata.sample_stats if "sample_stats" in idata.groups() else {}
-    div = _stat(stats, "diverging")
-    energy = _stat(stats, "energy")
-    depth_hit = _stat(stats, "reached_max_treedepth", "maxdepth_reached")
-    table.attrs["divergences"] = int(np.asarray(div).sum()) if div is not None else 0
-    if energy is not None and energy.sizes.get("draw", 0) > 2:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            table.attrs["ebfmi"] = [float(v) for v in az.bfmi(idata)]
-    else:
-        table.attrs["ebfmi"] = []
-    table.attrs["treedepth_share"] = float(np.asarray(depth_hit).mean()) if depth_hit is not None else 0.0
-    table.attrs["thresholds"] = {"r_hat": RHAT_MAX, "ess_bulk": ess_min, "ess_tail": ess_min,
-                                 "ebfmi": EBFMI_MIN}
-    return table
-
-
-def warn_convergence(table: pd.DataFrame, *, stacklevel: int = 3) -> None:
-    """Emit one ConvergenceWarning naming each flagged parameter and threshold."""
-    parts = [f"{name}: {flag}" for name, flag in table["flag"].items() if flag]
-    if table.attrs.get("divergences", 0):
-        parts.append(f"{table.attrs['divergences']} divergent transitions after warm-up "
-                     "(threshold 0)")
-    low = [i for i, v in enumerate(table.attrs.get("ebfmi", [])) if v < EBFMI_MIN]
-    if low:
-        parts.append("E-BFMI below " + f"{EBFMI_MIN} in chain(s) " + ", ".join(map(str, low)))
-    if parts:
-        warnings.warn(
-            "the fit has not converged by the criteria of Vehtari et al. (2021) (R-hat < "
-            f"{RHAT_MAX}, bulk and tail ESS > {ESS_PER_CHAIN} per chain): " + "; ".join(parts)
-            + ". Run more draws or chains (draws=, chains=), or check the model and priors.",
-            ConvergenceWarning, stacklevel=stacklevel)
-
-
-# --------------------------------------------------------------------------------------------
-# per-unit log-likelihood
-# --------------------------------------------------------------------------------------------
 def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | None = None) -> np.ndarray:
     """Log density of each unit's observed outcomes at each draw, shape (S, N).
 
@@ -468,7 +388,8 @@ def _entry(spec, panel, structure, prior_set):
     return entry, True
 
 
-def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, progressbar, names):
+def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, progressbar, names,
+                   target_accept):
     import nutpie
     from pymc.initial_point import make_initial_point_fn
 
@@ -497,11 +418,12 @@ def _sample_nutpie(entry, inputs, start, *, draws, tune, chains, cores, seed, pr
                                    initial_point_func=lambda seed: init.copy())
     t0 = time.perf_counter()
     idata = run_nutpie(compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed,
-                       init_mean=init, progressbar=progressbar)
+                       init_mean=init, progressbar=progressbar, target_accept=target_accept)
     return idata, compile_s, time.perf_counter() - t0
 
 
-def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, progressbar, names):
+def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, progressbar, names,
+                 target_accept):
     import pymc as pm
 
     model = entry["model"]
@@ -519,7 +441,7 @@ def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, prog
         idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, random_seed=seed,
                           initvals=start, progressbar=progressbar is True, var_names=list(names),
                           compute_convergence_checks=False, return_inferencedata=True,
-                          callback=counter)
+                          callback=counter, target_accept=target_accept)
     if counter is not None:
         counter.finish()
     return idata, 0.0, time.perf_counter() - t0
@@ -527,7 +449,7 @@ def _sample_pymc(entry, inputs, start, *, draws, tune, chains, cores, seed, prog
 
 def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4, seed: int = 1,
         priors: dict | None = None, sampler: str = "auto", progressbar=True,
-        cores: int | None = None) -> Fit:
+        cores: int | None = None, target_accept: float | None = None) -> Fit:
     """Fit ``spec`` to ``panel`` by NUTS on the marginal likelihood.
 
     Parameters
@@ -558,6 +480,12 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
         included) and when sampling ends; ``bayeslong run`` passes one that writes to stderr.
     cores : int, optional
         Chains run in parallel (default: min(chains, CPU count)); each uses one BLAS thread.
+    target_accept : float, optional
+        The sampler's target acceptance rate (0 < value < 1). By default the fit samples at
+        0.8 and, when that run fails a convergence check, samples once more at 0.95 and
+        keeps that run (a smaller step follows curved or narrow posteriors that the first
+        run could not; docs/engine.md, "The careful re-run"). A value given here is used
+        as it is, without a re-run. ``Fit.target_accept`` and ``Fit.rerun`` say what ran.
 
     Returns
     -------
@@ -592,6 +520,11 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
+    if target_accept is not None and not (isinstance(target_accept, (int, float))
+                                          and 0.0 < float(target_accept) < 1.0):
+        raise SpecError(f"fit: target_accept={target_accept!r}; give a number between 0 and 1 "
+                        f"(e.g. 0.9), or leave it out for {FIRST_TARGET_ACCEPT} with a careful "
+                        f"re-run at {CAREFUL_TARGET_ACCEPT} when needed")
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)
     which = _choose(sampler, prior_set)
@@ -613,17 +546,21 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
                                           seed=int(seed))
         return state["entry"], state["inputs"], state["start"]
 
+    def run(which, accept):
+        if which == "generic":
+            from bayeslong.infer.generic_logp import sample as sample_generic
+
+            return sample_generic(structure, prior_set, panel, **settings, target_accept=accept)
+        run = _sample_nutpie if which == "nutpie" else _sample_pymc
+        return run(*pymc_entry(), **settings, target_accept=accept)
+
+    accept = FIRST_TARGET_ACCEPT if target_accept is None else float(target_accept)
+    rerun = ""
     with _one_thread(), warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
         try:
-            if which == "generic":
-                from bayeslong.infer.generic_logp import sample as sample_generic
-
-                raw, compile_s, sample_s = sample_generic(structure, prior_set, panel, **settings)
-            else:
-                run = _sample_nutpie if which == "nutpie" else _sample_pymc
-                raw, compile_s, sample_s = run(*pymc_entry(), **settings)
+            raw, compile_s, sample_s = run(which, accept)
         except RuntimeError as err:
             # nutpie 0.16 sometimes rejects a start point whose log density and gradient
             # are finite (seen on a 40-unit ALT panel, "bad initial gradient"); PyMC's NUTS
@@ -633,12 +570,21 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
             warnings.warn(f"model '{spec.name}': nutpie could not start ({str(err).splitlines()[0]}); "
                           "sampling with PyMC's NUTS instead", UserWarning, stacklevel=2)
             which = "pymc"
-            raw, compile_s, sample_s = _sample_pymc(*pymc_entry(), **settings)
+            raw, compile_s, sample_s = run(which, accept)
+        if target_accept is None:
+            problems = flagged(diagnose(raw, structure.names))
+            if problems:  # docs/engine.md, "The careful re-run"
+                rerun = (f"the run at target_accept {accept} failed the convergence checks "
+                         f"({problems}); sampled again at {CAREFUL_TARGET_ACCEPT}")
+                accept = CAREFUL_TARGET_ACCEPT
+                raw, more_compile, more_sample = run(which, accept)
+                compile_s, sample_s = compile_s + more_compile, sample_s + more_sample
     build_s = state.get("build", 0.0)
     t0 = time.perf_counter()
     with _one_thread():  # tiny batched matrices: BLAS threads only cost here
         idata = _tidy(raw, structure, panel, prior_set)
     loglik_s = time.perf_counter() - t0
+    idata.posterior.attrs.update({"bayeslong_target_accept": accept, "bayeslong_rerun": rerun})
     result = Fit(spec=spec, panel=panel, structure=structure, seed=int(seed), idata=idata,
                  prior_set=prior_set, sampler=which,
                  timing={"build": build_s, "compile": compile_s, "sample": sample_s,

@@ -277,6 +277,7 @@ def _sampling_facts(results) -> dict | None:
     if not fits:
         return None
     rhat, ess, div, thresholds = 0.0, math.inf, 0, {}
+    reruns = sum(bool(getattr(f, "rerun", "")) for f in fits)
     for f in fits:
         try:
             d = f.diagnostics()
@@ -290,7 +291,7 @@ def _sampling_facts(results) -> dict | None:
     return {"chains": int(post.sizes["chain"]), "draws": int(post.sizes["draw"]),
             "samplers": sorted({str(getattr(f, "sampler", "") or "") for f in fits} - {""}),
             "max_rhat": rhat, "min_ess": ess, "divergences": div,
-            "thresholds": thresholds}
+            "thresholds": thresholds, "fits": len(fits), "reruns": reruns}
 
 
 def manuscript_text(results, findings: dict | None = None) -> dict:
@@ -340,6 +341,10 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
                  f"{t.get('r_hat', 1.01)} and bulk and tail effective sample sizes above "
                  f"{t.get('ess_bulk', 400)} " + cite("rhat", "(Vehtari et al. 2021)")
                  + ", no divergent transitions and E-BFMI above " f"{t.get('ebfmi', 0.3)}.")
+        if facts["reruns"]:
+            m.append(f"The sampler's target acceptance rate was 0.8; {facts['reruns']} of the "
+                     f"{facts['fits']} candidate fits failed a convergence check at 0.8 and were "
+                     "sampled again at 0.95, and that second run is the one reported.")
     elif results.method != "bayes":
         m.append("The models were fitted by maximum likelihood only (no posterior sampling).")
     if f["best_loo"] is not None:

@@ -53,6 +53,24 @@ def test_bad_fit_warns_naming_parameter_and_threshold(bad_fit):
     assert any(name in message for name in ("level_mean", "slope_mean", "resid_var"))
 
 
+def test_a_flagged_run_is_sampled_again_more_carefully(bad_fit):
+    # 20 draws of one chain fail the ESS checks, so the default fit samples once more at the
+    # careful target acceptance and says why; the kept run is the second one
+    result, _ = bad_fit
+    assert result.target_accept == 0.95
+    assert "failed the convergence checks" in result.rerun and "again at 0.95" in result.rerun
+
+
+def test_a_given_target_accept_is_used_without_a_rerun(sleep_missing):
+    with pytest.warns(ConvergenceWarning):
+        result = fit(bl.model("linear-growth"), sleep_missing, draws=20, tune=20, chains=1,
+                     seed=3, sampler="generic", progressbar=False, target_accept=0.9)
+    assert result.target_accept == 0.9 and result.rerun == ""
+    for bad in (1.0, 0, "high", -0.5):
+        with pytest.raises(SpecError, match="target_accept=.*between 0 and 1"):
+            fit(bl.model("linear-growth"), sleep_missing, target_accept=bad)
+
+
 def test_unit_loglik_equals_scipy_with_missing_waves(bad_fit, sleep_missing):
     # Reference: scipy.stats.multivariate_normal.logpdf of each unit's observed waves, with
     # the linear-growth moments written out by hand: mean_t = level_mean + slope_mean t,
@@ -153,6 +171,7 @@ def test_save_load_round_trip(sleep_fit, tmp_path):
                                   sleep_fit.idata.log_likelihood["y"].values)
     assert back.priors().equals(sleep_fit.priors())
     assert back.diagnostics()["flag"].tolist() == sleep_fit.diagnostics()["flag"].tolist()
+    assert (back.target_accept, back.rerun) == (sleep_fit.target_accept, sleep_fit.rerun)
     with pytest.raises(SpecError, match="no fit file at"):
         load_fit(tmp_path / "missing.nc")
 
@@ -299,7 +318,8 @@ def test_nutpie_starts_from_the_nudged_point_where_the_data_based_one_failed(mon
     monkeypatch.setattr(sampling, "_COMPILED", {})
     entry, _ = sampling._entry(spec, panel, s, ps)
     inputs = model_inputs(panel, ps)
-    settings = dict(draws=50, tune=50, chains=2, cores=1, seed=0, progressbar=False, names=s.names)
+    settings = dict(draws=50, tune=50, chains=2, cores=1, seed=0, progressbar=False, names=s.names,
+                    target_accept=0.8)
     real = start.sampler_start
     start.sampler_start = lambda st, p, seed=0: start.start_values(st, p)
     try:
