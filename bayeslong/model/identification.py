@@ -21,10 +21,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from bayeslong.arguments import seed_value, whole_number
-from bayeslong.model.moments import moment_jacobian
+from bayeslong.model.moments import NUMPY, implied_moments, moment_jacobian
 from bayeslong.model.spec import Spec
 from bayeslong.model.start import start_values
 from bayeslong.model.structure import Structure, structure_for
+from bayeslong.model.thresholds import Categorical, categorical_structure
 from bayeslong.model.transform import Unconstrained
 from bayeslong.threads import single_thread
 
@@ -101,10 +102,13 @@ def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 
     points = whole_number(points, "points", where="identify")
     seed = seed_value(seed, where="identify")
     structure = structure_for(spec, panel)
-    key = (structure, points, seed, tol)
+    categories = tuple(sorted((str(k), len(v)) for k, v in
+                              (getattr(panel, "categories", None) or {}).items()))
+    key = (structure, categories, points, seed, tol)
     if key not in _RESULTS:  # the answer depends on the design only, so it is kept
+        run = _identify_categorical if categories else _identify
         with single_thread():
-            _RESULTS[key] = _identify(spec, panel, points=points, seed=seed, tol=tol)
+            _RESULTS[key] = run(spec, panel, points=points, seed=seed, tol=tol)
     return _RESULTS[key]
 
 
@@ -136,5 +140,81 @@ def _identify(spec, panel, *, points, seed, tol) -> Identification:
                      if spec.level_covariates == "every-wave" and panel.time_invariant else "")
                   + "; more waves help when the count of moments is short "
                   f"({n_moments} moments for {p} parameters).")
+    return Identification(identified=rank == p, deficient=deficient, rank=rank,
+                          n_params=p, n_moments=n_moments, advice=advice)
+
+
+def _standardised(cat: Categorical, x) -> np.ndarray:
+    """What categorical data identify, as a function of (free parameters, thresholds).
+
+    For a categorical response only the location and scale-free quantities reach the
+    categories' probabilities: each cut standardised by its response's mean and SD,
+    (tau - c) / sd, the covariate effects over the SD, and the responses' correlations;
+    a continuous variable keeps its mean, effects and variance (docs/model-family.md,
+    "Categorical variables"). ``x`` may be complex (the complex step).
+    """
+    structure = cat.structure
+    n_free = len(cat.free)
+    theta = np.zeros(x.shape[:-1] + (structure.n_params,), dtype=x.dtype)
+    for name, value in cat.pinned.items():
+        theta[..., structure.names.index(name)] = value
+    theta[..., list(cat.free)] = x[..., :n_free]
+    c, D, Sigma = implied_moments(structure, theta, NUMPY)
+    Y = c.shape[-1]
+    sd = np.ones(x.shape[:-1] + (Y,), dtype=x.dtype)
+    is_cat = np.zeros(Y, dtype=bool)
+    for v in cat.variables:
+        is_cat[cat.rows[v]] = True
+        sd[..., cat.rows[v]] = np.sqrt(Sigma[..., cat.rows[v], cat.rows[v]])
+    out = [np.where(is_cat, 0.0, c), D / sd[..., :, None]]
+    tau = np.concatenate([x[..., n_free:], np.zeros(x.shape[:-1] + (1,), dtype=x.dtype)], axis=-1)
+    for v in cat.variables:
+        r = cat.rows[v]
+        cut = tau[..., cat.cuts[v]]  # (..., T, C-1), index -1 is the fixed 0
+        out.append((cut - c[..., r, None]) / sd[..., r, None])
+    corr = Sigma / (sd[..., :, None] * sd[..., None, :])
+    iu = np.triu_indices(Y)
+    keep = ~(is_cat[iu[0]] & (iu[0] == iu[1]))  # a categorical response's variance is 1
+    out.append(corr[..., iu[0][keep], iu[1][keep]])
+    return np.concatenate([o.reshape(x.shape[:-1] + (-1,)) for o in out], axis=-1)
+
+
+def _identify_categorical(spec, panel, *, points, seed, tol) -> Identification:
+    """Rank of the Jacobian of :func:`_standardised` (exact, by the complex step) at random
+    admissible points: the categorical form of :func:`_identify` (Rothenberg 1971; the
+    standardised thresholds and response correlations are what ordinal data identify,
+    Muthen 1984)."""
+    cat = categorical_structure(spec, panel)
+    structure = cat.structure
+    tr = Unconstrained(structure)
+    rng = np.random.default_rng(seed)
+    u0 = tr.from_natural(start_values(structure_for(spec, panel), panel))
+    n_free, n_tau = len(cat.free), len(cat.thresholds)
+    best = None
+    for _ in range(points):
+        theta = tr.to_natural(u0 + rng.normal(0.0, 0.5, size=u0.shape))
+        # thresholds increasing from the fixed first cut 0, in the responses' SD units
+        tau = np.cumsum(rng.uniform(0.3, 1.0, size=max(n_tau, 1)))[:n_tau]
+        x = np.concatenate([theta[list(cat.free)], tau])
+        step = 1e-30
+        g = _standardised(cat, x[None] + 1j * step * np.eye(len(x)))
+        J = (g.imag / step).T
+        J = J / np.maximum(np.linalg.norm(J, axis=0), 1e-300)
+        _, sv, vt = np.linalg.svd(J, full_matrices=True)
+        rank = int(np.sum(sv > tol * sv.max()))
+        if best is None or rank > best[0]:
+            best = (rank, vt[rank:], J.shape[0])
+    rank, null, n_moments = best
+    p = n_free + n_tau
+    deficient, advice = (), ""
+    if rank < p:
+        weight = np.abs(null).max(axis=0)
+        deficient = tuple(n for n, w in zip(cat.names, weight) if w > 1e-3)
+        advice = ("categorical data fix only each response's standardised thresholds and the "
+                  "responses' correlations (and the covariates' standardised effects), so these "
+                  "parameters cannot be told apart: " + ", ".join(deficient) + ". Keep the "
+                  "thresholds equal over waves (thresholds='equal'), give the model equal "
+                  "residual variances (residuals='equal'), fix one of them, or add waves "
+                  f"({n_moments} identified quantities for {p} parameters).")
     return Identification(identified=rank == p, deficient=deficient, rank=rank,
                           n_params=p, n_moments=n_moments, advice=advice)
