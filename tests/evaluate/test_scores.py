@@ -1,9 +1,12 @@
-"""Latent scores (bayeslong.evaluate.scores) and the predictive checks of fits with indicators.
+"""Latent scores (bayeslong.evaluate.scores), the measurement part read by wave
+(bayeslong.evaluate.measurement) and the predictive checks of fits with indicators.
 
 References: the regression factor score E[eta | y] = mu_eta + Cov(eta, y) Sigma_y^-1
 (y - mu_y) (Thomson 1936; Bartholomew & Knott 1999, Latent Variable Models and Factor
 Analysis, section 3.7), computed here by hand with NumPy from the model's equations written
-out wave by wave (not from the engine's matrices); pandas for the observed statistics.
+out wave by wave (not from the engine's matrices); the parameter values the data were
+drawn from, placed by hand where the model's equations put them (the marker's loading 1 and
+intercept 0); pandas for the observed statistics.
 Data are simulated with ``bl.simulate`` and a fixed seed.
 """
 
@@ -19,6 +22,7 @@ import pytest
 import bayeslong as bl
 from bayeslong.errors import DataError
 from bayeslong.evaluate.checks import ppc, replicate, trajectories
+from bayeslong.evaluate.measurement import measurement_table, wave_measurement
 from bayeslong.evaluate.plots import plot_latent_scores, plot_ppc
 from bayeslong.evaluate.scores import latent_draws, latent_scores
 from bayeslong.infer.laplace import ApproxFit, approximate_fit
@@ -226,3 +230,40 @@ def test_checks_and_scores_on_a_small_bayesian_fit():
     fewer, full = at3["n_observed"] < 3, at3["n_observed"] == 3
     assert fewer.sum() >= 5, at3["n_observed"].value_counts()
     assert at3.loc[fewer, "sd"].mean() > at3.loc[full, "sd"].mean()
+
+
+# --------------------------------------------------------------------------------------------
+# the measurement part by wave
+# --------------------------------------------------------------------------------------------
+
+
+def test_wave_measurement_places_each_value_at_its_indicator_and_wave():
+    spec, panel, theta = _panel(30, seed=3)
+    fit = _at(spec, panel, theta, draws=5)
+    table = measurement_table(fit)
+    assert len(table) == 3 * T and list(dict.fromkeys(table["indicator"])) == ITEMS["reading"]
+    for _, row in table.iterrows():
+        item, wave = row["indicator"], row["wave"]
+        loading = 1.0 if item == "enjoy" else TRUE[f"loading[{item}]"]
+        intercept = 0.0 if item == "enjoy" else TRUE[f"intercept[{item}]"]
+        # values placed in the matrices and read back: exact up to rounding
+        assert row["loading"] == pytest.approx(loading, abs=1e-12)
+        assert row["intercept"] == pytest.approx(intercept, abs=1e-12)
+        assert row["unique_var"] == pytest.approx(_value(f"unique_var[{item},{wave}]"), abs=1e-12)
+        assert row["loading fixed"]  # every draw is the same theta here
+
+
+def test_wave_measurement_marks_the_marker_fixed_and_gives_intervals():
+    spec, panel, theta = _panel(30, seed=3)
+    st = structure_for(spec, panel)
+    rng = np.random.default_rng(0)
+    draws = theta + 0.01 * rng.standard_normal((50, len(theta)))  # jittered draws
+    table = wave_measurement(st, panel, draws, interval=0.8)
+    marker = table[table["indicator"] == "enjoy"]
+    assert marker["loading fixed"].all() and marker["intercept fixed"].all()
+    other = table[table["indicator"] == "choose"]
+    assert not other["loading fixed"].any()
+    assert (other["loading lower"] < other["loading"]).all()
+    assert (other["loading"] < other["loading upper"]).all()
+    with pytest.raises(DataError, match="`interval` must be between 0 and 1"):
+        wave_measurement(st, panel, theta, interval=80)
