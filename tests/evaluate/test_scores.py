@@ -210,9 +210,16 @@ def test_plot_latent_scores_shows_latents_beside_their_indicators(approx, tmp_pa
 
 
 @pytest.mark.filterwarnings("ignore::bayeslong.ConvergenceWarning")
-def test_checks_and_scores_on_a_small_bayesian_fit():
+def test_checks_and_scores_on_a_small_bayesian_fit(tmp_path):
+    from bayeslong.infer.sampling import load_fit
+
     spec, panel, _ = _panel(60, seed=6, missing=0.1)
     fit = bl.fit(spec, panel, draws=100, tune=150, chains=2, seed=3, progressbar=False)
+    # a saved fit keeps its indicators: the panel and the draws come back as they were
+    loaded = load_fit(fit.save(tmp_path / "fit.nc"))
+    assert loaded.panel == panel and loaded.structure.names == fit.structure.names
+    np.testing.assert_array_equal(loaded.theta_draws(), fit.theta_draws())
+    fit = loaded
     table = ppc(fit, draws=100, seed=0)
     # 3 indicators x (4 means + 4 SDs + 3 lag-1 correlations + 1 share rising)
     assert len(table) == 3 * (T + T + (T - 1) + 1)
