@@ -62,7 +62,8 @@ def compare_invariance(spec, panel, *, levels=INVARIANCE_LEVELS, starts: int = 4
         names the parameters of a level that is not identified with this model's
         structural part (its other columns are then empty; below scalar invariance a model
         with growth means is such a case: compare the levels with ``waves-apart`` first).
-        Then, for a model with lags, each lag parameter's ML estimate at that level and its
+        A level whose maximum sits on the boundary (a variance at zero) says so in ``note``
+        and names the parameters. Then, for a model with lags, each lag parameter's ML estimate at that level and its
         standard error (columns ``lag`` and ``lag se``, ``lag[y<-x]`` and ``lag[y<-x] se``
         ...): how the lag moves with the measurement assumptions.
 
@@ -97,6 +98,9 @@ def compare_invariance(spec, panel, *, levels=INVARIANCE_LEVELS, starts: int = 4
             row[name], row[f"{name} se"] = float(fit.params[name]), float(fit.se[name])
         if not fit.converged:
             row["note"] = "did not converge"
+        if fit.boundary:
+            row["note"] = "; ".join(filter(None, [row["note"], "on the boundary (no valid SE): "
+                                                  + ", ".join(fit.boundary)]))
         if previous is not None:
             lr = 2.0 * (previous.loglik - fit.loglik)
             df = previous.n_params - fit.n_params

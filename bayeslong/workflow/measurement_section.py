@@ -15,6 +15,7 @@ a re-rendered report shows the same numbers.
 from __future__ import annotations
 
 import math
+import warnings
 
 import pandas as pd
 
@@ -139,7 +140,9 @@ def add_measurement_section(doc, results, draw) -> None:
                       f"variances by indicator and wave, {what}; invariance "
                       f"'{spec.measurement['invariance']}'")
         try:
-            inv = compare_invariance(spec, panel, starts=2, seed=results.study.sampling["seed"])
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                inv = compare_invariance(spec, panel, starts=2, seed=results.study.sampling["seed"])
         except BayeslongError as err:
             doc.para(f"Invariance levels not compared: {err}.", "note")
             continue
@@ -147,6 +150,10 @@ def add_measurement_section(doc, results, draw) -> None:
         doc.table(inv[cols], f"{m.label}: invariance levels by maximum likelihood, each tested "
                   "against the level before it")
         doc.items(invariance_reading(inv))
+        said = list(dict.fromkeys(str(w.message) for w in caught))
+        if said:
+            doc.para("Maximum likelihood at some level warned (each warning once):", "warn")
+            doc.items(said, "warn")
         if any(inv["note"].str.contains("did not converge")):
             doc.para("A level's maximum-likelihood fit DID NOT CONVERGE: its row and the tests "
                      "next to it are not trustworthy.", "bad")
