@@ -190,6 +190,7 @@ def study_findings(results) -> dict:
     difference, SE of the difference and whether it is clear; None when not run),
     ``best_aic`` (maximum-likelihood runs), ``lag`` (model, parameter, mean, low, high),
     ``lag_range`` (over the sensitivity settings), ``flagged`` (model -> problems),
+    ``measured`` (process -> indicators, for processes measured by several),
     ``caution`` and ``text`` (the sentences, in reading order).
     """
     comp = table_of(results.comparison.value) if results.comparison.ran else None
@@ -226,6 +227,16 @@ def study_findings(results) -> dict:
         text.append(_lag_text(lag, leader))
     else:
         text.append("No fitted candidate has a constant lag to report.")
+    measured = {str(p): [str(n) for n in g] for p, g in results.panel.indicators.items()
+                if g != (p,)}
+    if measured:
+        level = by_label[lag["model"]].candidate.spec.measurement["invariance"] if lag else None
+        text.append("Latent outcomes: " + "; ".join(f"{p} measured by {', '.join(g)}"
+                                                   for p, g in measured.items())
+                    + (f". The lag is the latent's, at {level} invariance" if level else "")
+                    + ". The Measurement section tests the invariance levels by maximum "
+                    "likelihood and shows the lag at each level (ML tests beside the posterior, "
+                    "not part of it).")
     spread = _sensitivity_range(results.sensitivity)
     if spread is not None:
         line = (f"Over the {spread['settings']} sensitivity settings ({', '.join(spread['axes'])}; "
@@ -258,7 +269,7 @@ def study_findings(results) -> dict:
         text.append("No fit is flagged: every fit passed the convergence checks.")
     return {"best_loo": best_loo, "best_lfo": best_lfo, "best_aic": best_aic, "lag": lag,
             "lag_range": spread, "flagged": flagged, "lfo_flagged": lfo_problems,
-            "no_posterior": failed, "caution": CAUTION, "text": text}
+            "no_posterior": failed, "measured": measured, "caution": CAUTION, "text": text}
 
 
 # --------------------------------------------------------------------------------------------

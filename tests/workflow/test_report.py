@@ -500,6 +500,10 @@ def test_measurement_section_tables_and_readings(rendered_measurement):
     assert "lag: latent trajectories of 3 units (posterior mean, 90% interval)" in text
     md = paths["markdown"].read_text(encoding="utf-8")
     assert "## Measurement" in md and "A large p-value does not show invariance" in md
+    # the findings name the indicators and the level the lag was estimated at
+    findings = _section(page, "findings")
+    assert "Latent outcomes: calm_latent measured by calm, rested, focused" in findings
+    assert "at scalar invariance" in findings
 
 
 def test_no_measurement_section_without_indicators(rendered):
