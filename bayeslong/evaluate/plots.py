@@ -84,8 +84,8 @@ def plot_ppc(fit_or_table, *, statistics=("mean", "sd"), draws: int = 200, seed=
                            label="observed, p < 0.05 or > 0.95")
             ax.set_xticks(x, [str(w) for w in t["wave"]])
             ax.set_xlabel("wave" if stat != "lag1_cor" else "wave t")
-            name = proc if owner == proc else f"{owner} / {proc}"
-            ax.set_ylabel(f"{name}: {_STAT_LABEL[stat]}")
+            ax.set_ylabel(f"{proc}: {_STAT_LABEL[stat]}" if owner == proc
+                          else f"{owner} / {proc}:\n{_STAT_LABEL[stat]}")
             if r == 0 and c == 0:
                 ax.legend(fontsize=7, loc="best")
     model = table.attrs.get("model")

@@ -224,11 +224,13 @@ def _figure_data(panel):
     import matplotlib.pyplot as plt
     import numpy as np
 
-    k = len(panel.outcomes)
-    fig, axes = plt.subplots(1, k, figsize=(6.2 * k, 3.6), squeeze=False)
+    names = [name if group == (p,) else f"{p} / {name}"  # each indicator of a latent process
+             for p, group in panel.indicators.items() for name in group]
+    k = len(names)
+    fig, axes = plt.subplots(1, k, figsize=(min(6.2, 16.0 / k) * k, 3.6), squeeze=False)
     x = np.arange(1, panel.n_waves + 1)
     shown = min(panel.n_units, 60)
-    for j, (ax, name) in enumerate(zip(axes[0], panel.outcomes)):
+    for j, (ax, name) in enumerate(zip(axes[0], names)):
         y = panel.y[:, :, j]
         for i in range(shown):
             ax.plot(x, y[i], color="#7f9bb5", lw=0.7, alpha=0.6, marker=".", ms=2)

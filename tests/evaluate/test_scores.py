@@ -179,7 +179,7 @@ def test_ppc_reports_each_indicator_and_wave(approx):
     assert table["p_value"].between(0.01, 0.99).all(), table[~table["p_value"].between(0.01, 0.99)]
     fig = plot_ppc(table, statistics=("mean", "lag1_cor"))
     labels = [ax.get_ylabel() for ax in fig.axes]
-    assert "reading / choose: wave mean" in labels
+    assert "reading / choose:\nwave mean" in labels
 
 
 def test_trajectories_with_indicators(approx):

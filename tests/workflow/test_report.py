@@ -18,7 +18,7 @@ import pytest
 from scipy import stats
 
 import bayeslong as bl
-from bayeslong.workflow.report import _loo_reading, write_report
+from bayeslong.workflow.report import _figure_data, _loo_reading, write_report
 from bayeslong.workflow.results import ModelResult, Step, StudyResults
 from bayeslong.workflow.study_file import load_study, software_versions
 
@@ -500,6 +500,9 @@ def test_measurement_section_tables_and_readings(rendered_measurement):
     assert "lag: latent trajectories of 3 units (posterior mean, 90% interval)" in text
     md = paths["markdown"].read_text(encoding="utf-8")
     assert "## Measurement" in md and "A large p-value does not show invariance" in md
+    # the data figure draws every indicator, each named with its process
+    fig = _figure_data(results.panel)
+    assert [ax.get_ylabel() for ax in fig.axes] == [f"calm_latent / {i}" for i in DRIFT_ITEMS]
     # the findings name the indicators and the level the lag was estimated at
     findings = _section(page, "findings")
     assert "Latent outcomes: calm_latent measured by calm, rested, focused" in findings
