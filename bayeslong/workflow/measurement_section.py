@@ -1,6 +1,8 @@
 """The report's measurement section, for studies with processes measured by several indicators.
 
-For each candidate: its loadings, intercepts and unique variances by indicator and wave
+For a single process, first the invariance levels in the unlinked-waves model
+(``waves-apart``), where every level is identified and can be tested free of growth and lag.
+Then for each candidate: its loadings, intercepts and unique variances by indicator and wave
 (posterior means with 90% intervals, or ML estimates when the run made no posterior fits),
 the invariance levels compared by maximum likelihood (:func:`bayeslong.compare_invariance`:
 likelihood-ratio tests, AIC, BIC), and the lag's ML estimate at each level. Then what the
@@ -22,6 +24,7 @@ import pandas as pd
 from bayeslong.errors import BayeslongError
 from bayeslong.evaluate.measurement import PARTS, wave_measurement
 from bayeslong.infer.invariance import compare_invariance
+from bayeslong.model.spec import model
 from bayeslong.model.structure import structure_for
 from bayeslong.workflow.results import slug
 
@@ -128,6 +131,14 @@ def add_measurement_section(doc, results, draw) -> None:
         f"{p}: {', '.join(map(str, g))}" for p, g in panel.indicators.items() if g != (p,))
         + ". Each is a latent variable per wave; its first listed indicator (or the one named "
         "by `marker`) sets its unit (loading 1) and its origin (intercept 0 at the first wave).")
+    if len(panel.outcomes) == 1:
+        doc.heading("The measurement alone: unlinked waves", 3)
+        doc.para("The same indicators in a model with a mean and a variance of its own at every "
+                 "wave and nothing linking the waves (waves-apart): every invariance level is "
+                 "identified there, so every level can be tested, free of any growth or lag "
+                 "structure.")
+        _comparison(doc, model("waves-apart"), "unlinked waves", panel,
+                    results.study.sampling["seed"])
     shown = False
     for m in results.models:
         spec = m.candidate.spec
@@ -139,30 +150,7 @@ def add_measurement_section(doc, results, draw) -> None:
             doc.table(measurement_frame(table), f"{m.label}: loadings, intercepts and unique "
                       f"variances by indicator and wave, {what}; invariance "
                       f"'{spec.measurement['invariance']}'")
-        try:
-            with warnings.catch_warnings(record=True) as caught:
-                warnings.simplefilter("always")
-                inv = compare_invariance(spec, panel, starts=2, seed=results.study.sampling["seed"])
-        except BayeslongError as err:
-            doc.para(f"Invariance levels not compared: {err}.", "note")
-            continue
-        cols = ["n_params", "loglik", "aic", "bic", "lr", "df", "p_value", "note"]
-        doc.table(inv[cols], f"{m.label}: invariance levels by maximum likelihood, each tested "
-                  "against the level before it")
-        doc.items(invariance_reading(inv))
-        said = list(dict.fromkeys(str(w.message) for w in caught))
-        if said:
-            doc.para("Maximum likelihood at some level warned (each warning once):", "warn")
-            doc.items(said, "warn")
-        if any(inv["note"].str.contains("did not converge")):
-            doc.para("A level's maximum-likelihood fit DID NOT CONVERGE: its row and the tests "
-                     "next to it are not trustworthy.", "bad")
-        lags = _lag_columns(inv)
-        if lags:
-            frame = inv[[c for name in lags for c in (name, f"{name} se")]].dropna(how="all")
-            doc.table(frame, f"{m.label}: the lag's maximum-likelihood estimate and standard "
-                      "error at each invariance level")
-            doc.items(lag_reading(inv))
+        _comparison(doc, spec, m.label, panel, results.study.sampling["seed"])
         if m.fit is not None and not shown:
             shown = True
             fit = m.fit
@@ -176,6 +164,34 @@ def add_measurement_section(doc, results, draw) -> None:
                  "/ loading at the posterior mean")
     doc.para("Reading the invariance tests:", "note")
     doc.items(READING, "note")
+
+
+def _comparison(doc, spec, label: str, panel, seed) -> None:
+    """The invariance comparison of one model, its reading, warnings and the lag by level."""
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            inv = compare_invariance(spec, panel, starts=2, seed=seed)
+    except BayeslongError as err:
+        doc.para(f"Invariance levels not compared: {err}.", "note")
+        return
+    cols = ["n_params", "loglik", "aic", "bic", "lr", "df", "p_value", "note"]
+    doc.table(inv[cols], f"{label}: invariance levels by maximum likelihood, each tested "
+              "against the level before it")
+    doc.items(invariance_reading(inv))
+    said = list(dict.fromkeys(str(w.message) for w in caught))
+    if said:
+        doc.para("Maximum likelihood at some level warned (each warning once):", "warn")
+        doc.items(said, "warn")
+    if any(inv["note"].str.contains("did not converge")):
+        doc.para("A level's maximum-likelihood fit DID NOT CONVERGE: its row and the tests "
+                 "next to it are not trustworthy.", "bad")
+    lags = _lag_columns(inv)
+    if lags:
+        frame = inv[[c for name in lags for c in (name, f"{name} se")]].dropna(how="all")
+        doc.table(frame, f"{label}: the lag's maximum-likelihood estimate and standard error "
+                  "at each invariance level")
+        doc.items(lag_reading(inv))
 
 
 def _table_of(m, panel):

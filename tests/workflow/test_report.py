@@ -467,6 +467,7 @@ def test_measurement_section_tables_and_readings(rendered_measurement):
     results, paths, page = rendered_measurement
     section = _section(page, "measurement")
     assert "calm_latent: calm, rested, focused" in section
+    assert "The measurement alone: unlinked waves" in section  # one process: tested free of structure
     parser = _Collector()
     parser.feed(section)
     text = " ".join(" ".join(parser.text).split())
