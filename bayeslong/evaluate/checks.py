@@ -284,7 +284,7 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
 
 
 def unit_positions(panel, units) -> list[int]:
-    """Row positions of unit labels in the panel (the first 12 units for None); names a stranger."""
+    """Row positions of unit labels in the panel (the first 12 for None); an unknown label is refused."""
     if units is None:
         return list(range(min(12, panel.n_units)))
     units = [units] if np.isscalar(units) else list(units)
