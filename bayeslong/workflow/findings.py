@@ -74,6 +74,11 @@ REFERENCES = {
             "Modeling, 243-277. Mahwah, NJ: Erlbaum.",
     "aic": "Akaike, H. (1974). A new look at the statistical model identification. IEEE "
            "Transactions on Automatic Control 19(6), 716-723. doi:10.1109/TAC.1974.1100705",
+    "invariance": "Meredith, W. (1993). Measurement invariance, factor analysis and factorial "
+                  "invariance. Psychometrika 58(4), 525-543. doi:10.1007/BF02294825",
+    "lr": "Wilks, S. S. (1938). The large-sample distribution of the likelihood ratio for testing "
+          "composite hypotheses. Annals of Mathematical Statistics 9(1), 60-62. "
+          "doi:10.1214/aoms/1177732360",
 }
 
 
@@ -330,6 +335,22 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
          + (f"; time-invariant covariates {', '.join(map(str, panel.time_invariant))}"
             if panel.time_invariant else "") + ")."]
     m.append(f"We compared {len(results.models)} candidate model(s): {labels}.")
+    if f.get("measured"):
+        levels = sorted({x.candidate.spec.measurement["invariance"] for x in results.models})
+        scales = {x.candidate.spec.measurement["scale"] for x in results.models}
+        scaled = {frozenset({"marker"}): "its marker indicator (loading 1, intercept 0 at the "
+                                         "first wave)",
+                  frozenset({"effects"}): "effects coding (loadings averaging 1, intercepts "
+                                          "summing to 0)"}.get(frozenset(scales),
+                                                               "its marker indicator or by "
+                                                               "effects coding, by model")
+        m.append("Each of " + "; ".join(f"{p} (indicators {', '.join(g)})"
+                                       for p, g in f["measured"].items())
+                 + f" was a latent variable at every wave, scaled by {scaled}, with "
+                 + " or ".join(levels)
+                 + " invariance over waves " + cite("invariance", "(Meredith 1993)")
+                 + "; the invariance levels were compared by maximum-likelihood ratio tests "
+                 + cite("lr", "(Wilks 1938)") + " with AIC and BIC beside them.")
     m.append("Missing outcomes entered through the full-information likelihood under missing at "
              "random " + cite("fiml", "(Arbuckle 1996)") + ", with covariates treated as fixed.")
     facts = _sampling_facts(results) if results.method == "bayes" else None

@@ -135,7 +135,8 @@ def add_measurement_section(doc, results, draw) -> None:
     doc.para("Processes measured by several indicators: " + "; ".join(
         f"{p}: {', '.join(map(str, g))}" for p, g in panel.indicators.items() if g != (p,))
         + ". Each is a latent variable per wave; its first listed indicator (or the one named "
-        "by `marker`) sets its unit (loading 1) and its origin (intercept 0 at the first wave).")
+        "by `marker`) sets its unit (loading 1) and its origin (intercept 0 at the first wave), "
+        "or with `scale = \"effects\"` the indicators' average does.")
     if len(panel.outcomes) == 1:
         doc.heading("The measurement alone: unlinked waves", 3)
         doc.para("The same indicators in a model with a mean and a variance of its own at every "

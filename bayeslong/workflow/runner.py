@@ -18,6 +18,7 @@ from typing import Callable
 
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.results import (
     ModelResult,
     Step,
@@ -26,7 +27,6 @@ from bayeslong.workflow.results import (
     slug,
     table_of,
 )
-from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.steps import saved_step, step_path, timed_step
 from bayeslong.workflow.study_file import (
     Candidate,

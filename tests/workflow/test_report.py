@@ -508,6 +508,10 @@ def test_measurement_section_tables_and_readings(rendered_measurement):
     findings = _section(page, "findings")
     assert "Latent outcomes: calm_latent measured by calm, rested, focused" in findings
     assert "at scalar invariance" in findings
+    methods = _section(page, "manuscript")
+    assert ("calm_latent (indicators calm, rested, focused) was a latent variable at every wave"
+            in methods)
+    assert "Meredith, W. (1993)" in methods and "Wilks, S. S. (1938)" in methods
 
 
 def test_no_measurement_section_without_indicators(rendered):
