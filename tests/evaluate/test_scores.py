@@ -23,7 +23,7 @@ import bayeslong as bl
 from bayeslong.errors import DataError
 from bayeslong.evaluate.checks import ppc, replicate, trajectories
 from bayeslong.evaluate.measurement import measurement_table, wave_measurement
-from bayeslong.evaluate.plots import plot_latent_scores, plot_ppc
+from bayeslong.evaluate.plots import plot_latent_scores, plot_ppc, plot_trajectories
 from bayeslong.evaluate.scores import latent_draws, latent_scores
 from bayeslong.infer.laplace import ApproxFit, approximate_fit
 from bayeslong.model.structure import build_structure, structure_for
@@ -194,6 +194,10 @@ def test_trajectories_with_indicators(approx):
     # both are the posterior of eta_t given the unit's data: means agree within the
     # posterior spread of 50 draws (tolerance: a fifth of the latent's posterior SD)
     np.testing.assert_allclose(latent["mean"], scores["mean"], atol=0.2 * scores["sd"].max())
+    # the outcome bands are drawn per indicator
+    fig = plot_trajectories(out)
+    legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert legend[::2] == [f"{item}: predicted" for item in ITEMS["reading"]]
 
 
 def test_plot_latent_scores_shows_latents_beside_their_indicators(approx, tmp_path):
