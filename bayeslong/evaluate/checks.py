@@ -103,6 +103,11 @@ def check_fit(fit, where: str, needs: tuple = _FIT_PARTS) -> None:
         )
 
 
+def observed_owners(panel) -> list[tuple]:
+    """``(process, observed variable)`` for each column of ``panel.y``, in its order."""
+    return [(process, name) for process, group in panel.indicators.items() for name in group]
+
+
 def _check_draws(draws, where: str) -> int:
     if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 2:
         raise DataError(f"`draws` in {where} must be an integer of at least 2; got {draws!r}.")
@@ -138,9 +143,10 @@ def replicate(fit, *, draws: int = 200, seed=0) -> np.ndarray:
 
     Returns
     -------
-    numpy.ndarray, shape (S, N, T, K)
-        Replicated outcomes in the layout of ``panel.y``; NaN exactly where the data are
-        missing; the data's covariates.
+    numpy.ndarray, shape (S, N, T, J)
+        Replicated outcomes in the layout of ``panel.y`` (J observed variables: the
+        processes, or the indicators of processes measured by several); NaN exactly where
+        the data are missing; the data's covariates.
 
     Notes
     -----
@@ -159,8 +165,8 @@ def replicate(fit, *, draws: int = 200, seed=0) -> np.ndarray:
     y = mean + np.einsum("syz,snz->sny", chol, noise)
     y = np.where(np.isnan(panel.outcome_matrix())[None], np.nan, y)
     S, N = y.shape[:2]
-    K, T = len(panel.outcomes), panel.n_waves
-    return y.reshape(S, N, K, T).transpose(0, 1, 3, 2)
+    J, T = len(panel.observed_names), panel.n_waves
+    return y.reshape(S, N, J, T).transpose(0, 1, 3, 2)
 
 
 def panel_statistics(y: np.ndarray) -> dict[str, np.ndarray]:
@@ -220,8 +226,10 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
     Returns
     -------
     pandas.DataFrame
-        One row per statistic, process and wave: ``statistic`` (mean, sd, lag1_cor, rising),
-        ``process``, ``wave`` (the data's wave label; for lag1_cor the later wave of the
+        One row per statistic, observed variable and wave: ``statistic`` (mean, sd,
+        lag1_cor, rising), ``process``, ``indicator`` (the observed variable: the process
+        itself when it is observed directly, else each of its indicators in turn), ``wave``
+        (the data's wave label; for lag1_cor the later wave of the
         pair; None for rising, which spans all waves), ``observed``, ``rep_mean``,
         ``rep_q05``, ``rep_q25``, ``rep_q75``, ``rep_q95`` (quantiles of the replicated
         statistic), ``p_value`` = P(T_rep >= T_obs) over replicates and ``flag`` (True when
@@ -251,7 +259,7 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
             labels = waves[1:]
         else:
             labels = waves
-        for k, process in enumerate(panel.outcomes):
+        for k, (process, name) in enumerate(observed_owners(panel)):
             for t, wave in enumerate(labels):
                 value, reps = float(o[t, k]), r[:, t, k]
                 reps = reps[np.isfinite(reps)]
@@ -259,7 +267,8 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
                     continue
                 q = np.quantile(reps, QUANTILES)
                 p = float(np.mean(reps >= value))
-                rows.append({"statistic": stat, "process": process, "wave": wave, "observed": value,
+                rows.append({"statistic": stat, "process": process, "indicator": name,
+                             "wave": wave, "observed": value,
                              "rep_mean": float(reps.mean()), "rep_q05": q[0], "rep_q25": q[1],
                              "rep_q75": q[3], "rep_q95": q[4], "p_value": p,
                              "flag": bool(p < 0.05 or p > 0.95)})
@@ -274,7 +283,8 @@ def ppc(fit, *, draws: int = 200, seed=0) -> pd.DataFrame:
 # --------------------------------------------------------------------------------------------
 
 
-def _unit_positions(panel, units) -> list[int]:
+def unit_positions(panel, units) -> list[int]:
+    """Row positions of unit labels in the panel (the first 12 for None); an unknown label is refused."""
     if units is None:
         return list(range(min(12, panel.n_units)))
     units = [units] if np.isscalar(units) else list(units)
@@ -289,6 +299,32 @@ def _unit_positions(panel, units) -> list[int]:
             )
         out.append(index[u])
     return out
+
+
+def latent_joint(structure, mom: dict, covariates: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Joint mean and covariance of (eta, y) per draw and unit, the etas in latent order.
+
+    Parameters
+    ----------
+    structure : Structure
+    mom : dict
+        From :func:`bayeslong.model.moments.moment_draws`.
+    covariates : numpy.ndarray, shape (n, W)
+
+    Returns
+    -------
+    mean : numpy.ndarray, shape (S, n, E + Y)
+        ``E[eta_t | w]`` of the E wave latents ``eta[k,t]`` (process-major, wave minor;
+        growth factors left out), then ``E[y | w]``.
+    cov : numpy.ndarray, shape (S, E + Y, E + Y)
+        ``[[Phi_ee, Phi_e. Lam'], [Lam Phi_.e, Sigma]]`` (:func:`bayeslong.moments.latent_moments`).
+    """
+    eta = np.array([i for i, name in enumerate(structure.latents) if name.startswith("eta")])
+    mean_eta = unit_means(mom, covariates, "latent")[:, :, eta]
+    mean = np.concatenate([mean_eta, unit_means(mom, covariates)], axis=2)
+    cross = mom["cross"][:, eta, :]
+    cov = np.block([[mom["Phi"][:, eta][:, :, eta], cross], [np.swapaxes(cross, 1, 2), mom["Sigma"]]])
+    return mean, cov
 
 
 def trajectories(fit, units=None, *, kind: str = "outcome", draws: int = 200, seed=0) -> pd.DataFrame:
@@ -316,9 +352,11 @@ def trajectories(fit, units=None, *, kind: str = "outcome", draws: int = 200, se
     Returns
     -------
     pandas.DataFrame
-        One row per unit, process and wave: ``unit``, ``process``, ``wave``, ``observed``
-        (NaN if missing), ``mean`` (the mixture mean) and quantiles ``q05``, ``q25``,
-        ``q50``, ``q75``, ``q95``.
+        One row per unit, observed variable (``outcome``) or process (``latent``) and wave:
+        ``unit``, ``process``, ``indicator`` (the observed variable; for ``latent`` the
+        process), ``wave``, ``observed`` (NaN if missing, and for the latent of a process
+        measured by several indicators), ``mean`` (the mixture mean) and quantiles
+        ``q05``, ``q25``, ``q50``, ``q75``, ``q95``.
 
     Notes
     -----
@@ -330,30 +368,34 @@ def trajectories(fit, units=None, *, kind: str = "outcome", draws: int = 200, se
         raise DataError(f"`kind` in trajectories must be 'outcome' or 'latent'; got {kind!r}.")
     draws = _check_draws(draws, "trajectories")
     panel, structure = fit.panel, fit.structure
-    positions = _unit_positions(panel, units)
+    positions = unit_positions(panel, units)
     rng = np.random.default_rng(seed)
     mom = moment_draws(structure, select_draws(fit, draws, rng))
     ys = panel.outcome_matrix()[positions]
     w = panel.covariate_matrix()[positions]
-    K, T = len(panel.outcomes), panel.n_waves
-    Y = K * T
-    wave_of = np.tile(np.arange(T), K)
+    T = panel.n_waves
+    owners = observed_owners(panel)
+    Y = len(owners) * T
     if kind == "latent":
-        eta = np.array([i for i, name in enumerate(structure.latents) if name.startswith("eta")])
-        mean_eta = unit_means(mom, w, "latent")[:, :, eta]  # (S, n, Y)
-        mean = np.concatenate([mean_eta, unit_means(mom, w)], axis=2)
-        cross = mom["cross"][:, eta, :]
-        cov = np.block([[mom["Phi"][:, eta][:, :, eta], cross],
-                        [np.swapaxes(cross, 1, 2), mom["Sigma"]]])
+        mean, cov = latent_joint(structure, mom, w)
+        n_eta = mean.shape[-1] - Y
+        wave_of = np.tile(np.arange(T), n_eta // T)
+        labels = [(process, process) for process in panel.outcomes]
+        # the latent is the observed score itself only for a process observed directly
+        column = [owners.index((p, p)) if panel.indicators[p] == (p,) else None
+                  for p in panel.outcomes]
     else:
         mean, cov = unit_means(mom, w), mom["Sigma"]
+        wave_of = np.tile(np.arange(T), len(owners))
+        labels = owners
+        column = list(range(len(owners)))
     rows = []
     for j, pos in enumerate(positions):
         seen = ~np.isnan(ys[j])
         for t in range(T):
             if kind == "latent":  # joint of (eta, y): eta_t given every observed y
                 target = np.r_[wave_of == t, np.zeros(Y, bool)]
-                given = np.r_[np.zeros(Y, bool), seen]
+                given = np.r_[np.zeros(n_eta, bool), seen]
                 values = ys[j][seen]
             else:  # y_t given the observed entries of the other waves
                 target = wave_of == t
@@ -362,11 +404,12 @@ def trajectories(fit, units=None, *, kind: str = "outcome", draws: int = 200, se
             keep = target | given
             m, c = conditional_normal(mean[:, j][:, keep], cov[:, keep][:, :, keep], given[keep], values)
             sd = np.sqrt(np.clip(np.diagonal(c, axis1=-2, axis2=-1), 0.0, None))
-            sample = m + sd * rng.standard_normal(m.shape)  # (S, K): marginals per process
+            sample = m + sd * rng.standard_normal(m.shape)  # (S, K): marginals per variable
             q = np.quantile(sample, QUANTILES, axis=0)
-            for k in range(K):
-                rows.append({"unit": panel.units[pos], "process": panel.outcomes[k],
-                             "wave": panel.waves[t], "observed": ys[j][k * T + t],
+            for k, (process, name) in enumerate(labels):
+                observed = np.nan if column[k] is None else ys[j][column[k] * T + t]
+                rows.append({"unit": panel.units[pos], "process": process, "indicator": name,
+                             "wave": panel.waves[t], "observed": observed,
                              "mean": float(m[:, k].mean()), "q05": q[0, k], "q25": q[1, k],
                              "q50": q[2, k], "q75": q[3, k], "q95": q[4, k]})
     table = pd.DataFrame(rows)

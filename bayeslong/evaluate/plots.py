@@ -52,7 +52,8 @@ def plot_ppc(fit_or_table, *, statistics=("mean", "sd"), draws: int = 200, seed=
     Returns
     -------
     matplotlib.figure.Figure
-        One row per process, one column per statistic; flagged statistics
+        One row per observed variable (a process, or each indicator of a process measured
+        by several), one column per statistic; flagged statistics
         (p < 0.05 or > 0.95) are drawn as red points.
     """
     from bayeslong.evaluate.checks import ppc
@@ -64,13 +65,14 @@ def plot_ppc(fit_or_table, *, statistics=("mean", "sd"), draws: int = 200, seed=
     unknown = [s for s in statistics if s not in _STAT_LABEL]
     if unknown:
         raise DataError(f"plot_ppc: unknown statistic {unknown[0]!r}; choose from mean, sd, lag1_cor.")
-    processes = list(dict.fromkeys(table["process"]))
-    fig = _figure(3.6 * len(statistics), 2.9 * len(processes))
-    axes = fig.subplots(len(processes), len(statistics), squeeze=False)
-    for r, proc in enumerate(processes):
+    key = "indicator" if "indicator" in table.columns else "process"
+    variables = list(dict.fromkeys(zip(table["process"], table[key])))
+    fig = _figure(3.6 * len(statistics), 2.9 * len(variables))
+    axes = fig.subplots(len(variables), len(statistics), squeeze=False)
+    for r, (owner, proc) in enumerate(variables):
         for c, stat in enumerate(statistics):
             ax = axes[r][c]
-            t = table[(table["statistic"] == stat) & (table["process"] == proc)]
+            t = table[(table["statistic"] == stat) & (table[key] == proc)]
             x = np.arange(len(t))
             ax.fill_between(x, t["rep_q05"], t["rep_q95"], color=_BAND90, label="replicated 90%")
             ax.fill_between(x, t["rep_q25"], t["rep_q75"], color=_BAND50, label="replicated 50%")
@@ -82,7 +84,8 @@ def plot_ppc(fit_or_table, *, statistics=("mean", "sd"), draws: int = 200, seed=
                            label="observed, p < 0.05 or > 0.95")
             ax.set_xticks(x, [str(w) for w in t["wave"]])
             ax.set_xlabel("wave" if stat != "lag1_cor" else "wave t")
-            ax.set_ylabel(f"{proc}: {_STAT_LABEL[stat]}")
+            ax.set_ylabel(f"{proc}: {_STAT_LABEL[stat]}" if owner == proc
+                          else f"{owner} / {proc}:\n{_STAT_LABEL[stat]}")
             if r == 0 and c == 0:
                 ax.legend(fontsize=7, loc="best")
     model = table.attrs.get("model")
@@ -129,11 +132,12 @@ def plot_trajectories(fit_or_table, units=None, *, kind: str = "outcome", max_un
     axes = fig.subplots(rows, cols, squeeze=False, sharey=True)
     for ax in axes.ravel()[len(shown):]:
         ax.set_visible(False)
-    processes = list(dict.fromkeys(table["process"]))
+    key = "indicator" if "indicator" in table.columns else "process"
+    processes = list(dict.fromkeys(table[key]))
     colours = [_LINE, "#8a5a2b", "#3f7f3f"]
     for ax, unit in zip(axes.ravel(), shown):
         for k, proc in enumerate(processes):
-            t = table[(table["unit"] == unit) & (table["process"] == proc)]
+            t = table[(table["unit"] == unit) & (table[key] == proc)]
             x = np.arange(len(t))
             col = colours[k % len(colours)]
             ax.fill_between(x, t["q05"], t["q95"], color=col, alpha=0.18, lw=0)
@@ -185,5 +189,80 @@ def plot_compare(table: pd.DataFrame):
     right.axvline(0.0, color="grey", lw=0.8, ls="--")
     right.set_xlabel("difference from the best, +-2 SE of the difference")
     fig.suptitle("Expected log predictive density of a new unit's trajectory (higher is better)",
+                 fontsize=10)
+    return fig
+
+
+def plot_latent_scores(fit, units=None, *, max_units: int = 6, draws: int = 200, seed=0):
+    """Plot units' latent trajectories (posterior mean and interval) beside their indicators.
+
+    Parameters
+    ----------
+    fit : Fit
+        A fit from :func:`bayeslong.fit` (the indicators are read from its panel).
+    units : sequence of labels, optional
+        Units to show (the first ``max_units`` by default).
+    max_units : int, default 6
+    draws, seed : passed to :func:`bayeslong.evaluate.scores.latent_scores`.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One panel per unit and process: the latent's posterior mean (line) and 90% interval
+        (band) from :func:`~bayeslong.evaluate.scores.latent_scores`, and each indicator put
+        on the marker's scale, (y - intercept) / loading at the posterior mean of the
+        parameters, which is what that indicator alone says about the latent (points; one
+        marker shape per indicator). A process observed directly shows its observed values.
+    """
+    from bayeslong.evaluate.checks import check_fit, observed_owners
+    from bayeslong.evaluate.scores import latent_scores
+    from bayeslong.model.moments import NUMPY, model_matrices
+
+    check_fit(fit, "plot_latent_scores")
+    panel = fit.panel
+    if units is None:
+        units = list(panel.units[:max_units])
+    units = list(units)[:max_units]
+    table = latent_scores(fit, units, draws=draws, seed=seed)
+    m = model_matrices(fit.structure, np.asarray(fit.theta_draws()).mean(axis=0), NUMPY)
+    T = panel.n_waves
+    eta = [i for i, name in enumerate(fit.structure.latents) if name.startswith("eta")]
+    lam, nu = m["Lam"][:, eta], m["nu"]
+    processes = list(panel.outcomes)
+    index = {u: i for i, u in enumerate(panel.units)}
+    cells = [(u, p) for u in units for p in processes]
+    cols = min(3, len(cells))
+    rows = math.ceil(len(cells) / cols)
+    fig = _figure(3.4 * cols, 2.6 * rows + 0.6)
+    axes = fig.subplots(rows, cols, squeeze=False)
+    for ax in axes.ravel()[len(cells):]:
+        ax.set_visible(False)
+    shapes = ["o", "s", "^", "D", "v", "P"]
+    x = np.arange(T)
+    level = table.attrs.get("interval", 0.9)
+    for ax, (unit, process) in zip(axes.ravel(), cells):
+        k = processes.index(process)
+        t = table[(table["unit"] == unit) & (table["process"] == process)]
+        ax.fill_between(x, t["lower"], t["upper"], color=_BAND90, lw=0,
+                        label=f"{process} (latent), {level:.0%} interval")
+        ax.plot(x, t["mean"], color=_LINE, lw=1.4, label=f"{process} (latent), posterior mean")
+        j_shape = 0
+        for j, (owner, name) in enumerate(observed_owners(panel)):
+            if owner != process:
+                continue
+            rows_y = [j * T + w for w in range(T)]
+            loading = lam[rows_y, k * T + x]
+            y = panel.y[index[unit], :, j]
+            on_scale = (y - nu[rows_y]) / np.where(loading == 0, np.nan, loading)
+            label = name if panel.indicators[process] == (process,) else f"{name} (on the marker's scale)"
+            ax.scatter(x, on_scale, s=16, zorder=3, marker=shapes[j_shape % len(shapes)],
+                       color="black", facecolors="none" if j_shape else "black", label=label)
+            j_shape += 1
+        ax.set_xticks(x, [str(w) for w in panel.waves], fontsize=7)
+        ax.set_title(f"unit {unit}: {process}", fontsize=9)
+        ax.set_xlabel("wave")
+    axes[0][0].legend(fontsize=6, loc="best")
+    model = table.attrs.get("model")
+    fig.suptitle("Latent trajectories given each unit's indicators" + (f": {model}" if model else ""),
                  fontsize=10)
     return fig

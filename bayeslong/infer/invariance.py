@@ -34,6 +34,7 @@ from bayeslong.errors import SpecError
 from bayeslong.infer.ml import fit_ml
 from bayeslong.model.identification import identify
 from bayeslong.model.spec import INVARIANCE_LEVELS, check_spec
+from bayeslong.model.structure import structure_for
 
 
 def compare_invariance(spec, panel, *, levels=INVARIANCE_LEVELS, starts: int = 4,
@@ -61,6 +62,10 @@ def compare_invariance(spec, panel, *, levels=INVARIANCE_LEVELS, starts: int = 4
         names the parameters of a level that is not identified with this model's
         structural part (its other columns are then empty; below scalar invariance a model
         with growth means is such a case: compare the levels with ``waves-apart`` first).
+        A level whose maximum sits on the boundary (a variance at zero) says so in ``note``
+        and names the parameters. Then, for a model with lags, each lag parameter's ML estimate at that level and its
+        standard error (columns ``lag`` and ``lag se``, ``lag[y<-x]`` and ``lag[y<-x] se``
+        ...): how the lag moves with the measurement assumptions.
 
     Raises
     ------
@@ -87,8 +92,15 @@ def compare_invariance(spec, panel, *, levels=INVARIANCE_LEVELS, starts: int = 4
             continue
         fit = fit_ml(s, panel, starts=starts, seed=seed, check=False)
         row.update(n_params=fit.n_params, loglik=fit.loglik, aic=fit.aic, bic=fit.bic)
+        structure = structure_for(s, panel)
+        kinds = dict(zip(structure.names, structure.kinds))
+        for name in (n for n in fit.params.index if kinds.get(n) == "lag"):
+            row[name], row[f"{name} se"] = float(fit.params[name]), float(fit.se[name])
         if not fit.converged:
             row["note"] = "did not converge"
+        if fit.boundary:
+            row["note"] = "; ".join(filter(None, [row["note"], "on the boundary (no valid SE): "
+                                                  + ", ".join(fit.boundary)]))
         if previous is not None:
             lr = 2.0 * (previous.loglik - fit.loglik)
             df = previous.n_params - fit.n_params

@@ -165,7 +165,8 @@ def _panel_labels(panel) -> dict:
 
     return {"units": [plain(u) for u in panel.units], "waves": [plain(w) for w in panel.waves],
             "outcomes": list(panel.outcomes), "time_varying": list(panel.time_varying),
-            "time_invariant": list(panel.time_invariant)}
+            "time_invariant": list(panel.time_invariant),
+            "indicators": {k: list(v) for k, v in panel.indicators.items()}}
 
 
 def load_fit(path) -> Fit:
@@ -201,7 +202,9 @@ def load_fit(path) -> Fit:
     spec = Spec.from_dict(json.loads(attrs["bayeslong_spec"]))
     labels = json.loads(attrs["bayeslong_panel"])
     obs = idata.observed_data
-    y = np.stack([obs[name].values for name in labels["outcomes"]], axis=-1)
+    # processes measured by several indicators keep them (files from before store none)
+    indicators = labels.get("indicators") or {k: [k] for k in labels["outcomes"]}
+    y = np.stack([obs[name].values for group in indicators.values() for name in group], axis=-1)
     const = idata.constant_data if "constant_data" in idata.groups() else None
     n, t = y.shape[:2]
     x = (np.stack([const[name].values for name in labels["time_varying"]], axis=-1)
@@ -210,7 +213,8 @@ def load_fit(path) -> Fit:
          if labels["time_invariant"] else np.empty((n, 0)))
     panel = Panel(units=tuple(labels["units"]), waves=tuple(labels["waves"]),
                   outcomes=tuple(labels["outcomes"]), time_varying=tuple(labels["time_varying"]),
-                  time_invariant=tuple(labels["time_invariant"]), y=y, x=x, z=z)
+                  time_invariant=tuple(labels["time_invariant"]), y=y, x=x, z=z,
+                  indicators={k: tuple(v) for k, v in indicators.items()})
     structure = structure_for(spec, panel)
     user = {k: tuple(v) for k, v in json.loads(attrs["bayeslong_priors"]).items()}
     table = json.loads(attrs["bayeslong_prior_table"])
@@ -606,7 +610,7 @@ def _tidy(raw, structure: Structure, panel, prior_set) -> object:
     units = list(panel.units)
     loglik = xr.Dataset({"y": (("chain", "draw", UNIT), ll)},
                         coords={"chain": post.chain.values, "draw": post.draw.values, UNIT: units})
-    return inference_data(raw, post, loglik, panel, panel.outcomes)
+    return inference_data(raw, post, loglik, panel, panel.observed_names)
 
 
 def inference_data(raw, post, loglik, panel, observed_names):

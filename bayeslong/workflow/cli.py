@@ -9,7 +9,7 @@ Commands
 ``bayeslong report STUDY``           re-render the report from the saved fits
 ``bayeslong simulate MODEL``         simulate a panel from a model and parameter values to CSV
 ``bayeslong plan MODEL``             how well would the lag be recovered at given N and T?
-``bayeslong demo``                   the worked example end to end, into ./bayeslong-demo/
+``bayeslong demo``                   the two worked examples end to end, into ./bayeslong-demo/
 
 Exit codes: 0 success; 1 a user error (bad study file, data or option), printed as one
 line ``error: ...`` on stderr (``--debug`` shows the traceback); 2 wrong usage of the
@@ -37,10 +37,11 @@ __all__ = ["main"]
 #: Exit codes.
 OK, USER_ERROR, USAGE = 0, 1, 2
 
-#: Where ``bayeslong demo`` writes by default, and the worked example's files.
+#: Where ``bayeslong demo`` writes by default, and the worked examples' files (study, data):
+#: one observed score per wave, and a latent measured by three indicators.
 DEMO_FOLDER = "bayeslong-demo"
-EXAMPLE_STUDY = "shift_sleep.toml"
-EXAMPLE_DATA = "shift_sleep.csv"
+EXAMPLES = (("shift_sleep.toml", "shift_sleep.csv"),
+            ("reading_motivation.toml", "reading_motivation.csv"))
 
 
 def _say(message: str) -> None:
@@ -167,7 +168,7 @@ def cmd_identify(args) -> int:
     return OK
 
 
-def _run(args, *, fit: bool) -> int:
+def _run(args, *, fit: bool, collect: list | None = None) -> int:
     from bayeslong.workflow.findings import study_findings
     from bayeslong.workflow.progress import ProgressReporter
     from bayeslong.workflow.report import write_report
@@ -190,9 +191,11 @@ def _run(args, *, fit: bool) -> int:
     summary["report"] = {k: str(v) for k, v in paths.items()}
     summary["stages"].append({"step": "report", "seconds": round(report_s, 1), "detail": ""})
     summary["findings"] = findings = study_findings(results)
-    if args.json:
+    if collect is not None:  # the caller prints all summaries as one JSON document
+        collect.append(summary)
+    elif args.json:
         _print_json(summary)
-    else:
+    if not args.json:
         _say("[bayeslong] time by step: " + "; ".join(
             f"{s['step']} {s['seconds']:.0f} s" + (f" ({s['detail']})" if s["detail"] else "")
             for s in summary["stages"]))
@@ -339,13 +342,14 @@ def cmd_plan(args) -> int:
 
 
 def _example_folder() -> Path:
-    """The repository's ``examples/`` folder (the worked example ships there)."""
+    """The repository's ``examples/`` folder (the worked examples ship there)."""
     here = Path(__file__).resolve().parents[2] / "examples"
-    if (here / EXAMPLE_STUDY).is_file() and (here / EXAMPLE_DATA).is_file():
+    names = [name for pair in EXAMPLES for name in pair]
+    if all((here / name).is_file() for name in names):
         return here
     from bayeslong.errors import SpecError
 
-    raise SpecError(f"the worked example ({EXAMPLE_STUDY}, {EXAMPLE_DATA}) is not next to this "
+    raise SpecError(f"the worked examples ({', '.join(names)}) are not next to this "
                     f"installation (looked in {here}); run `bayeslong demo` from a clone of the "
                     "repository, or copy the examples/ folder there")
 
@@ -354,16 +358,23 @@ def cmd_demo(args) -> int:
     source = _example_folder()
     folder = Path(args.folder)
     folder.mkdir(parents=True, exist_ok=True)
-    for name in (EXAMPLE_STUDY, EXAMPLE_DATA):
-        shutil.copy2(source / name, folder / name)
-    _say(f"[bayeslong] demo: copied the worked example (invented data) to {folder.resolve()}")
-    t0 = time.perf_counter()
-    args.study = str(folder / EXAMPLE_STUDY)
-    code = _run(args, fit=True)
+    for pair in EXAMPLES:
+        for name in pair:
+            shutil.copy2(source / name, folder / name)
+    _say(f"[bayeslong] demo: copied the worked examples (invented data) to {folder.resolve()}")
     from bayeslong.workflow.study_file import load_study
 
-    report = load_study(args.study).output / "report.html"
-    _say(f"[bayeslong] demo finished in {time.perf_counter() - t0:.0f} s; open {report}")
+    t0 = time.perf_counter()
+    code, reports, summaries = OK, [], []
+    for i, (name, _) in enumerate(EXAMPLES, start=1):
+        _say(f"[bayeslong] demo {i} of {len(EXAMPLES)}: {name}")
+        args.study = str(folder / name)
+        code = max(code, _run(args, fit=True, collect=summaries if args.json else None))
+        reports.append(str(load_study(args.study).output / "report.html"))
+    if args.json:
+        _print_json(summaries)
+    _say(f"[bayeslong] demo finished in {time.perf_counter() - t0:.0f} s; open "
+         + " and ".join(reports))
     return code
 
 
@@ -431,7 +442,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=0, help="random seed")
     p.add_argument("--ml", action="store_true", help="maximum likelihood instead of sampling (fast)")
 
-    p = add("demo", cmd_demo, "run the worked example end to end into ./bayeslong-demo/",
+    p = add("demo", cmd_demo, "run the two worked examples end to end into ./bayeslong-demo/",
             json_=True, quiet=True)
     p.add_argument("--folder", default=DEMO_FOLDER, help=f"where to write (default ./{DEMO_FOLDER})")
     return parser

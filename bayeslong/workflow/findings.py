@@ -74,6 +74,11 @@ REFERENCES = {
             "Modeling, 243-277. Mahwah, NJ: Erlbaum.",
     "aic": "Akaike, H. (1974). A new look at the statistical model identification. IEEE "
            "Transactions on Automatic Control 19(6), 716-723. doi:10.1109/TAC.1974.1100705",
+    "invariance": "Meredith, W. (1993). Measurement invariance, factor analysis and factorial "
+                  "invariance. Psychometrika 58(4), 525-543. doi:10.1007/BF02294825",
+    "lr": "Wilks, S. S. (1938). The large-sample distribution of the likelihood ratio for testing "
+          "composite hypotheses. Annals of Mathematical Statistics 9(1), 60-62. "
+          "doi:10.1214/aoms/1177732360",
 }
 
 
@@ -190,6 +195,7 @@ def study_findings(results) -> dict:
     difference, SE of the difference and whether it is clear; None when not run),
     ``best_aic`` (maximum-likelihood runs), ``lag`` (model, parameter, mean, low, high),
     ``lag_range`` (over the sensitivity settings), ``flagged`` (model -> problems),
+    ``measured`` (process -> indicators, for processes measured by several),
     ``caution`` and ``text`` (the sentences, in reading order).
     """
     comp = table_of(results.comparison.value) if results.comparison.ran else None
@@ -226,6 +232,16 @@ def study_findings(results) -> dict:
         text.append(_lag_text(lag, leader))
     else:
         text.append("No fitted candidate has a constant lag to report.")
+    measured = {str(p): [str(n) for n in g] for p, g in results.panel.indicators.items()
+                if g != (p,)}
+    if measured:
+        level = by_label[lag["model"]].candidate.spec.measurement["invariance"] if lag else None
+        text.append("Latent outcomes: " + "; ".join(f"{p} measured by {', '.join(g)}"
+                                                   for p, g in measured.items())
+                    + (f". The lag is the latent's, at {level} invariance" if level else "")
+                    + ". The Measurement section tests the invariance levels by maximum "
+                    "likelihood and shows the lag at each level (ML tests beside the posterior, "
+                    "not part of it).")
     spread = _sensitivity_range(results.sensitivity)
     if spread is not None:
         line = (f"Over the {spread['settings']} sensitivity settings ({', '.join(spread['axes'])}; "
@@ -258,7 +274,7 @@ def study_findings(results) -> dict:
         text.append("No fit is flagged: every fit passed the convergence checks.")
     return {"best_loo": best_loo, "best_lfo": best_lfo, "best_aic": best_aic, "lag": lag,
             "lag_range": spread, "flagged": flagged, "lfo_flagged": lfo_problems,
-            "no_posterior": failed, "caution": CAUTION, "text": text}
+            "no_posterior": failed, "measured": measured, "caution": CAUTION, "text": text}
 
 
 # --------------------------------------------------------------------------------------------
@@ -320,6 +336,22 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
          + (f"; time-invariant covariates {', '.join(map(str, panel.time_invariant))}"
             if panel.time_invariant else "") + ")."]
     m.append(f"We compared {len(results.models)} candidate model(s): {labels}.")
+    if f.get("measured"):
+        levels = sorted({x.candidate.spec.measurement["invariance"] for x in results.models})
+        scales = {x.candidate.spec.measurement["scale"] for x in results.models}
+        scaled = {frozenset({"marker"}): "its marker indicator (loading 1, intercept 0 at the "
+                                         "first wave)",
+                  frozenset({"effects"}): "effects coding (loadings averaging 1, intercepts "
+                                          "summing to 0)"}.get(frozenset(scales),
+                                                               "its marker indicator or by "
+                                                               "effects coding, by model")
+        m.append("Each of " + "; ".join(f"{p} (indicators {', '.join(g)})"
+                                       for p, g in f["measured"].items())
+                 + f" was a latent variable at every wave, scaled by {scaled}, with "
+                 + " or ".join(levels)
+                 + " invariance over waves " + cite("invariance", "(Meredith 1993)")
+                 + "; the invariance levels were compared by maximum-likelihood ratio tests "
+                 + cite("lr", "(Wilks 1938)") + " with AIC and BIC beside them.")
     m.append("Missing outcomes entered through the full-information likelihood under missing at "
              "random " + cite("fiml", "(Arbuckle 1996)") + ", with covariates treated as fixed.")
     facts = _sampling_facts(results) if results.method == "bayes" else None

@@ -24,6 +24,7 @@ from typing import Any
 
 from bayeslong.evaluate.comparison import LFO_COLUMNS
 from bayeslong.workflow.findings import add_findings, add_manuscript_text
+from bayeslong.workflow.measurement_section import add_measurement_section
 from bayeslong.workflow.results import slug, table_of
 
 __all__ = ["write_report"]
@@ -223,11 +224,13 @@ def _figure_data(panel):
     import matplotlib.pyplot as plt
     import numpy as np
 
-    k = len(panel.outcomes)
-    fig, axes = plt.subplots(1, k, figsize=(6.2 * k, 3.6), squeeze=False)
+    names = [name if group == (p,) else f"{p} / {name}"  # each indicator of a latent process
+             for p, group in panel.indicators.items() for name in group]
+    k = len(names)
+    fig, axes = plt.subplots(1, k, figsize=(min(6.2, 16.0 / k) * k, 3.6), squeeze=False)
     x = np.arange(1, panel.n_waves + 1)
     shown = min(panel.n_units, 60)
-    for j, (ax, name) in enumerate(zip(axes[0], panel.outcomes)):
+    for j, (ax, name) in enumerate(zip(axes[0], names)):
         y = panel.y[:, :, j]
         for i in range(shown):
             ax.plot(x, y[i], color="#7f9bb5", lw=0.7, alpha=0.6, marker=".", ms=2)
@@ -671,6 +674,8 @@ def write_report(results, folder) -> dict[str, Path]:
     banners for non-convergence, and the caution; :mod:`bayeslong.workflow.findings`),
     what was run (banners for unidentified models and a maximum-likelihood fallback), data
     and missingness, each candidate (spec, priors, posterior summary, diagnostics), the
+    measurement part when a process has several indicators (by wave, invariance levels by
+    ML, the lag across levels, latent scores; :mod:`bayeslong.workflow.measurement_section`), the
     comparison with a plain-language reading, posterior predictive checks, lag
     sensitivity, a methods and a results paragraph for a manuscript, identification,
     software versions and seeds, and a caution. A step that did not run says so and why.
@@ -684,6 +689,7 @@ def write_report(results, folder) -> dict[str, Path]:
     _section_header(doc, results)
     _section_data(doc, results)
     _section_models(doc, results)
+    add_measurement_section(doc, results, _draw)
     _section_comparison(doc, results)
     _section_checks(doc, results)
     _section_sensitivity(doc, results)

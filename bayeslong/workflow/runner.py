@@ -18,6 +18,7 @@ from typing import Callable
 
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.results import (
     ModelResult,
     Step,
@@ -26,7 +27,6 @@ from bayeslong.workflow.results import (
     slug,
     table_of,
 )
-from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.steps import saved_step, step_path, timed_step
 from bayeslong.workflow.study_file import (
     Candidate,
@@ -370,12 +370,12 @@ def _fit_failed(err: Exception, cand, notes: list, say, strict: bool) -> None:
     say(f"{cand.label}: Bayesian fit FAILED ({type(err).__name__}: {err})")
 
 
-def _say_problems(cand, bayes, say) -> None:
-    """Say a fit's convergence problems loudly (the report shows them in red)."""
-    if bayes is not None:
-        problems = tuple(convergence_problems(bayes))
-        if problems:
-            say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+def _say_problems(cand, bayes, say) -> tuple[str, ...]:
+    """Say a fit's convergence problems loudly and return them (the report shows them in red)."""
+    problems = () if bayes is None else tuple(convergence_problems(bayes))
+    if problems:
+        say(f"{cand.label}: CONVERGENCE PROBLEMS: " + "; ".join(problems))
+    return problems
 
 
 def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_sampler,
@@ -424,7 +424,7 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                 + (f" ({detail})" if detail else ""))
         except Exception as err:  # an internal failure of one fit must not lose the others
             _fit_failed(err, cand, notes, say, strict)
-        _say_problems(cand, bayes, say)
+        problems = _say_problems(cand, bayes, say)
     elif fit_module is not None:
         path = fits_dir / f"{stem}.nc"
         if path.exists():
@@ -461,7 +461,7 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                     + (f" ({detail})" if detail else ""))
             except Exception as err:  # an internal failure of one fit must not lose the others
                 _fit_failed(err, cand, notes, say, strict)
-        _say_problems(cand, bayes, say)
+        problems = _say_problems(cand, bayes, say)
     seconds = time.perf_counter() - t0
     if job is not None and bayes is not None:
         seconds = done["seconds"]  # the worker's time; this process only waited for it

@@ -90,6 +90,19 @@ def test_compare_invariance_names_levels_a_growth_model_cannot_identify(alt_pane
         2 * (table.loc["scalar", "loglik"] - table.loc["strict", "loglik"]))
 
 
+def test_compare_invariance_shows_the_lag_at_each_level(alt_panel):
+    # reference: the same model fitted by bl.fit_ml at each level on its own
+    _, panel = alt_panel
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = bl.compare_invariance(bl.model("alt"), panel, levels=("scalar", "strict"))
+        for level in ("scalar", "strict"):
+            ml = bl.fit_ml(bl.model("alt", invariance=level), panel)
+            # two runs of the same optimiser to its convergence criterion: agreement to 1e-5
+            assert table.loc[level, "lag"] == pytest.approx(ml.params["lag"], abs=1e-5)
+            assert table.loc[level, "lag se"] == pytest.approx(ml.se["lag"], abs=1e-5)
+
+
 def test_compare_invariance_needs_indicators(sleep_panel):
     with pytest.raises(SpecError, match="compare_invariance needs a process measured by several "
                                         "indicators"):

@@ -201,23 +201,48 @@ def test_plan_of_a_model_without_lag_is_a_user_error(capsys):
     assert err.startswith("error: model 'linear-growth' has no constant lag")
 
 
-def test_demo_copies_the_example_and_runs_it(tmp_path, monkeypatch, capsys):
+def test_demo_copies_the_examples_and_runs_both(tmp_path, monkeypatch, capsys):
     import bayeslong.workflow.cli as cli
 
-    seen = {}
+    seen = []
 
-    def fake_run(args, *, fit):  # the real run is exercised above; here only the wiring
-        seen["study"], seen["fit"] = args.study, fit
+    def fake_run(args, *, fit, collect=None):  # the real run is exercised above; here the wiring
+        seen.append((args.study, fit))
+        if collect is not None:
+            collect.append({"study": args.study})
         return 0
 
     monkeypatch.setattr(cli, "_run", fake_run)
     folder = tmp_path / "demo"
     assert main(["demo", "--folder", str(folder), "--quiet"]) == 0
     example = Path(cli.__file__).resolve().parents[2] / "examples"
-    for name in ("shift_sleep.toml", "shift_sleep.csv"):
+    for name in ("shift_sleep.toml", "shift_sleep.csv", "reading_motivation.toml",
+                 "reading_motivation.csv"):
         assert (folder / name).read_bytes() == (example / name).read_bytes()
-    assert seen == {"study": str(folder / "shift_sleep.toml"), "fit": True}
-    assert "invented data" in capsys.readouterr().err
+    assert seen == [(str(folder / "shift_sleep.toml"), True),
+                    (str(folder / "reading_motivation.toml"), True)]
+    err = capsys.readouterr().err
+    assert "invented data" in err and "demo 2 of 2: reading_motivation.toml" in err
+    # --json: one document listing both runs' summaries
+    assert main(["demo", "--folder", str(folder), "--quiet", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert [s["study"] for s in out] == [str(folder / "shift_sleep.toml"),
+                                         str(folder / "reading_motivation.toml")]
+
+
+def test_reading_motivation_example_loads_with_its_indicators():
+    # reference: the CSV read by pandas (the indicator columns named in the study file)
+    from bayeslong.workflow.study_file import load_study
+
+    example = Path(__file__).resolve().parents[2] / "examples"
+    study = load_study(example / "reading_motivation.toml")
+    panel = study.panel()
+    assert dict(panel.indicators) == {"motivation": ("enjoys", "chooses", "persists")}
+    df = pd.read_csv(example / "reading_motivation.csv")
+    assert panel.n_units == df["pupil"].nunique() and panel.n_waves == df["term"].nunique()
+    np.testing.assert_allclose(np.nanmean(panel.y, axis=0),
+                               df.groupby("term")[["enjoys", "chooses", "persists"]].mean())
+    assert "invented" in study.title
 
 
 def test_check_data_lists_intake_warnings(tmp_path, capsys):

@@ -5,6 +5,7 @@ HTML is parsed with the standard library's ``html.parser`` (an outside reference
 opened in headless Chromium when it is installed.
 """
 
+import dataclasses
 import html
 import os
 import subprocess
@@ -14,8 +15,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
-from bayeslong.workflow.report import _loo_reading, write_report
+import bayeslong as bl
+from bayeslong.workflow.report import _figure_data, _loo_reading, write_report
 from bayeslong.workflow.results import ModelResult, Step, StudyResults
 from bayeslong.workflow.study_file import load_study, software_versions
 
@@ -386,3 +389,142 @@ def test_leave_future_out_problems_and_time_spent_are_reported(tmp_path):
     assert "leave-future-out refit of b: compile 9 s" in text
     md = paths["markdown"].read_text(encoding="utf-8")
     assert "| comparison | 12.5 | leave-future-out refit of b: compile 9 s |" in md
+
+
+# --------------------------------------------------------------------------------------------
+# the measurement section of a study with indicators
+# --------------------------------------------------------------------------------------------
+
+DRIFT_ITEMS = ["calm", "rested", "focused"]
+
+
+def _indicator_results(folder: Path):
+    """A study of one latent measured by three indicators, simulated with a fixed seed: the
+    loadings are equal over waves but the intercept of 'focused' rises by 0.4 a wave
+    (metric invariance holds, scalar does not). ML fits; a normal-approximation posterior of
+    the lag model stands in for the Bayesian fit (for the latent-score figure)."""
+    from bayeslong.infer.laplace import approximate_fit
+    from bayeslong.model.structure import build_structure
+    from bayeslong.workflow.runner import run_study
+
+    spec = bl.model("ar", invariance="metric", unique_covariance="none")
+    names = build_structure(spec, outcomes=("calm_latent",), n_waves=4,
+                            indicators={"calm_latent": tuple(DRIFT_ITEMS)}).names
+    values = {"intercept": 1.0, "lag": 0.5, "initial_mean": 2.0, "initial_var": 1.0,
+              "resid_var": 0.6, "loading[rested]": 0.8, "loading[focused]": 1.1}
+    params = {}
+    for name in names:
+        if name in values:
+            params[name] = values[name]
+        elif name.startswith("intercept[focused,"):
+            params[name] = 0.4 * (int(name[-2]) - 1)  # drifts: 0, 0.4, 0.8, 1.2
+        elif name.startswith("intercept["):
+            params[name] = 0.0 if name.startswith("intercept[calm,") else 0.5
+        else:
+            params[name] = 0.4  # unique variances
+    df = bl.simulate(spec, params, 300, 4, seed=11, outcomes=["calm_latent"],
+                     indicators={"calm_latent": DRIFT_ITEMS})
+    df.to_csv(folder / "calm.csv", index=False)
+    (folder / "calm.toml").write_text(f"""
+title = "calm (invented)"
+[data]
+path = "calm.csv"
+unit = "unit"
+wave = "wave"
+outcomes = {{ calm_latent = {DRIFT_ITEMS!r} }}
+[[models]]
+model = "ar"
+label = "lag"
+[[models]]
+model = "waves-apart"
+label = "unlinked waves"
+[sampling]
+method = "ml"
+[checks]
+ppc = false
+""".replace("'", '"'))
+    study = load_study(folder / "calm.toml")
+    results = run_study(study, progress=None)
+    fit = approximate_fit(study.models[0].spec, results.panel, draws=100, chains=2, seed=1)
+    lag = dataclasses.replace(results.models[0], fit=fit)
+    return dataclasses.replace(results, models=(lag, results.models[1]))
+
+
+@pytest.fixture(scope="module")
+def rendered_measurement(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("measurement")
+    results = _indicator_results(folder)
+    paths = write_report(results, folder / "out")
+    return results, paths, paths["html"].read_text(encoding="utf-8")
+
+
+def _section(page: str, anchor: str) -> str:
+    start = page.index(f'<h2 id="{anchor}">')
+    return page[start:page.index("<h2", start + 1)]
+
+
+def test_measurement_section_tables_and_readings(rendered_measurement):
+    results, paths, page = rendered_measurement
+    section = _section(page, "measurement")
+    assert "calm_latent: calm, rested, focused" in section
+    assert "The measurement alone: unlinked waves" in section  # one process: tested free of structure
+    parser = _Collector()
+    parser.feed(section)
+    text = " ".join(" ".join(parser.text).split())
+    # the by-wave table: the marker's loading is fixed at 1, the others carry intervals
+    assert "1 (fixed)" in text
+    assert "loading" in text and "intercept" in text and "unique_var" in text
+    # the invariance comparison of the unlinked model, reference: the same ML comparison
+    # run here, with the p-value recomputed from scipy's chi-square
+    inv = bl.compare_invariance(bl.model("waves-apart"), results.panel, starts=1,
+                                seed=results.study.sampling["seed"])
+    r = inv.loc["scalar"]
+    p = stats.chi2.sf(r["lr"], r["df"])
+    assert p < 0.05  # the intercept of 'focused' drifts by 0.4 a wave in the simulated data
+    assert (f"scalar against metric: LR {r['lr']:.2f} on {int(r['df'])} df, p = {p:.3g}; the "
+            "added equalities fit worse than chance") in text
+    m = inv.loc["metric"]
+    assert f"metric against configural: LR {m['lr']:.2f} on {int(m['df'])} df" in text
+    # the lag model cannot identify the levels below scalar: said, not tested
+    assert "configural, metric: not identified with this model" in text
+    # what the tests can and cannot show
+    assert "A large p-value does not show invariance" in text
+    assert "with many units small differences reach significance" in text
+    # the lag at each identified level, and its reading
+    lag = bl.compare_invariance(bl.model("ar"), results.panel, starts=1,
+                                seed=results.study.sampling["seed"])
+    assert f"scalar {lag.loc['scalar', 'lag']:.3f} (SE {lag.loc['scalar', 'lag se']:.3f})" in text
+    spread = abs(lag.loc["strict", "lag"] - lag.loc["scalar", "lag"])
+    assert f"The estimates span {spread:.3f}" in text
+    # the latent-score figure is embedded, and the Markdown twin has the section too
+    assert section.count('src="data:image/png;base64,') == 1
+    assert "lag: latent trajectories of 3 units (posterior mean, 90% interval)" in text
+    md = paths["markdown"].read_text(encoding="utf-8")
+    assert "## Measurement" in md and "A large p-value does not show invariance" in md
+    # the data figure draws every indicator, each named with its process
+    fig = _figure_data(results.panel)
+    assert [ax.get_ylabel() for ax in fig.axes] == [f"calm_latent / {i}" for i in DRIFT_ITEMS]
+    # the findings name the indicators and the level the lag was estimated at
+    findings = _section(page, "findings")
+    assert "Latent outcomes: calm_latent measured by calm, rested, focused" in findings
+    assert "at scalar invariance" in findings
+    methods = _section(page, "manuscript")
+    assert ("calm_latent (indicators calm, rested, focused) was a latent variable at every wave"
+            in methods)
+    assert "Meredith, W. (1993)" in methods and "Wilks, S. S. (1938)" in methods
+
+
+def test_no_measurement_section_without_indicators(rendered):
+    _, page = rendered
+    assert 'id="measurement"' not in page
+
+
+def test_measurement_section_opens_in_headless_chromium(rendered_measurement, tmp_path):
+    _need_chromium()
+    _, paths, _ = rendered_measurement
+    code, console, dom = _open_in_chromium(paths["html"], tmp_path / "profile")
+    assert code == 0 and console == []
+    parser = _Collector()
+    parser.feed(dom)
+    h2 = [attrs.get("id") for tag, attrs in parser.tags if tag == "h2"]
+    assert h2.index("measurement") == h2.index("models") + 1  # right after the candidates

@@ -45,6 +45,10 @@ def test_sensitivity_and_leave_future_out_refits_use_the_study_priors(tmp_path, 
     assert main(["run", str(path), "--json", "--quiet"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert out["future"]["ran"] and out["sensitivity"]["ran"], out
+    # 60 draws of one chain cannot reach the tail-ESS threshold of 400 (an ESS above the
+    # number of draws needs anticorrelated draws, rare in the tails): every candidate's
+    # convergence problems must reach the results, and from there the report's red banner
+    assert all(any("ess" in p for p in m["problems"]) for m in out["models"]), out["models"]
     by = {}
     for name, data, priors in calls:
         by.setdefault((name, data), []).append(priors)
