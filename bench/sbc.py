@@ -19,6 +19,12 @@ Run (about 100 fits; a few minutes with nutpie once the model is compiled):
 
     cd /work/main && PYTHONPATH=. .venv/bin/python bench/sbc.py --replications 100
 
+``--indicators``: the latent variable ALT instead, the process measured by three indicators
+at every wave (default measurement options: marker coding, scalar invariance, each
+indicator's unique factors correlated over waves), checking the lag and the loading of
+the second indicator; every prior again given (``indicator_priors``); output files
+``sbc_indicators_ranks.*``.
+
 Output: bench/out/sbc_ranks.csv, bench/out/sbc_ranks.png and a printed table of p-values.
 """
 
@@ -52,6 +58,26 @@ PRIORS = {
     "level_var": ("halfnormal", 1.0), "slope_var": ("halfnormal", 0.3),
     "initial_var": ("halfnormal", 1.0), "resid_var": ("halfnormal", 0.7),
 }
+
+
+INDICATORS = ("y_a", "y_b", "y_c")
+INDICATOR_PARAMS = ("lag", "loading[y_b]")
+
+
+def indicator_priors(structure) -> dict:
+    """Every prior of the indicator model given (by base name), none data-dependent."""
+    out = {k: v for k, v in PRIORS.items() if k in structure.names}
+    for name in structure.names:
+        base = name.split("[")[0]
+        if base == "loading":
+            out[name] = ("normal", 1.0, 0.3)
+        elif base == "intercept":
+            out[name] = ("normal", 0.0, 1.0)
+        elif base == "unique_var":
+            out[name] = ("halfnormal", 0.7)
+        elif base == "resid_var":
+            out[name] = ("halfnormal", 0.5)
+    return out
 
 
 def sbc_ranks(fit, truth: dict, params, thin: int, bins: int) -> dict:
@@ -91,30 +117,43 @@ def main(argv=None):
     ap.add_argument("--bins", type=int, default=10)
     ap.add_argument("--seed", type=int, default=2018)
     ap.add_argument("--pool", action="store_true", help="local process pool instead of serial")
+    ap.add_argument("--indicators", action="store_true",
+                    help="the ALT with three indicators per wave (see the module notes)")
     args = ap.parse_args(argv)
 
     spec = bl.model("alt", residuals="equal")
+    indicators = {"y": list(INDICATORS)} if args.indicators else None
+    params = INDICATOR_PARAMS if args.indicators else PARAMS
+    stem = "sbc_indicators_ranks" if args.indicators else "sbc_ranks"
+    base_values = {"level_mean": 0, "slope_mean": 0, "lag": 0.3, "initial_mean": 0,
+                   "level_var": 1, "level_slope_cov": 0, "slope_var": 0.1,
+                   "initial_level_cov": 0, "initial_slope_cov": 0, "initial_var": 1,
+                   "resid_var": 0.5}
+    if args.indicators:  # the measurement part's values for the reference panel
+        design = Simulation(spec=spec, params={}, n_units=2, n_waves=N_WAVES, seed=0,
+                            indicators=indicators).structure
+        for name in design.names:
+            base = name.split("[")[0]
+            base_values.setdefault(name, {"loading": 1.0, "intercept": 0.0, "unique_var": 0.5,
+                                          "unique_cov": 0.0}.get(base, 0.0))
     # a reference panel only supplies the design to resolve the (fully user-given) priors
-    ref = Simulation(spec=spec, params={"level_mean": 0, "slope_mean": 0, "lag": 0.3,
-                                        "initial_mean": 0, "level_var": 1, "level_slope_cov": 0,
-                                        "slope_var": 0.1, "initial_level_cov": 0,
-                                        "initial_slope_cov": 0, "initial_var": 1,
-                                        "resid_var": 0.5},
-                     n_units=N_UNITS, n_waves=N_WAVES, seed=0).panel()
+    ref = Simulation(spec=spec, params=base_values, n_units=N_UNITS, n_waves=N_WAVES, seed=0,
+                     indicators=indicators).panel()
     structure = structure_for(spec, ref)
-    prior_set = resolve_priors(structure, ref, PRIORS)
+    priors = indicator_priors(structure) if args.indicators else PRIORS
+    prior_set = resolve_priors(structure, ref, priors)
     thetas = prior_draws(prior_set, draws=args.replications, seed=args.seed)
     seeds = np.random.SeedSequence(args.seed).generate_state(2 * args.replications)
     tasks = []
     for r, theta in enumerate(thetas):
         truth = dict(zip(structure.names, map(float, theta)))
         sim = Simulation(spec=spec, params=truth, n_units=N_UNITS, n_waves=N_WAVES,
-                         seed=int(seeds[2 * r]))
+                         seed=int(seeds[2 * r]), indicators=indicators)
         tasks.append(Task(name=f"rep{r}", spec=spec, panel=sim, kind="bench.sbc:fit_and_rank",
-                          kwargs=dict(truth={k: truth[k] for k in PARAMS}, thin=args.thin,
+                          kwargs=dict(truth={k: truth[k] for k in params}, thin=args.thin,
                                       bins=args.bins,
-                                      params=PARAMS, draws=args.draws, tune=args.tune,
-                                      chains=args.chains, priors=PRIORS),
+                                      params=params, draws=args.draws, tune=args.tune,
+                                      chains=args.chains, priors=priors),
                           seed=int(seeds[2 * r + 1]) % 2**31))
     t0 = time.perf_counter()
     batch = run_many(tasks, None if args.pool else SerialExecutor())
@@ -123,16 +162,16 @@ def main(argv=None):
     ranks = pd.DataFrame([r.info for r in ok])
     out = ROOT / "bench" / "out"
     out.mkdir(parents=True, exist_ok=True)
-    ranks.to_csv(out / "sbc_ranks.csv", index=False)
+    ranks.to_csv(out / f"{stem}.csv", index=False)
 
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, axes = plt.subplots(1, len(PARAMS), figsize=(4.5 * len(PARAMS), 3.2))
+    fig, axes = plt.subplots(1, len(params), figsize=(4.5 * len(params), 3.2))
     rows = []
-    for ax, name in zip(np.atleast_1d(axes), PARAMS):
+    for ax, name in zip(np.atleast_1d(axes), params):
         L = int(ranks[f"{name}__L"].iloc[0])
         # B bins of the L + 1 possible ranks 0..L (L + 1 divisible by B, see sbc_ranks)
         counts = np.bincount(ranks[name].to_numpy(int) * args.bins // (L + 1),
@@ -149,7 +188,7 @@ def main(argv=None):
     np.atleast_1d(axes)[0].set_ylabel("replications")
     np.atleast_1d(axes)[0].legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(out / "sbc_ranks.png", dpi=110)
+    fig.savefig(out / f"{stem}.png", dpi=110)
     table = pd.DataFrame(rows)
     print(table.to_string(index=False))
     print(f"failed fits: {len(batch) - len(ok)}; wall time {wall:.0f} s "
