@@ -92,6 +92,16 @@ def test_fit_ml_counts(kwargs, message, panel):
         bl.fit_ml(bl.model("ar"), panel, **kwargs)
 
 
+def test_fit_ml_refuses_categorical_variables(frame):
+    # category codes read as scores would be a silent error: the message says what to use
+    coded = frame.assign(y=np.digitize(frame["y"], [0.0, 1.0]) + 1)
+    ordinal = bl.Panel.from_long(coded, unit="id", wave="t", outcomes=["y"],
+                                 categorical={"y": "ordinal"})
+    with pytest.raises(DataError, match=r"fit_ml: the panel declares categorical variables "
+                                        r"\('y'\).*bl\.fit.*without categorical="):
+        bl.fit_ml(bl.model("linear-growth"), ordinal)
+
+
 def test_fit_seed_and_identify_points(panel):
     with pytest.raises(SpecError, match="`seed` of fit must be a whole number of at least 0; got 'a'"):
         bl.fit(bl.model("ar"), panel, seed="a")

@@ -22,7 +22,13 @@ import numpy as np
 import pandas as pd
 
 from bayeslong.arguments import seed_value, whole_number
-from bayeslong.errors import BayeslongError, BoundaryWarning, ConvergenceWarning, IdentificationError
+from bayeslong.errors import (
+    BayeslongError,
+    BoundaryWarning,
+    ConvergenceWarning,
+    DataError,
+    IdentificationError,
+)
 from bayeslong.infer.likelihood import loglik_function, pattern_arrays
 from bayeslong.infer.newton import hessian, maximise
 from bayeslong.model.spec import Spec
@@ -132,7 +138,8 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
         The model is not locally identified; the message names the parameters.
     SpecError, DataError
         ``spec`` or ``panel`` is not what :func:`bayeslong.model` or ``Panel.from_long``
-        makes, or ``starts`` / ``seed`` are not whole numbers (at least 1 / 0).
+        makes, or ``starts`` / ``seed`` are not whole numbers (at least 1 / 0), or the
+        panel has categorical variables (maximum likelihood here is for continuous ones).
 
     Warns
     -----
@@ -145,6 +152,15 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
     """
     starts = whole_number(starts, "starts", where="fit_ml")
     seed = seed_value(seed, where="fit_ml")
+    categories = getattr(panel, "categories", None)
+    if categories:
+        names = ", ".join(f"{k!r}" for k in categories)
+        raise DataError(
+            f"fit_ml: the panel declares categorical variables ({names}); maximum likelihood "
+            "here treats every variable as continuous, which would read category codes as "
+            "scores. Fit the model with bl.fit (latent responses with thresholds, compared by "
+            "the per-unit marginal LOO), or, to treat the codes as scores on purpose, read the "
+            "data again without categorical=.")
     with single_thread():
         return _fit_ml(spec, panel, starts=starts, seed=seed, check=check)
 
