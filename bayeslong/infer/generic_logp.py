@@ -355,6 +355,68 @@ def _pyfunc_model(lay: Layout, ints, floats, init, names):
                        [()] * len(names), names, make_initial_point_fn=lambda seed: init.copy())
 
 
+#: The kernel's entry points that numba compiles when :mod:`~bayeslong.infer.generic_kernel` is
+#: imported (``cfunc(cache=True)``; the rest compiles with them).
+KERNEL_ENTRIES = ("logp_cfunc", "expand_cfunc")
+_KERNEL_MODULE = "bayeslong.infer.generic_kernel"
+
+
+def kernel_cached() -> bool | None:
+    """Whether numba's on-disk cache holds the kernel for this source, numba version and CPU.
+
+    Reads the cache index of each of :data:`KERNEL_ENTRIES` where numba itself looks
+    (``NUMBA_CACHE_DIR``, the ``__pycache__`` beside the module, or numba's user-wide cache
+    directory) without importing the kernel, which would compile it on a cache miss. An
+    index counts when numba would trust it: written by this numba version for the current
+    source file (numba's stamp: modification time and size) and holding an entry for this
+    CPU. Returns None when numba's cache layout is not the one expected (another numba
+    version): then nothing can be said cheaply. docs/engine.md, "Compile once per machine".
+    """
+    import importlib.util
+    import types
+
+    try:
+        from numba.core.caching import FunctionCache
+        from numba.core.registry import cpu_target
+
+        path = importlib.util.find_spec(_KERNEL_MODULE).origin
+        with open(path, encoding="utf-8") as f:
+            lines = f.read().splitlines()
+        cpu = cpu_target.target_context.codegen().magic_tuple()
+        for name in KERNEL_ENTRIES:
+            line = next(i + 1 for i, text in enumerate(lines) if text.startswith(f"def {name}("))
+            while line > 1 and lines[line - 2].startswith("@"):  # numba names the cache files
+                line -= 1                                       # by the first decorator's line
+            # a stand-in with the entry's file, name and first line: numba's cache for it is
+            # the entry's own (its locator and file names depend on nothing else)
+            code = compile(f"def {name}():\n    pass\n", path, "exec").co_consts[0]
+            stand_in = types.FunctionType(code.replace(co_firstlineno=line), {})
+            index = FunctionCache(stand_in)._cache_file._load_index()
+            if not any(key[1] == cpu for key in index):
+                return False
+        return True
+    except Exception:  # noqa: BLE001 - numba's private cache layout changed: cannot tell
+        return None
+
+
+def announce_compile(progressbar) -> bool:
+    """Tell a ``progressbar`` callable that the kernel is about to be compiled, when it is.
+
+    Sends one :class:`~bayeslong.infer.progress.SamplingProgress` with stage ``"compiling"``
+    and sampler ``"generic"`` when the kernel is not loaded in this process yet and numba's
+    cache has no entry for it (:func:`kernel_cached` is False): numba then compiles it
+    (about half a minute, once per machine). Returns whether it sent one.
+    """
+    import sys
+
+    if not callable(progressbar) or _KERNEL_MODULE in sys.modules or kernel_cached() is not False:
+        return False
+    from bayeslong.infer.progress import SamplingProgress
+
+    progressbar(SamplingProgress(stage="compiling", sampler="generic"))
+    return True
+
+
 def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, chains, cores, seed,
            progressbar, names=None, callback: str = "c", target_accept: float = 0.8):
     """NUTS with nutpie on the generic kernel: ``(idata, compile seconds, sample seconds)``.
@@ -366,7 +428,7 @@ def sample(structure: Structure, prior_set: PriorSet, panel, *, draws, tune, cha
     """
     import time
 
-
+    announce_compile(progressbar)
     t0 = time.perf_counter()
     from bayeslong.infer import generic_kernel  # noqa: F401  (loads or compiles the kernel)
 

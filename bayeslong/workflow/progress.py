@@ -34,6 +34,11 @@ def _duration(seconds: float) -> str:
 
 def describe(label: str, p: SamplingProgress, *, short: bool = False) -> str:
     """One model's status in words, e.g. ``alt: sampling, per chain 512 498 of 2000, 25%, about 40 s left``."""
+    if p.stage == "compiling" and p.sampler == "generic":
+        # sent only when numba's cache has no entry for the kernel (docs/engine.md,
+        # "Compile once per machine"): the one compile on this machine
+        return f"{label}: compiling the sampler" + ("" if short else " (first use on this "
+                                                    "machine; about half a minute, once)")
     if p.stage == "compiling":
         return f"{label}: compiling" + ("" if short else " the model (a model structure's first "
                                         "compile takes from tens of seconds to minutes; later "

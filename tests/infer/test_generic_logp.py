@@ -217,6 +217,20 @@ def test_new_structure_compiles_nothing():
     assert "pytensor" not in {m.split(".")[0] for m in _modules_loaded_by_generic_fit()}
 
 
+def test_kernel_cached_reads_numbas_own_cache_index(tmp_path, monkeypatch):
+    # numba's own cache decides: the kernel loaded in this process (compiled or loaded,
+    # either way written to numba's cache) is found; with numba's cache directory pointed
+    # at an empty folder (what NUMBA_CACHE_DIR does on a fresh machine) it is not
+    import numba.core.config
+
+    from bayeslong.infer import generic_kernel  # noqa: F401
+    from bayeslong.infer.generic_logp import kernel_cached
+
+    assert kernel_cached() is True
+    monkeypatch.setattr(numba.core.config, "CACHE_DIR", str(tmp_path))
+    assert kernel_cached() is False
+
+
 def _modules_loaded_by_generic_fit():
     # the generic path imports neither PyMC nor PyTensor: checked in a fresh interpreter
     import subprocess

@@ -120,6 +120,29 @@ def test_a_run_shows_plain_progress_and_the_findings_on_stderr_and_in_json(tmp_p
     assert f"- {best} predicts best" in captured.out
 
 
+def test_first_use_of_the_kernel_on_a_machine_is_one_plain_line(tmp_path, monkeypatch):
+    # a fresh machine: numba's cache directory empty (as NUMBA_CACHE_DIR pointed at a new
+    # folder) and the kernel not loaded in the process; the CLI's reporter then says, before
+    # the kernel compiles, that it does, in one plain line (stream not a terminal)
+    import sys
+
+    import numba.core.config
+
+    from bayeslong.infer import generic_kernel  # noqa: F401  (in numba's usual cache now)
+    from bayeslong.infer.generic_logp import announce_compile
+
+    monkeypatch.delitem(sys.modules, "bayeslong.infer.generic_kernel")
+    out = io.StringIO()
+    reporter = ProgressReporter(out)
+    assert not announce_compile(reporter.for_model("alt"))  # the machine's cache holds it
+    assert out.getvalue() == ""
+    monkeypatch.setattr(numba.core.config, "CACHE_DIR", str(tmp_path))
+    assert announce_compile(reporter.for_model("alt"))
+    assert out.getvalue() == ("[bayeslong] alt: compiling the sampler (first use on this machine; "
+                              "about half a minute, once)\n")
+    assert not announce_compile(False)  # --quiet: the runner passes progressbar=False
+
+
 def test_warnings_are_one_line_in_the_tools_words(capsys):
     import warnings
 
