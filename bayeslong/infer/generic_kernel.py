@@ -10,7 +10,9 @@ machine, stores the machine code in its on-disk cache, and every later process, 
 option, data size and prior value reuses it.
 
 Buffer layout (offsets are read from the header of ``ints``, slots ``H_*`` below):
-matrices a, B, G, Psi, nu, Lam, Theta as index arrays (ints) and fixed parts (floats);
+matrices a, B, G, Psi, nu, Lam, Theta as index arrays (ints) and fixed parts (floats),
+and the entries that are linear combinations of parameters (matrix, position, parameter,
+coefficient: effects coding, approximate invariance; docs/engine.md, "Matrix form");
 a table of scalar random variables (x position, parameter, family, target, transform)
 with three hyperparameters each; a table of LKJ covariance blocks (x offset, q, family,
 offset of the members' parameter indices) with each member's hyperparameters, the LKJ
@@ -52,7 +54,10 @@ H_BLOCK_F = 26   # offset of the block floats (per block: eta, norm, 3 per membe
 H_COUNTS = 27    # offsets in floats of counts (P), cross (P U U), masks (P Y)
 H_CROSS = 28
 H_MASKS = 29
-HEADER_SIZE = 30
+H_NTERMS = 30    # number of linear-combination entries (Matrix.terms of model/structure.py)
+H_TERMS = 31     # their table in ints (3 per row: matrix, flat position, parameter)
+H_TERMS_F = 32   # their coefficients in floats
+HEADER_SIZE = 33
 BLOCK_ROW = 5    # x offset, q, SD family, member table offset, SD transform
 
 # family codes (generic_logp.FAMILY_CODES maps the names of priors.FAMILIES to these)
@@ -194,7 +199,8 @@ def pattern_kernel(c, D, Sigma, counts, cross, masks):
 
 @_njit
 def _fill(ints, floats, which, rows, cols, theta):
-    # model matrix ``which`` (0 a, 1 B, 2 G, 3 Psi, 4 nu, 5 Lam, 6 Theta): fixed + theta[index]
+    # model matrix ``which`` (0 a, 1 B, 2 G, 3 Psi, 4 nu, 5 Lam, 6 Theta): fixed + theta[index],
+    # plus coef * theta[k] at the linear-combination entries of that matrix
     io = ints[H_IDX + which]
     fo = ints[H_FIX + which]
     out = np.empty((rows, cols))
@@ -203,18 +209,29 @@ def _fill(ints, floats, which, rows, cols, theta):
             k = ints[io + i * cols + j]
             v = floats[fo + i * cols + j]
             out[i, j] = v + theta[k] if k >= 0 else v
+    to, tf = ints[H_TERMS], ints[H_TERMS_F]
+    for n in range(ints[H_NTERMS]):
+        if ints[to + 3 * n] == which:
+            pos = ints[to + 3 * n + 1]
+            out[pos // cols, pos % cols] += floats[tf + n] * theta[ints[to + 3 * n + 2]]
     return out
 
 
 @_njit
-def _scatter(ints, which, rows, cols, g, gtheta):
-    # dL/dtheta_k += sum of dL/dM_ij over the entries that parameter k fills
+def _scatter(ints, floats, which, rows, cols, g, gtheta):
+    # dL/dtheta_k += sum of dL/dM_ij over the entries that parameter k fills (times its
+    # coefficient at a linear-combination entry)
     io = ints[H_IDX + which]
     for i in range(rows):
         for j in range(cols):
             k = ints[io + i * cols + j]
             if k >= 0:
                 gtheta[k] += g[i, j]
+    to, tf = ints[H_TERMS], ints[H_TERMS_F]
+    for n in range(ints[H_NTERMS]):
+        if ints[to + 3 * n] == which:
+            pos = ints[to + 3 * n + 1]
+            gtheta[ints[to + 3 * n + 2]] += floats[tf + n] * g[pos // cols, pos % cols]
 
 
 @_njit
@@ -415,13 +432,13 @@ def logp_grad(x, ints, floats):
     gT = v @ a.T + LgD @ G.T + 2.0 * (gPhi @ TPsi)
     gB = T.T @ gT @ T.T
     gtheta = np.zeros(n_par)
-    _scatter(ints, 0, nL, 1, ga, gtheta)
-    _scatter(ints, 1, nL, nL, gB, gtheta)
-    _scatter(ints, 2, nL, nW, gG, gtheta)
-    _scatter(ints, 3, nL, nL, gPsi, gtheta)
-    _scatter(ints, 4, nY, 1, gc2, gtheta)
-    _scatter(ints, 5, nY, nL, gLam, gtheta)
-    _scatter(ints, 6, nY, nY, gS, gtheta)
+    _scatter(ints, floats, 0, nL, 1, ga, gtheta)
+    _scatter(ints, floats, 1, nL, nL, gB, gtheta)
+    _scatter(ints, floats, 2, nL, nW, gG, gtheta)
+    _scatter(ints, floats, 3, nL, nL, gPsi, gtheta)
+    _scatter(ints, floats, 4, nY, 1, gc2, gtheta)
+    _scatter(ints, floats, 5, nY, nL, gLam, gtheta)
+    _scatter(ints, floats, 6, nY, nY, gS, gtheta)
     # --- through the parameterisation to x ----------------------------------------------------
     for j in range(ns):
         xp, k, target = ints[so + 5 * j], ints[so + 5 * j + 1], ints[so + 5 * j + 3]

@@ -35,7 +35,7 @@ FAMILY_CODES = {"normal": 0, "student_t": 1, "uniform": 2, "halfnormal": 3, "hal
                 "exponential": 5, "lognormal": 6, "gamma": 7}
 _IDENTITY, _LOG, _INTERVAL = range(3)
 _MATRICES = ("a", "B", "G", "Psi", "nu", "Lam", "Theta")
-HEADER_SIZE = 30  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
+HEADER_SIZE = 33  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
 BLOCK_ROW = 5     # generic_kernel.BLOCK_ROW
 
 
@@ -182,6 +182,13 @@ def _build_layout(structure: Structure, prior_set: PriorSet) -> Layout:
         ints.extend(int(v) for v in mat.index.ravel())
         ints[16 + m] = len(floats)
         floats.extend(float(v) for v in mat.fixed.ravel())
+    # entries that are linear combinations of parameters (Matrix.terms): matrix code, flat
+    # position, parameter; their coefficients in floats (generic_kernel._fill)
+    terms = [(m, int(pos), int(k), float(coef)) for m, name in enumerate(_MATRICES)
+             for pos, k, coef in structure.matrices[name].terms]
+    ints[30], ints[31], ints[32] = len(terms), len(ints), len(floats)
+    ints.extend(v for m, pos, k, _ in terms for v in (m, pos, k))
+    floats.extend(coef for *_, coef in terms)
     in_lkj = {int(i) for b in prior_set.blocks for i in np.diag(structure.blocks[b].index)}
     scalars, hyper, names = [], [], []
     for i, p in enumerate(prior_set.priors):
