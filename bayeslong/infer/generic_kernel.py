@@ -58,7 +58,7 @@ H_NTERMS = 30    # number of linear-combination entries (Matrix.terms of model/s
 H_TERMS = 31     # their table in ints (3 per row: matrix, flat position, parameter)
 H_TERMS_F = 32   # their coefficients in floats
 HEADER_SIZE = 33
-BLOCK_ROW = 5    # x offset, q, SD family, member table offset, SD transform
+BLOCK_ROW = 6    # x offset, q, SD family, member table offset, SD transform, number of SDs
 
 # family codes (generic_logp.FAMILY_CODES maps the names of priors.FAMILIES to these)
 NORMAL, STUDENT_T, UNIFORM, HALFNORMAL, HALFSTUDENT_T, EXPONENTIAL, LOGNORMAL, GAMMA = range(8)
@@ -262,7 +262,8 @@ def natural(x, ints, floats):
     bo, fpos = ints[H_BLOCK], ints[H_BLOCK_F]
     for b in range(ints[H_NBLOCK]):
         off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
-        sd, L = _block_parts(x, off, q, ints[bo + BLOCK_ROW * b + 4], floats, fpos)
+        sd, L = _block_parts(x, off, q, ints[bo + BLOCK_ROW * b + 4], floats, fpos,
+                             ints[bo + BLOCK_ROW * b + 5])
         _block_put(ints, ints[bo + BLOCK_ROW * b + 3], q, _block_cov(sd, L), theta)
         fpos += 2 + 3 * q
     return theta
@@ -276,10 +277,12 @@ def _log1m_tanh2(y):
 
 
 @_njit
-def _block_parts(x, off, q, tr, floats, fpos):
+def _block_parts(x, off, q, tr, floats, fpos, nsd):
     """The SDs and the Cholesky factor L of the correlation matrix of a covariance block.
 
-    x[off:off + q] are the SDs on their transform's scale; x[off + q:] the canonical
+    x[off:off + nsd] are the SDs on their transform's scale (nsd = q, or 1 when the block's
+    variances are one parameter, as strict invariance makes them; docs/priors.md);
+    x[off + nsd:] the canonical
     partial correlations z = tanh(y), row by row of the strict lower triangle:
     L_rc = z_rc sqrt(1 - sum_{k<c} L_rk^2), L_rr = sqrt(1 - sum_{k<r} L_rk^2)
     (Lewandowski, Kurowicka & Joe 2009; docs/engine.md).
@@ -287,10 +290,10 @@ def _block_parts(x, off, q, tr, floats, fpos):
     sd = np.empty(q)
     for r in range(q):
         h = fpos + 2 + 3 * r
-        sd[r] = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[0]
+        sd[r] = _scalar_value(tr, x[off + (r if nsd == q else 0)], floats[h], floats[h + 1])[0]
     L = np.zeros((q, q))
     L[0, 0] = 1.0
-    pos = off + q
+    pos = off + nsd
     for r in range(1, q):
         rest = 1.0
         for c in range(r):
@@ -364,11 +367,12 @@ def logp_grad(x, ints, floats):
     for b in range(nb):
         off, q, fam = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1], ints[bo + BLOCK_ROW * b + 2]
         mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
+        nsd = ints[bo + BLOCK_ROW * b + 5]
         eta, norm = floats[fpos], floats[fpos + 1]
-        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        sd, L = _block_parts(x, off, q, tr, floats, fpos, nsd)
         _block_put(ints, mo, q, _block_cov(sd, L), theta)
         lp += norm
-        for r in range(q):  # each member's SD prior, on its transform's scale
+        for r in range(nsd):  # each SD's prior, on its transform's scale
             h = fpos + 2 + 3 * r
             v, dvdx, logjac, dlogjac = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])
             prior, dprior = family_logp(fam, v, floats[h], floats[h + 1], floats[h + 2])
@@ -377,7 +381,7 @@ def logp_grad(x, ints, floats):
         # LKJ(eta) on the correlation matrix with the Jacobian of the canonical partial
         # correlations z = tanh(y): sum over z_rc of (eta + (q - c - 2) / 2) log(1 - z_rc^2),
         # whose derivative in y_rc is -2 (eta + (q - c - 2) / 2) z_rc (docs/engine.md)
-        pos = off + q
+        pos = off + nsd
         for r in range(1, q):
             for c in range(r):
                 coef = eta + 0.5 * (q - c - 2.0)
@@ -448,29 +452,32 @@ def logp_grad(x, ints, floats):
     for b in range(nb):
         off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
         mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
-        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        nsd = ints[bo + BLOCK_ROW * b + 5]
+        sd, L = _block_parts(x, off, q, tr, floats, fpos, nsd)
         # Sigma = M M' with M = diag(sd) L; a covariance fills two entries, so half its
-        # gradient on each
+        # gradient on each, and a variance shared by the whole diagonal (one SD) fills q
+        share = 1.0 / q if nsd == 1 else 1.0
         Gs = np.empty((q, q))
         for r in range(q):
             for cc in range(q):
                 g = gtheta[ints[mo + q + r * q + cc]]
-                Gs[r, cc] = g if r == cc else 0.5 * g
+                Gs[r, cc] = share * g if r == cc else 0.5 * g
         M = np.empty((q, q))
         for r in range(q):
             for cc in range(q):
                 M[r, cc] = sd[r] * L[r, cc]
         gM = 2.0 * (Gs @ M)
-        for r in range(q):  # SDs, through their transform
+        for r in range(q):  # SDs, through their transform (one shared SD gathers all)
             h = fpos + 2 + 3 * r
-            dvdx = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[1]
+            xr = off + (r if nsd == q else 0)
+            dvdx = _scalar_value(tr, x[xr], floats[h], floats[h + 1])[1]
             gsd = 0.0
             for cc in range(r + 1):
                 gsd += gM[r, cc] * L[r, cc]
-            grad[off + r] += gsd * dvdx
+            grad[xr] += gsd * dvdx
         # row r of L: L_rc = z_rc w_c (c < r), L_rr = w_r, w_c = prod_{k<c} sqrt(1 - z_rk^2);
         # d/dy_rc = gL_rc w_c (1 - z_rc^2) - z_rc sum_{k=c+1..r} gL_rk L_rk
-        pos = off + q
+        pos = off + nsd
         for r in range(1, q):
             w = 1.0
             for c in range(r):

@@ -351,13 +351,16 @@ def _block_membership(structure: Structure) -> dict[int, int]:
                 "is not supported by the Bayesian fit (a same-wave path among three or more "
                 "processes fixes its pair's disturbance covariance at zero); fit it by maximum "
                 "likelihood, or free those covariances in the model file")
-        if len(set(np.diag(idx).tolist())) < len(idx):
+        # one variance on the whole diagonal (strict invariance with unique covariances over
+        # waves) is one SD times the block's correlation matrix; only a partly shared
+        # diagonal has no such form
+        if 1 < len(set(np.diag(idx).tolist())) < len(idx):
             raise SpecError(
                 f"model '{structure.spec.name}': the variances "
                 f"{structure.names[int(idx[0, 0])]!r}... are held equal within one covariance "
-                "block (strict invariance with unique covariances over waves), which the "
-                "Bayesian fit's SD and LKJ priors cannot express yet; fit it by maximum "
-                "likelihood, or choose unique_covariance='none'")
+                "block, some but not all of them, which the Bayesian fit's SD and LKJ priors "
+                "cannot express; give the block's variances one parameter or one each, or fit "
+                "this model by maximum likelihood (bl.fit_ml)")
         for k in np.unique(idx):
             if int(k) in member and member[int(k)] != b:
                 raise SpecError(
