@@ -13,9 +13,8 @@ other prior values only swaps the model's data inputs.
 
 from __future__ import annotations
 
-import dataclasses
-
 import contextlib
+import dataclasses
 import json
 import os
 import time
