@@ -66,13 +66,18 @@ def default_fit(panel):
     return _fit(bl.model("alt"), panel)
 
 
-@pytest.mark.parametrize("sampler", ["auto", "pymc"])
+@pytest.mark.parametrize("sampler", [
+    "auto",
+    # the PyMC model compiled for nutpie: minutes for this graph (15 indicator x wave
+    # entries); its log density equals the kernel's (tests/infer/test_generic_logp.py)
+    pytest.param("nutpie", marks=pytest.mark.slow),
+])
 def test_default_indicator_fit_is_near_maximum_likelihood(sampler, panel, default_fit):
     # default options: scalar invariance, unique factors covarying over waves
     ml = bl.fit_ml(bl.model("alt"), panel)
     fit = default_fit if sampler == "auto" else _fit(bl.model("alt"), panel, sampler=sampler,
                                                      draws=200, tune=200)
-    assert fit.sampler == ("generic" if sampler == "auto" else "pymc")
+    assert fit.sampler == ("generic" if sampler == "auto" else sampler)
     assert set(fit.idata.posterior.data_vars) >= set(fit.structure.names)
     post = fit.idata.posterior
     for name in LOOKED_AT:
@@ -90,7 +95,7 @@ def _wave_loading(post, name, t):
 
 def test_tiny_deviation_prior_is_scalar_invariance(drift_panel):
     # d -> 0: the deviations vanish and the model is scalar invariance; the lag's posterior
-    # mean and SD agree within 4 combined Monte Carlo standard errors
+    # means agree within 4 combined Monte Carlo standard errors (ArviZ's mcse of the mean)
     import arviz as az
 
     from bayeslong.infer.sampling import _arviz_numpy
@@ -104,9 +109,12 @@ def test_tiny_deviation_prior_is_scalar_invariance(drift_panel):
     assert np.ptp(waves) < 1e-2
     with _arviz_numpy():
         mcse = [float(az.mcse(f.idata, var_names=["lag"])["lag"]) for f in fits]
-    for stat in ("mean", "std"):
-        a, b = (float(getattr(f.idata.posterior["lag"], stat)()) for f in fits)
-        assert abs(a - b) < 4.0 * np.hypot(*mcse) * (1.0 if stat == "mean" else 1.5), (stat, a, b)
+    means = [float(f.idata.posterior["lag"].mean()) for f in fits]
+    assert abs(means[0] - means[1]) < 4.0 * np.hypot(*mcse), (means, mcse)
+    # the SDs: relative Monte Carlo error ~ 1 / sqrt(2 ESS), about 7% at ESS ~ 100 each;
+    # 25% is more than three combined
+    sds = [float(f.idata.posterior["lag"].std()) for f in fits]
+    assert abs(np.log(sds[0] / sds[1])) < 0.25, sds
 
 
 def test_wide_deviation_prior_frees_the_loadings(drift_panel):
