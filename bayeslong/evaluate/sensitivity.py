@@ -9,6 +9,10 @@ carry-over effect) for each setting:
   posteriors under priors in small samples, docs/model-family.md);
 - **specification**: the lag across every catalog model that has one (for the dual change
   model the lag is 1 + proportional_change, its coefficient of the previous wave);
+- **deviation SD**: for a default model with approximate invariance of its indicators
+  (``invariance="approximate"``), refits with several SDs of the per-wave deviations'
+  prior, from nearly exact (scalar) invariance to nearly free (configural) loadings and
+  intercepts (Muthén & Asparouhov 2012; docs/model-family.md, "Approximate invariance");
 - **power-scaling**: prior and likelihood power-scaling sensitivity of every parameter of
   the default fit, without refitting (Kallioinen et al. 2024).
 
@@ -21,6 +25,9 @@ process pool by default for :func:`plan`, or on any executor given (e.g. a Dask 
 
 References
 ----------
+Muthén, B. & Asparouhov, T. (2012). Bayesian structural equation modeling: a more flexible
+representation of substantive theory. Psychological Methods 17(3), 313-335.
+doi:10.1037/a0026802
 Kallioinen, N., Paananen, T., Bürkner, P.-C., & Vehtari, A. (2024). Detecting and diagnosing
 prior and likelihood sensitivity with power-scaling. Statistics and Computing 34, 57.
 doi:10.1007/s11222-023-10366-5
@@ -59,8 +66,13 @@ VARIANCE_SCALES = (0.5, 2.0)
 #: section 4: the threshold they use and recommend as a rule of thumb).
 PSENS_THRESHOLD = 0.05
 
+#: Default SDs of the per-wave deviations' prior for the deviation-SD axis (approximate
+#: invariance): a tenth, twice and five times the default 0.05 (model/spec.py, DEVIATION_SD),
+#: and 1, which leaves loadings and intercepts nearly free by wave.
+DEVIATION_SDS = (0.005, 0.1, 0.25, 1.0)
+
 #: Axes of the sensitivity table, in display order.
-AXES = ("default", "prior", "first wave", "specification", "power-scaling")
+AXES = ("default", "prior", "deviation SD", "first wave", "specification", "power-scaling")
 
 
 # --- the lag of a model ----------------------------------------------------------------------
@@ -340,11 +352,12 @@ def _side(q5: float, q95: float) -> str:
 
 
 def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None,
-                    initial: bool = True, specification: bool = True, power_scaling: bool = True,
+                    deviation_sds=None, initial: bool = True, specification: bool = True,
+                    power_scaling: bool = True,
                     fit_kwargs: dict | None = None, executor=None,
                     progress: bool = False, priors: dict | None = None,
                     fits=None) -> LagSensitivity:
-    """Refit ``panel`` along four axes and tabulate the lag for each setting.
+    """Refit ``panel`` along four (five) axes and tabulate the lag for each setting.
 
     Parameters
     ----------
@@ -359,6 +372,11 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     variance_scales : sequence of float or False, optional
         Factors for the scale of every standard-deviation prior; default
         :data:`VARIANCE_SCALES`.
+    deviation_sds : sequence of float or False, optional
+        SDs of the per-wave deviations' prior (``deviation_sd``, the same for loadings and
+        intercepts) to refit the default model with; only for a default model with
+        ``invariance="approximate"`` on a panel with several indicators per process, where
+        the default is :data:`DEVIATION_SDS`. ``False`` skips the axis.
     initial : bool, default True
         Refit every model that allows both first-wave treatments with the other one.
     specification : bool, default True
@@ -391,7 +409,8 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     Raises
     ------
     SpecError
-        A model has no constant lag, or the default fit failed (its error is shown).
+        A model has no constant lag, the default fit failed (its error is shown), or
+        ``deviation_sds`` is given for a default model without approximate invariance.
 
     Notes
     -----
@@ -453,6 +472,10 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     for f in scales:
         add("prior", f"variance priors: SD scale x{f:g}", ref,
             scaled_variance_priors(ref, panel, f, base_for(ref)), f"prior: SD scale x{f:g}")
+    for sd in _deviation_grid(ref, panel, deviation_sds):
+        spec = ref.replace(deviation_sd=sd)
+        add("deviation SD", f"deviation_sd {sd:g}", spec, base_for(spec),
+            f"deviation SD: {sd:g}")
     if specification or initial:
         for s in specs:
             key = "default" if s is ref else f"model: {s.name} ({s.options['initial']})"
@@ -514,6 +537,25 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     return LagSensitivity(table=table, power_scaling=ps_table, failed=batch.failed,
                           warnings={r.name: r.warnings for r in batch if r.warnings},
                           reference=ref.name, reused=tuple(given))
+
+
+def _deviation_grid(spec: Spec, panel, given) -> tuple[float, ...]:
+    """The deviation SDs to refit ``spec`` with (module notes), or () where they do not apply."""
+    approximate = "deviation" in structure_for(spec, panel).kinds
+    if given is False or (given is None and not approximate):
+        return ()
+    if not approximate:
+        raise SpecError(f"`deviation_sds` refits with other SDs of the per-wave deviations of "
+                        f"approximate invariance, but the default model '{spec.name}' has "
+                        f"invariance={spec.measurement['invariance']!r}"
+                        + ("" if panel.has_indicators else " and the panel has one indicator per "
+                           "process") + "; give models=[bl.model(..., invariance='approximate')] "
+                        "on a panel with several indicators, or leave deviation_sds out")
+    grid = DEVIATION_SDS if given is None else tuple(given)
+    for sd in grid:
+        if isinstance(sd, bool) or not isinstance(sd, (int, float)) or not sd > 0:
+            raise SpecError(f"`deviation_sds` must hold positive numbers; got {sd!r} in {given!r}")
+    return tuple(float(sd) for sd in grid)
 
 
 def _matching_fit(task: Task, fits, fit_kwargs: dict):

@@ -10,7 +10,9 @@ machine, stores the machine code in its on-disk cache, and every later process, 
 option, data size and prior value reuses it.
 
 Buffer layout (offsets are read from the header of ``ints``, slots ``H_*`` below):
-matrices a, B, G, Psi, nu, Lam, Theta as index arrays (ints) and fixed parts (floats);
+matrices a, B, G, Psi, nu, Lam, Theta as index arrays (ints) and fixed parts (floats),
+and the entries that are linear combinations of parameters (matrix, position, parameter,
+coefficient: effects coding, approximate invariance; docs/engine.md, "Matrix form");
 a table of scalar random variables (x position, parameter, family, target, transform)
 with three hyperparameters each; a table of LKJ covariance blocks (x offset, q, family,
 offset of the members' parameter indices) with each member's hyperparameters, the LKJ
@@ -52,8 +54,11 @@ H_BLOCK_F = 26   # offset of the block floats (per block: eta, norm, 3 per membe
 H_COUNTS = 27    # offsets in floats of counts (P), cross (P U U), masks (P Y)
 H_CROSS = 28
 H_MASKS = 29
-HEADER_SIZE = 30
-BLOCK_ROW = 5    # x offset, q, SD family, member table offset, SD transform
+H_NTERMS = 30    # number of linear-combination entries (Matrix.terms of model/structure.py)
+H_TERMS = 31     # their table in ints (3 per row: matrix, flat position, parameter)
+H_TERMS_F = 32   # their coefficients in floats
+HEADER_SIZE = 33
+BLOCK_ROW = 6    # x offset, q, SD family, member table offset, SD transform, number of SDs
 
 # family codes (generic_logp.FAMILY_CODES maps the names of priors.FAMILIES to these)
 NORMAL, STUDENT_T, UNIFORM, HALFNORMAL, HALFSTUDENT_T, EXPONENTIAL, LOGNORMAL, GAMMA = range(8)
@@ -194,7 +199,8 @@ def pattern_kernel(c, D, Sigma, counts, cross, masks):
 
 @_njit
 def _fill(ints, floats, which, rows, cols, theta):
-    # model matrix ``which`` (0 a, 1 B, 2 G, 3 Psi, 4 nu, 5 Lam, 6 Theta): fixed + theta[index]
+    # model matrix ``which`` (0 a, 1 B, 2 G, 3 Psi, 4 nu, 5 Lam, 6 Theta): fixed + theta[index],
+    # plus coef * theta[k] at the linear-combination entries of that matrix
     io = ints[H_IDX + which]
     fo = ints[H_FIX + which]
     out = np.empty((rows, cols))
@@ -203,18 +209,29 @@ def _fill(ints, floats, which, rows, cols, theta):
             k = ints[io + i * cols + j]
             v = floats[fo + i * cols + j]
             out[i, j] = v + theta[k] if k >= 0 else v
+    to, tf = ints[H_TERMS], ints[H_TERMS_F]
+    for n in range(ints[H_NTERMS]):
+        if ints[to + 3 * n] == which:
+            pos = ints[to + 3 * n + 1]
+            out[pos // cols, pos % cols] += floats[tf + n] * theta[ints[to + 3 * n + 2]]
     return out
 
 
 @_njit
-def _scatter(ints, which, rows, cols, g, gtheta):
-    # dL/dtheta_k += sum of dL/dM_ij over the entries that parameter k fills
+def _scatter(ints, floats, which, rows, cols, g, gtheta):
+    # dL/dtheta_k += sum of dL/dM_ij over the entries that parameter k fills (times its
+    # coefficient at a linear-combination entry)
     io = ints[H_IDX + which]
     for i in range(rows):
         for j in range(cols):
             k = ints[io + i * cols + j]
             if k >= 0:
                 gtheta[k] += g[i, j]
+    to, tf = ints[H_TERMS], ints[H_TERMS_F]
+    for n in range(ints[H_NTERMS]):
+        if ints[to + 3 * n] == which:
+            pos = ints[to + 3 * n + 1]
+            gtheta[ints[to + 3 * n + 2]] += floats[tf + n] * g[pos // cols, pos % cols]
 
 
 @_njit
@@ -245,7 +262,8 @@ def natural(x, ints, floats):
     bo, fpos = ints[H_BLOCK], ints[H_BLOCK_F]
     for b in range(ints[H_NBLOCK]):
         off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
-        sd, L = _block_parts(x, off, q, ints[bo + BLOCK_ROW * b + 4], floats, fpos)
+        sd, L = _block_parts(x, off, q, ints[bo + BLOCK_ROW * b + 4], floats, fpos,
+                             ints[bo + BLOCK_ROW * b + 5])
         _block_put(ints, ints[bo + BLOCK_ROW * b + 3], q, _block_cov(sd, L), theta)
         fpos += 2 + 3 * q
     return theta
@@ -259,10 +277,12 @@ def _log1m_tanh2(y):
 
 
 @_njit
-def _block_parts(x, off, q, tr, floats, fpos):
+def _block_parts(x, off, q, tr, floats, fpos, nsd):
     """The SDs and the Cholesky factor L of the correlation matrix of a covariance block.
 
-    x[off:off + q] are the SDs on their transform's scale; x[off + q:] the canonical
+    x[off:off + nsd] are the SDs on their transform's scale (nsd = q, or 1 when the block's
+    variances are one parameter, as strict invariance makes them; docs/priors.md);
+    x[off + nsd:] the canonical
     partial correlations z = tanh(y), row by row of the strict lower triangle:
     L_rc = z_rc sqrt(1 - sum_{k<c} L_rk^2), L_rr = sqrt(1 - sum_{k<r} L_rk^2)
     (Lewandowski, Kurowicka & Joe 2009; docs/engine.md).
@@ -270,10 +290,10 @@ def _block_parts(x, off, q, tr, floats, fpos):
     sd = np.empty(q)
     for r in range(q):
         h = fpos + 2 + 3 * r
-        sd[r] = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[0]
+        sd[r] = _scalar_value(tr, x[off + (r if nsd == q else 0)], floats[h], floats[h + 1])[0]
     L = np.zeros((q, q))
     L[0, 0] = 1.0
-    pos = off + q
+    pos = off + nsd
     for r in range(1, q):
         rest = 1.0
         for c in range(r):
@@ -347,11 +367,12 @@ def logp_grad(x, ints, floats):
     for b in range(nb):
         off, q, fam = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1], ints[bo + BLOCK_ROW * b + 2]
         mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
+        nsd = ints[bo + BLOCK_ROW * b + 5]
         eta, norm = floats[fpos], floats[fpos + 1]
-        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        sd, L = _block_parts(x, off, q, tr, floats, fpos, nsd)
         _block_put(ints, mo, q, _block_cov(sd, L), theta)
         lp += norm
-        for r in range(q):  # each member's SD prior, on its transform's scale
+        for r in range(nsd):  # each SD's prior, on its transform's scale
             h = fpos + 2 + 3 * r
             v, dvdx, logjac, dlogjac = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])
             prior, dprior = family_logp(fam, v, floats[h], floats[h + 1], floats[h + 2])
@@ -360,7 +381,7 @@ def logp_grad(x, ints, floats):
         # LKJ(eta) on the correlation matrix with the Jacobian of the canonical partial
         # correlations z = tanh(y): sum over z_rc of (eta + (q - c - 2) / 2) log(1 - z_rc^2),
         # whose derivative in y_rc is -2 (eta + (q - c - 2) / 2) z_rc (docs/engine.md)
-        pos = off + q
+        pos = off + nsd
         for r in range(1, q):
             for c in range(r):
                 coef = eta + 0.5 * (q - c - 2.0)
@@ -415,13 +436,13 @@ def logp_grad(x, ints, floats):
     gT = v @ a.T + LgD @ G.T + 2.0 * (gPhi @ TPsi)
     gB = T.T @ gT @ T.T
     gtheta = np.zeros(n_par)
-    _scatter(ints, 0, nL, 1, ga, gtheta)
-    _scatter(ints, 1, nL, nL, gB, gtheta)
-    _scatter(ints, 2, nL, nW, gG, gtheta)
-    _scatter(ints, 3, nL, nL, gPsi, gtheta)
-    _scatter(ints, 4, nY, 1, gc2, gtheta)
-    _scatter(ints, 5, nY, nL, gLam, gtheta)
-    _scatter(ints, 6, nY, nY, gS, gtheta)
+    _scatter(ints, floats, 0, nL, 1, ga, gtheta)
+    _scatter(ints, floats, 1, nL, nL, gB, gtheta)
+    _scatter(ints, floats, 2, nL, nW, gG, gtheta)
+    _scatter(ints, floats, 3, nL, nL, gPsi, gtheta)
+    _scatter(ints, floats, 4, nY, 1, gc2, gtheta)
+    _scatter(ints, floats, 5, nY, nL, gLam, gtheta)
+    _scatter(ints, floats, 6, nY, nY, gS, gtheta)
     # --- through the parameterisation to x ----------------------------------------------------
     for j in range(ns):
         xp, k, target = ints[so + 5 * j], ints[so + 5 * j + 1], ints[so + 5 * j + 3]
@@ -431,29 +452,32 @@ def logp_grad(x, ints, floats):
     for b in range(nb):
         off, q = ints[bo + BLOCK_ROW * b], ints[bo + BLOCK_ROW * b + 1]
         mo, tr = ints[bo + BLOCK_ROW * b + 3], ints[bo + BLOCK_ROW * b + 4]
-        sd, L = _block_parts(x, off, q, tr, floats, fpos)
+        nsd = ints[bo + BLOCK_ROW * b + 5]
+        sd, L = _block_parts(x, off, q, tr, floats, fpos, nsd)
         # Sigma = M M' with M = diag(sd) L; a covariance fills two entries, so half its
-        # gradient on each
+        # gradient on each, and a variance shared by the whole diagonal (one SD) fills q
+        share = 1.0 / q if nsd == 1 else 1.0
         Gs = np.empty((q, q))
         for r in range(q):
             for cc in range(q):
                 g = gtheta[ints[mo + q + r * q + cc]]
-                Gs[r, cc] = g if r == cc else 0.5 * g
+                Gs[r, cc] = share * g if r == cc else 0.5 * g
         M = np.empty((q, q))
         for r in range(q):
             for cc in range(q):
                 M[r, cc] = sd[r] * L[r, cc]
         gM = 2.0 * (Gs @ M)
-        for r in range(q):  # SDs, through their transform
+        for r in range(q):  # SDs, through their transform (one shared SD gathers all)
             h = fpos + 2 + 3 * r
-            dvdx = _scalar_value(tr, x[off + r], floats[h], floats[h + 1])[1]
+            xr = off + (r if nsd == q else 0)
+            dvdx = _scalar_value(tr, x[xr], floats[h], floats[h + 1])[1]
             gsd = 0.0
             for cc in range(r + 1):
                 gsd += gM[r, cc] * L[r, cc]
-            grad[off + r] += gsd * dvdx
+            grad[xr] += gsd * dvdx
         # row r of L: L_rc = z_rc w_c (c < r), L_rr = w_r, w_c = prod_{k<c} sqrt(1 - z_rk^2);
         # d/dy_rc = gL_rc w_c (1 - z_rc^2) - z_rc sum_{k=c+1..r} gL_rk L_rk
-        pos = off + q
+        pos = off + nsd
         for r in range(1, q):
             w = 1.0
             for c in range(r):

@@ -12,8 +12,8 @@ The unconstrained vector has the layout of the PyMC model of
 :func:`bayeslong.infer.pymc_model.build_model`: first one entry per scalar random variable
 (parameters with a ``value`` prior, and the SDs of variances outside LKJ blocks, in prior
 order; PyMC's default transform for the family's support: none, log, or log-odds for
-uniform), then per covariance block its SDs and its canonical partial correlations (atanh
-scale). The log density is the PyMC model's term for term, so the posterior is the same.
+uniform), then per covariance block its SDs (one, when the block's variances are one parameter) and
+its canonical partial correlations (atanh scale). The log density is the PyMC model's term for term, so the posterior is the same.
 A prior given as a PyMC factory (a callable) has no array form: :func:`supported` is False
 and :func:`bayeslong.infer.sampling.fit` takes the PyMC path.
 """
@@ -35,8 +35,8 @@ FAMILY_CODES = {"normal": 0, "student_t": 1, "uniform": 2, "halfnormal": 3, "hal
                 "exponential": 5, "lognormal": 6, "gamma": 7}
 _IDENTITY, _LOG, _INTERVAL = range(3)
 _MATRICES = ("a", "B", "G", "Psi", "nu", "Lam", "Theta")
-HEADER_SIZE = 30  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
-BLOCK_ROW = 5     # generic_kernel.BLOCK_ROW
+HEADER_SIZE = 33  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
+BLOCK_ROW = 6     # generic_kernel.BLOCK_ROW
 
 
 def _transform(family: str) -> int:
@@ -155,11 +155,13 @@ class Layout:
             x[xp] = v
         bo = self.ints[25]
         for b in range(self.ints[7]):
-            off, q, _, mo, tr = self.ints[bo + BLOCK_ROW * b: bo + BLOCK_ROW * (b + 1)]
+            off, q, _, mo, tr, nsd = self.ints[bo + BLOCK_ROW * b: bo + BLOCK_ROW * (b + 1)]
             idx = self.ints[mo + q: mo + q + q * q].reshape(q, q)
             h = self.ints[26] + sum(2 + 3 * self.ints[bo + BLOCK_ROW * k + 1] for k in range(b))
             lo, hi = self.floats[h + 2: h + 2 + 3 * q: 3], self.floats[h + 3: h + 3 + 3 * q: 3]
-            x[off: off + q + q * (q - 1) // 2] = block_to_x(theta[idx], tr, lo, hi)
+            head = block_to_x(theta[idx], tr, lo, hi)
+            # one shared SD (strict invariance): the members' SDs are equal, keep one
+            x[off: off + nsd + q * (q - 1) // 2] = head if nsd == q else np.r_[head[:1], head[q:]]
         return x
 
 
@@ -182,6 +184,13 @@ def _build_layout(structure: Structure, prior_set: PriorSet) -> Layout:
         ints.extend(int(v) for v in mat.index.ravel())
         ints[16 + m] = len(floats)
         floats.extend(float(v) for v in mat.fixed.ravel())
+    # entries that are linear combinations of parameters (Matrix.terms): matrix code, flat
+    # position, parameter; their coefficients in floats (generic_kernel._fill)
+    terms = [(m, int(pos), int(k), float(coef)) for m, name in enumerate(_MATRICES)
+             for pos, k, coef in structure.matrices[name].terms]
+    ints[30], ints[31], ints[32] = len(terms), len(ints), len(floats)
+    ints.extend(v for m, pos, k, _ in terms for v in (m, pos, k))
+    floats.extend(coef for *_, coef in terms)
     in_lkj = {int(i) for b in prior_set.blocks for i in np.diag(structure.blocks[b].index)}
     scalars, hyper, names = [], [], []
     for i, p in enumerate(prior_set.priors):
@@ -205,14 +214,15 @@ def _build_layout(structure: Structure, prior_set: PriorSet) -> Layout:
         diag = [int(i) for i in np.diag(idx)]
         family = prior_set.priors[diag[0]].family
         tr = _transform(family)
-        table.append([n_x, q, FAMILY_CODES[family], -1, tr])
+        nsd = 1 if len(set(diag)) == 1 else q  # one shared SD: the variances are one parameter
+        table.append([n_x, q, FAMILY_CODES[family], -1, tr, nsd])
         members.append(diag + [int(v) for v in idx.ravel()])
         bfloats.extend([prior_set.lkj_eta(b), lkj_norm(q)])
         for i in diag:
             bfloats.extend(list(prior_set.priors[i].args) + [0.0] * (3 - len(prior_set.priors[i].args)))
-        names.append((lkj_sd_name(prior_set, b) + suffix[tr], q))
+        names.append((lkj_sd_name(prior_set, b) + suffix[tr], nsd))
         names.append((lkj_name(prior_set, b) + "_" + CPC_TRANSFORM + "__", q * (q - 1) // 2))
-        n_x += q + q * (q - 1) // 2
+        n_x += nsd + q * (q - 1) // 2
     ints[7] = len(table)
     ints[25] = len(ints)
     member_start = len(ints) + BLOCK_ROW * len(table)

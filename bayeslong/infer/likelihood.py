@@ -246,7 +246,10 @@ def loglik_function(structure):
 def _nonlinear_parameters(structure) -> np.ndarray:
     # parameters in B or Lam: the only ones the moments are not linear in (a, G, Psi, nu
     # and Theta enter linearly, and two of them never multiply each other)
-    idx = np.concatenate([structure.matrices[m].index.ravel() for m in ("B", "Lam")])
+    # (a parameter counts also where it fills a linear-combination entry, Matrix.terms)
+    idx = np.concatenate([structure.matrices[m].index.ravel() for m in ("B", "Lam")]
+                         + [np.array([k for _, k, _ in structure.matrices[m].terms], dtype=np.int64)
+                            for m in ("B", "Lam")])
     return np.unique(idx[idx >= 0])
 
 

@@ -28,6 +28,7 @@ from bayeslong.errors import (
     ConvergenceWarning,
     DataError,
     IdentificationError,
+    SpecError,
 )
 from bayeslong.infer.likelihood import loglik_function, pattern_arrays
 from bayeslong.infer.newton import hessian, maximise
@@ -167,6 +168,14 @@ def fit_ml(spec: Spec, panel, *, starts: int = 4, seed: int = 0, check: bool = T
 
 def _fit_ml(spec: Spec, panel, *, starts: int, seed: int, check: bool) -> MLResult:
     structure = structure_for(spec, panel)
+    if "deviation" in structure.kinds:
+        raise SpecError(
+            f"model '{spec.name}' has invariance='approximate': each wave's loading and "
+            "intercept is a common value plus a deviation, and only the deviations' small prior "
+            "tells the two apart, so there is no maximum likelihood estimate. Fit it with "
+            "bl.fit (Bayesian), or by maximum likelihood with invariance='scalar' (exact), or "
+            "with release={'loading': [...], 'intercept': [...]} for indicators that differ "
+            "by wave (partial invariance)")
     if check:
         _check_identified(spec, panel, structure)
     f = loglik_function(structure)

@@ -243,6 +243,8 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     same-wave path ``same_wave[y<-y']``           as a cross-lag
     indicator intercept ``intercept[j]``          Normal(0, 3 s_j + |m_j|)
     unique variance ``unique_var[j]``             its SD ~ HalfNormal(s_j)
+    deviation ``intercept_deviation[j,t]``        Normal(0, d_nu s_j)
+    deviation ``loading_deviation[j,t]``          Normal(0, d_lambda s_j / s)
     ============================================  =====================================
 
     For a process measured by several indicators, m and s are those of its first listed
@@ -250,7 +252,11 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     indicator j (:meth:`~bayeslong.data.Panel.indicator_scale`). A loading is centred on the
     marker's 1 (an indicator on the marker's scale); an intercept is the indicator's mean
     minus its loading times the latent's mean, centred on 0 with the same wide location
-    scale as the means.
+    scale as the means. Under approximate invariance each wave's deviation of an intercept
+    or a loading from the indicator's common value has the small SD ``deviation_sd``
+    (d_nu, d_lambda; default 0.05) in the indicator's SDs; for a loading, whose unit is the
+    indicator's per marker unit, that is d_lambda s_j / s (Muthén & Asparouhov 2012;
+    docs/model-family.md, "Approximate invariance").
 
     A slope mean is a change per wave (per unit of time score); in the dual change model
     it is the constant change added at every wave, so 0 with scale s (the pooled SD, which
@@ -272,10 +278,19 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
     outcome, cov = _scales(panel)
     names = list(panel.outcomes)
     block_of = _block_membership(structure)
-    items = {n: v for n, v in panel.indicator_scale().items() if n not in outcome}
+    every = panel.indicator_scale()
+    items = {n: v for n, v in every.items() if n not in outcome}
     out = []
+    home = {n: k for k, group in (structure.indicators or {}).items() for n in group}
     for i, (name, kind) in enumerate(zip(structure.names, structure.kinds)):
         keys = _keys(name)
+        if kind == "deviation":  # approximate invariance (model/measurement.py)
+            part = "loading" if name.startswith("loading_") else "intercept"
+            sj = every[keys[0]]["sd"]
+            unit = sj if part == "intercept" else sj / outcome[home[keys[0]]]["sd"]
+            out.append(Prior(parameter=name, family="normal",
+                             args=(0.0, structure.spec.measurement["deviation_sd"][part] * unit)))
+            continue
         if keys and keys[0] in items and name.startswith(("loading[", "intercept[", "unique_")):
             mj, sj = items[keys[0]]["mean"], items[keys[0]]["sd"]
             if name.startswith("loading["):  # a cross-loading (j<-k) is centred on none
@@ -336,13 +351,16 @@ def _block_membership(structure: Structure) -> dict[int, int]:
                 "is not supported by the Bayesian fit (a same-wave path among three or more "
                 "processes fixes its pair's disturbance covariance at zero); fit it by maximum "
                 "likelihood, or free those covariances in the model file")
-        if len(set(np.diag(idx).tolist())) < len(idx):
+        # one variance on the whole diagonal (strict invariance with unique covariances over
+        # waves) is one SD times the block's correlation matrix; only a partly shared
+        # diagonal has no such form
+        if 1 < len(set(np.diag(idx).tolist())) < len(idx):
             raise SpecError(
                 f"model '{structure.spec.name}': the variances "
                 f"{structure.names[int(idx[0, 0])]!r}... are held equal within one covariance "
-                "block (strict invariance with unique covariances over waves), which the "
-                "Bayesian fit's SD and LKJ priors cannot express yet; fit it by maximum "
-                "likelihood, or choose unique_covariance='none'")
+                "block, some but not all of them, which the Bayesian fit's SD and LKJ priors "
+                "cannot express; give the block's variances one parameter or one each, or fit "
+                "this model by maximum likelihood (bl.fit_ml)")
         for k in np.unique(idx):
             if int(k) in member and member[int(k)] != b:
                 raise SpecError(

@@ -223,7 +223,8 @@ def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, value
 
     The members' SD priors share a family (resolve_priors checks): one vector of SDs, on
     the family's default transform, apart from the correlation matrix, which is sampled as
-    its canonical partial correlations (:class:`PartialCorrelations`). SDs and
+    its canonical partial correlations (:class:`PartialCorrelations`); a block whose
+    variances are one parameter (strict invariance) has one SD. SDs and
     correlations on separate axes keep the posterior free of the funnel a covariance-scale
     Cholesky factor has when a variance nears zero (docs/priors.md). PyMC's LKJ needs a
     constant eta: the matrix is drawn with eta = 1 (uniform over correlation matrices) and
@@ -233,12 +234,18 @@ def lkj_block(structure, prior_set: PriorSet, b: int, hyper, slices: dict, value
     diag = [int(i) for i in np.diag(structure.blocks[b].index)]
     members = [prior_set.priors[i] for i in diag]
     q = len(members)
-    args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
-            for j in range(len(members[0].args))]
-    cls, kwargs = family_dist(members[0].family, args)
-    sds = cls(lkj_sd_name(prior_set, b), **kwargs, shape=q)
-    for r, m in enumerate(members):
-        values[m.rv_name] = sds[r]
+    if len(set(diag)) == 1:  # one variance on the whole diagonal: one SD (docs/priors.md)
+        first = members[0]
+        cls, kwargs = family_dist(first.family, [hyper[slices[first.parameter].start + j]
+                                                 for j in range(len(first.args))])
+        values[first.rv_name] = cls(lkj_sd_name(prior_set, b), **kwargs, shape=1)[0]
+    else:
+        args = [pt.stack([hyper[slices[m.parameter].start + j] for m in members])
+                for j in range(len(members[0].args))]
+        cls, kwargs = family_dist(members[0].family, args)
+        sds = cls(lkj_sd_name(prior_set, b), **kwargs, shape=q)
+        for r, m in enumerate(members):
+            values[m.rv_name] = sds[r]
     first = next(p for p in prior_set.priors if p.target == "correlation" and p.block == b)
     eta = hyper[slices[first.parameter].start]
     vec = uniform_correlations(lkj_name(prior_set, b), q)

@@ -368,7 +368,7 @@ def _start_point(model, structure, panel, prior_set, seed: int = 0) -> dict:
         diag = [int(i) for i in np.diag(structure.blocks[b].index)]
         in_lkj.update(diag)
         q = len(diag)
-        point[lkj_sd_name(prior_set, b)] = sd[diag]
+        point[lkj_sd_name(prior_set, b)] = sd[diag[:1]] if len(set(diag)) == 1 else sd[diag]
         point[lkj_name(prior_set, b)] = np.zeros(q * (q - 1) // 2)
     for i, p in enumerate(prior_set.priors):
         if p.factory is not None or i in in_lkj:

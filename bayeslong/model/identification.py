@@ -62,6 +62,10 @@ def _measurement_advice(spec, structure, deficient) -> str:
     several = any(len(g) > 1 for g in (structure.indicators or {}).values())
     level = spec.measurement["invariance"]
     means = [n for n in deficient if n.split("[")[0].endswith("_mean") or n.startswith("intercept")]
+    if several and level == "approximate":
+        return ("Under approximate invariance the common values and the per-wave deviations "
+                "of loadings and intercepts are told apart only by the deviations' prior: the "
+                "Bayesian fit (bl.fit) is identified through it, maximum likelihood is not. ")
     if not several or not means:
         return ""
     if level in ("configural", "metric"):

@@ -23,6 +23,16 @@ Muthén 1989); as long as one indicator keeps its intercept equal over waves the
 stay identified (the marker's origin at the first wave, that indicator's intercept for how
 the latent's mean moves).
 
+Approximate invariance (``invariance="approximate"``; Muthén & Asparouhov 2012) is a
+Bayesian middle way between scalar and configural: the loading and the intercept of every
+indicator but the marker are ``common + deviation[t]`` at wave t, and each deviation has a
+Normal(0, s) prior (infer/priors.py; ``deviation_sd``). The entry is a sum of two parameters,
+written as a linear-combination entry of the structure (``Matrix.terms``), so the moments,
+the generic kernel and the PyMC model take it as they take effects coding. The marker keeps
+its loading 1 and intercept 0 at every wave (it sets the latent's unit and origin at every
+wave); the common value and the deviations are identified only jointly with their prior,
+so maximum likelihood refuses this level (infer/ml.py).
+
 Unique factors of the same indicator may covary over waves (``unique_covariance =
 "same-indicator"``, the default): the specific part of an item recurs at every wave, and
 leaving that covariance out pushes it into the latent's stability (common practice in
@@ -37,6 +47,9 @@ Little, T. D. (2013). Longitudinal Structural Equation Modeling. Guilford Press.
 Little, T. D., Slegers, D. W. & Card, N. A. (2006). A non-arbitrary method of identifying and
 scaling latent variables in SEM and MACS models. Structural Equation Modeling 13(1), 59-72.
 doi:10.1207/s15328007sem1301_3
+Muthén, B. & Asparouhov, T. (2012). Bayesian structural equation modeling: a more flexible
+representation of substantive theory. Psychological Methods 17(3), 313-335.
+doi:10.1037/a0026802
 Meredith, W. (1993). Measurement invariance, factor analysis and factorial invariance.
 Psychometrika 58(4), 525-543. doi:10.1007/BF02294825
 Widaman, K. F. & Reise, S. P. (1997). Exploring the measurement invariance of psychological
@@ -56,7 +69,12 @@ EQUAL_PARTS = {
     "metric": ("loading",),
     "scalar": ("loading", "intercept"),
     "strict": ("loading", "intercept", "unique_var"),
+    # equal up to a per-wave deviation with a small prior (see module notes)
+    "approximate": ("loading", "intercept"),
 }
+
+#: Names of the per-wave deviations of approximate invariance, by part.
+DEVIATION_BASES = {"loading": "loading_deviation", "intercept": "intercept_deviation"}
 
 
 def _label(base: str, *keys) -> str:
@@ -123,11 +141,24 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
     def equal_over_waves(part: str, name: str) -> bool:
         return part in equal and name not in released[part]
 
-    def loading(name: str, t: int) -> str:
-        return _label("loading", name, None if equal_over_waves("loading", name) else t)
+    approximate = m["invariance"] == "approximate"
 
-    def intercept(name: str, t: int) -> str:
-        return _label("intercept", name, None if equal_over_waves("intercept", name) else t)
+    def parts(part: str, name: str, t: int, coef: float = 1.0) -> list[tuple[str, str, float]]:
+        # the parameters whose sum is ``part`` of indicator ``name`` at wave t: one, or under
+        # approximate invariance the common value plus the wave's deviation
+        if not equal_over_waves(part, name):
+            return [(_label(part, name, t), part, coef)]
+        common = [(_label(part, name), part, coef)]
+        if approximate:
+            common.append((_label(DEVIATION_BASES[part], name, t), "deviation", coef))
+        return common
+
+    def place(which: str, pos, part: str, name: str, t: int) -> None:
+        (label, kind, _), *more = parts(part, name, t)
+        if more:
+            tab.combine(which, pos, 0.0, parts(part, name, t))
+        else:
+            tab.put(which, pos, label, kind)
 
     others = [n for n in names if n != marker]
     free_origin: set[int] = set()
@@ -138,21 +169,22 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
                 # effects coding: the loadings average 1 at every wave, so this one is
                 # J - (sum of the others) (Little, Slegers & Card 2006)
                 tab.combine("Lam", (row, eta_row(t)), float(len(names)),
-                            [(loading(n, t), "loading", -1.0) for n in others])
+                            [p for n in others for p in parts("loading", n, t, -1.0)])
             elif name == marker:
                 tab.fix("Lam", (row, eta_row(t)), 1.0)
             else:
-                tab.put("Lam", (row, eta_row(t)), loading(name, t), "loading")
+                place("Lam", (row, eta_row(t)), "loading", name, t)
             same = equal_over_waves("intercept", name)
             if name == marker and (same or t == 1):
                 if effects:  # the intercepts sum to 0: this one is minus the others
-                    tab.combine("nu", row, 0.0, [(intercept(n, t), "intercept", -1.0) for n in others])
+                    tab.combine("nu", row, 0.0,
+                                [p for n in others for p in parts("intercept", n, t, -1.0)])
                 else:
                     tab.fix("nu", row, 0.0)
                 continue
             if name == marker:
                 free_origin.add(t)
-            tab.put("nu", row, intercept(name, t), "intercept")
+            place("nu", row, "intercept", name, t)
         # unique variances and, if asked, their covariances over waves
         same = equal_over_waves("unique_var", name)
         var = [_label("unique_var", name, None if same else t) for t in range(1, T + 1)]

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import tomllib
 from dataclasses import dataclass, field
 from importlib import resources
@@ -33,7 +34,7 @@ OPTION_VALUES: dict[str, tuple[str, ...]] = {
 #: ``release`` (indicator names, or a mapping part -> names) are free-form, checked
 #: against the panel's indicators when the structure is built.
 MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
-    "invariance": ("scalar", "configural", "metric", "strict"),
+    "invariance": ("scalar", "configural", "metric", "strict", "approximate"),
     "scale": ("marker", "effects"),
     "unique_covariance": ("same-indicator", "none"),
     # categorical indicators (model/thresholds.py): the latent response's error
@@ -45,7 +46,11 @@ MEASUREMENT_VALUES: dict[str, tuple[str, ...]] = {
 INVARIANCE_LEVELS = ("configural", "metric", "scalar", "strict")
 #: Parts of the measurement model a release frees from the invariance level's equalities.
 RELEASE_PARTS = ("loading", "intercept", "unique_var")
-MEASUREMENT_KEYS = (*MEASUREMENT_VALUES, "marker", "release", "cross_loadings")
+MEASUREMENT_KEYS = (*MEASUREMENT_VALUES, "marker", "release", "cross_loadings", "deviation_sd")
+#: Default SD ``s`` of the Normal(0, s) prior on each wave's deviation of a loading and of an
+#: intercept from the indicator's common value under ``invariance="approximate"``, in the
+#: indicator's standard deviations (docs/model-family.md, "Approximate invariance").
+DEVIATION_SD = {"loading": 0.05, "intercept": 0.05}
 #: Options of the paths among several processes (docs/model-family.md, "Several processes"):
 #: ``cross_lags`` ("all", "none", or {"drop": ["y<-x", ...]}) and ``same_wave`` (a list of
 #: "y<-x" pairs, regressions among the latents of one wave). Names are checked against the
@@ -254,7 +259,8 @@ class Spec:
         d["factors"] = list(self.factors)
         d["allowed"] = {k: list(v) for k, v in self.allowed.items()}
         d["measurement"] = {k: (list(v) if isinstance(v, tuple) else
-                                {p: list(n) for p, n in v.items()} if isinstance(v, dict) else v)
+                                {p: list(n) if isinstance(n, tuple) else n for p, n in v.items()}
+                                if isinstance(v, dict) else v)
                             for k, v in self.measurement.items()}
         d["paths"] = {k: (list(v) if isinstance(v, tuple) else
                           {p: list(n) for p, n in v.items()} if isinstance(v, dict) else v)
@@ -319,6 +325,28 @@ def _resolve_measurement(given, where: str = "") -> dict:
                         + repr(cross))
     out["cross_loadings"] = {i: ((p,) if isinstance(p, str) else tuple(dict.fromkeys(p)))
                              for i, p in cross.items()}
+    out["deviation_sd"] = _deviation_sd(given.get("deviation_sd"), where)
+    return out
+
+
+def _deviation_sd(given, where: str) -> dict:
+    """``deviation_sd``: one number for loadings and intercepts, or a mapping part -> number.
+
+    Kept whatever the invariance level (a spec changed to another level and back keeps it);
+    only ``invariance="approximate"`` reads it.
+    """
+    if given is None:
+        return dict(DEVIATION_SD)
+    parts = given if isinstance(given, dict) else {p: given for p in DEVIATION_SD}
+    out = dict(DEVIATION_SD)
+    for part, value in parts.items():
+        _choice("deviation_sd", part, tuple(DEVIATION_SD), where)
+        ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+        if not ok or not math.isfinite(value) or value <= 0:
+            raise SpecError(f"`deviation_sd`{where} must be a positive number (the SD of each "
+                            "wave's deviation, in the indicator's SDs), or a mapping such as "
+                            f"{{'loading': 0.05, 'intercept': 0.1}}; got {given!r}")
+        out[part] = float(value)
     return out
 
 
@@ -430,7 +458,9 @@ def model(name: str, **options) -> Spec:
         time-varying), ``residuals`` (equal | free), ``effects`` (constant |
         time-varying), ``intercepts`` (equal | free); the model file narrows them.
         Measurement options (processes with several indicators): ``invariance``
-        (configural | metric | scalar | strict), ``marker``, ``release``,
+        (configural | metric | scalar | strict | approximate), ``deviation_sd`` (the SD of
+        the per-wave deviations under approximate invariance, a number or
+        {"loading": s, "intercept": s}), ``marker``, ``release``,
         ``unique_covariance`` (same-indicator | none), ``scale`` (marker | effects),
         ``cross_loadings`` (indicator -> other process). Several processes: ``processes``
         (K, for a model written for several), ``cross_lags`` ("all", "none" or

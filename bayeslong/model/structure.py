@@ -28,10 +28,11 @@ from bayeslong.model.paths import cross_loading_name, settle_cross_loadings, set
 from bayeslong.model.spec import Spec, check_spec
 
 #: Names of the measurement part's parameters (model/measurement.py).
-_MEASUREMENT_BASES = ("loading", "intercept", "unique_var", "unique_cov")
+_MEASUREMENT_BASES = ("loading", "intercept", "unique_var", "unique_cov", "loading_deviation",
+                      "intercept_deviation")
 
 #: Parameter kinds, used by priors and start values.
-KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov")
+KINDS = ("mean", "intercept", "loading", "lag", "effect", "var", "cov", "deviation")
 
 
 @dataclass(frozen=True, eq=False)

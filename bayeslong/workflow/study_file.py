@@ -66,7 +66,9 @@ Top level
     stress on the previous wave's sleep left out), ``same_wave`` (``["sleep<-stress"]``:
     sleep regressed on stress at the same wave; ``"stress->sleep"`` says the same).
     Processes measured by several indicators: ``invariance`` (``"configural"``,
-    ``"metric"``, ``"scalar"``, ``"strict"``), ``release`` (indicator names, or
+    ``"metric"``, ``"scalar"``, ``"strict"``, ``"approximate"`` with ``deviation_sd``, a
+    number or ``{ loading = 0.05, intercept = 0.05 }``; Bayesian fits only), ``release``
+    (indicator names, or
     ``{ intercept = ["fell_asleep"] }``), ``unique_covariance`` (``"same-indicator"``,
     ``"none"``), ``scale`` (``"marker"``, ``"effects"``), ``marker`` (an indicator name, or
     a list with one per process), ``cross_loadings`` (``{ woke_rarely = "stress" }``).

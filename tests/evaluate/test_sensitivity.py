@@ -343,3 +343,44 @@ def test_lag_models_for_three_processes():
     assert lag_models(panel) == ["bivariate-alt", "clpm", "ri-clpm"]
     assert catalog_spec("ri-clpm", panel).processes == 3
     assert lag_parameter(spec, panel.outcomes) == "lag[y1<-y1]"
+
+
+# --- the deviation-SD axis (approximate invariance) ------------------------------------------
+def _indicator_study(n_units, seed):
+    # invented: three indicators of one process (ALT, scalar invariance)
+    params = {**ALT, "loading[b]": 0.8, "loading[c]": 1.2, "unique_var": 0.5, "unique_cov": 0.1,
+              "intercept[b]": 1.0, "intercept[c]": -0.5}
+    df = bl.simulate(bl.model("alt"), params, n_units, 4, seed=seed, indicators={"y": ["a", "b", "c"]})
+    return bl.Panel.from_long(df, unit="unit", wave="wave", outcomes={"y": ["a", "b", "c"]})
+
+
+def test_deviation_sd_axis_refits_an_approximate_invariance_model():
+    pytest.importorskip("bayeslong.infer.sampling")
+    import warnings
+
+    from bayeslong.infer.sampling import _arviz_numpy
+
+    panel = _indicator_study(200, 21)
+    approx = bl.model("alt", invariance="approximate")
+    kw = dict(draws=300, tune=300, chains=2, seed=3)
+    off = dict(prior_grid=False, variance_scales=False, initial=False, specification=False,
+               power_scaling=False, fit_kwargs=kw)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)  # small runs; not the point
+        result = bl.lag_sensitivity(panel, models=[approx], deviation_sds=[1e-4, 1.0], **off)
+        scalar = bl.fit(bl.model("alt"), panel, progressbar=False, **kw)
+    t = result.table
+    assert list(t["axis"]) == ["default", "deviation SD", "deviation SD"]
+    assert list(t["setting"][1:]) == ["deviation_sd 0.0001", "deviation_sd 1"]
+    _check_flags(t)
+    # a deviation SD of 1e-4 is scalar invariance (Muthén & Asparouhov 2012): the lag's
+    # posterior mean as in the scalar fit, within 4 combined Monte Carlo standard errors
+    # (the two runs have the same size, so the scalar fit's mcse stands for both)
+    tiny = t[t["setting"] == "deviation_sd 0.0001"].iloc[0]
+    lag = scalar.idata.posterior["lag"]
+    with _arviz_numpy():
+        mcse = float(az.mcse(scalar.idata, var_names=["lag"])["lag"])
+    assert abs(tiny["mean"] - float(lag.mean())) < 4.0 * np.sqrt(2.0) * mcse
+    # offered only where it applies: not for a model with exact invariance
+    with pytest.raises(SpecError, match="`deviation_sds` refits .* invariance='scalar'"):
+        bl.lag_sensitivity(panel, models=["alt"], deviation_sds=[0.1], **off)

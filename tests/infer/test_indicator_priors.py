@@ -4,7 +4,6 @@ import numpy as np
 import pytest
 
 import bayeslong as bl
-from bayeslong.errors import SpecError
 from bayeslong.infer.priors import default_priors
 from bayeslong.model.structure import structure_for
 
@@ -38,9 +37,17 @@ def test_indicator_priors_follow_the_documented_rule(frame_and_panel):
     np.testing.assert_allclose(priors["resid_var[2]"].args, (s_a,), rtol=1e-12)
 
 
-def test_strict_with_unique_covariances_is_refused_by_the_bayesian_priors(frame_and_panel):
-    _, panel = frame_and_panel
+def test_strict_with_unique_covariances_has_one_sd_per_indicator(frame_and_panel):
+    # strict invariance holds unique_var[j] equal at every wave, inside the block of j's
+    # unique covariances over waves: the prior is one SD (the rule above, HalfNormal(s_j))
+    # times the block's LKJ correlation matrix (docs/priors.md)
+    from bayeslong.infer.generic_logp import layout
+    from bayeslong.infer.priors import resolve_priors
+
+    df, panel = frame_and_panel
     structure = structure_for(bl.model("alt", invariance="strict"), panel)
-    with pytest.raises(SpecError, match=r"held equal within one covariance block \(strict "
-                                        r"invariance with unique covariances over waves\)"):
-        default_priors(structure, panel)
+    prior_set = resolve_priors(structure, panel)
+    np.testing.assert_allclose(prior_set["unique_var[b]"].args, (df["b"].std(ddof=1),), rtol=1e-12)
+    sizes = dict(layout(structure, prior_set).value_names)
+    assert sizes["lkj__unique_var[b]__unique_var[b]__unique_var[b]__unique_var[b]__sd_log__"] == 1
+    assert sizes["lkj__unique_var[b]__unique_var[b]__unique_var[b]__unique_var[b]_cpc__"] == 6

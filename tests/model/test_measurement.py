@@ -160,7 +160,8 @@ def test_configural_growth_means_are_not_identified():
     "options, message",
     [
         ({"invariance": "scaler"},
-         r"`invariance` in model 'alt' must be one of scalar, configural, metric, strict; got "
+         r"`invariance` in model 'alt' must be one of scalar, configural, metric, strict, "
+         r"approximate; got "
          r"'scaler'; did you mean 'scalar'\?"),
         ({"unique_covariance": "all"}, r"`unique_covariance` in model 'alt' must be one of "
                                        r"same-indicator, none; got 'all'"),
