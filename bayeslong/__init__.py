@@ -21,7 +21,7 @@ from bayeslong.model.identification import Identification, identify
 from bayeslong.model.spec import Spec, catalog, load_model, model
 
 _LAZY = {
-    "Fit": "infer.sampling", "fit": "infer.fitting", "load_fit": "infer.sampling",
+    "Fit": "infer.sampling", "fit": "infer.fitting", "load_fit": "infer.fitting",
     "CategoricalFit": "infer.categorical",
     "Prior": "infer.priors", "PriorSet": "infer.priors", "prior_predictive": "infer.priors",
     "build_model": "infer.pymc_model",

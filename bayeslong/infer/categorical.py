@@ -30,6 +30,8 @@ doi:10.1214/088342307000000014
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import os
 import time
 import warnings
@@ -241,6 +243,7 @@ class CategoricalFit(Fit):
     """
 
     categorical: Categorical | None = None
+    gaps: dict = dataclasses.field(default_factory=dict)
 
     def diagnostics(self) -> pd.DataFrame:
         return diagnose(self.idata, self.categorical.names)
@@ -255,11 +258,11 @@ class CategoricalFit(Fit):
         table.index.name = "parameter"
         return table
 
-    def save(self, path):
-        """Not available yet for categorical fits (the file would lose the categories)."""
-        raise SpecError("saving a fit with categorical variables is not supported yet: "
-                        "load_fit would rebuild the panel without its categories. Keep the "
-                        "InferenceData instead: fit.idata.to_netcdf(path)")
+    def file_attrs(self) -> dict:
+        """:meth:`Fit.file_attrs` plus the priors of the thresholds' gaps (the panel's
+        categories are among its labels); ``bl.load_fit`` reads them back."""
+        return {**super().file_attrs(),
+                "bayeslong_threshold_priors": json.dumps({k: list(v) for k, v in self.gaps.items()})}
 
     def threshold_draws(self) -> np.ndarray:
         """The thresholds' draws, (chains * draws, n_thresholds), ``categorical.thresholds`` order."""
@@ -333,10 +336,25 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
         loglik_s = time.perf_counter() - t0
     result = CategoricalFit(spec=spec, panel=panel, structure=cat.structure, seed=int(seed),
                             idata=idata, prior_set=prior_set, sampler=which, categorical=cat,
+                            gaps=gaps,
                             timing={"build": build_s, "compile": compile_s, "sample": sample_s,
                                     "loglik": loglik_s})
     warn_convergence(result.diagnostics())
     return result
+
+
+def categorical_fit_from_file(idata, attrs, spec, panel, path) -> CategoricalFit:
+    """The :class:`CategoricalFit` of a file read by
+    :func:`bayeslong.infer.sampling.read_fit_file` (``bl.load_fit`` calls it)."""
+    from bayeslong.infer.sampling import stored_priors
+
+    cat = categorical_structure(spec, panel)
+    gaps = {k: tuple(v) for k, v in json.loads(attrs.get("bayeslong_threshold_priors", "{}")).items()}
+    prior_set, gaps = categorical_priors(cat, panel, {**stored_priors(attrs, path), **gaps})
+    return CategoricalFit(spec=spec, panel=panel, structure=cat.structure,
+                          seed=int(attrs["bayeslong_seed"]), idata=idata, prior_set=prior_set,
+                          sampler=str(attrs.get("bayeslong_sampler", "")), categorical=cat,
+                          gaps=gaps, timing={})
 
 
 def _tidy(raw, cat: Categorical, panel, keep, loglik_draws, points, replicates, seed):
