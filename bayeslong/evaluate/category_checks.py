@@ -14,11 +14,14 @@ Two statistics are set against their replicated distributions:
 
 - the share of each category at each wave, over the units observed there;
 - the transition table between consecutive waves: the number of units in category a at
-  wave t-1 and b at wave t, over the units observed at both; it shows whether the model
-  carries the right amount of stability (staying in a category) and movement.
+  wave t-1 and b at wave t, over the units observed at both, and its diagonal summed (the
+  units that stayed in their category); they show whether the model carries the right
+  amount of stability and movement.
 
 References
 ----------
+Lancaster, H. O. (1961). Significance tests in discrete distributions. Journal of the
+American Statistical Association 56(294), 223-234. doi:10.1080/01621459.1961.10482105
 Gelman, A., Meng, X.-L., & Stern, H. (1996). Posterior predictive assessment of model fitness
 via realized discrepancies. Statistica Sinica 6(4), 733-760.
 """
@@ -121,7 +124,9 @@ def transition_counts(y: np.ndarray, n_categories: int) -> np.ndarray:
 
 def _row(observed: float, reps: np.ndarray, **labels) -> dict:
     q = np.quantile(reps, QUANTILES)
-    p = float(np.mean(reps >= observed))
+    # mid-p: shares and counts are discrete, and ties at the observed value would push
+    # P(T_rep >= T_obs) to 1 for a count at the floor of its range (Lancaster 1961)
+    p = float(np.mean(reps > observed) + 0.5 * np.mean(reps == observed))
     return {**labels, "observed": float(observed), "rep_mean": float(reps.mean()),
             "rep_q05": q[0], "rep_q25": q[1], "rep_q75": q[3], "rep_q95": q[4],
             "p_value": p, "flag": bool(p < 0.05 or p > 0.95)}
@@ -144,23 +149,27 @@ def category_ppc(fit, *, draws: int = 200, seed=0) -> dict[str, pd.DataFrame]:
         ``wave`` (the data's label), ``category`` (the category's code or label),
         ``observed`` (share among the units observed at that wave), ``rep_mean``,
         ``rep_q05``, ``rep_q25``, ``rep_q75``, ``rep_q95`` (quantiles of the replicated
-        share), ``p_value`` = P(share_rep >= share_obs) and ``flag`` (p < 0.05 or > 0.95).
+        share), ``p_value`` = P(share_rep > share_obs) + P(share_rep = share_obs) / 2 (the
+        mid-p value of a discrete statistic) and ``flag`` (p < 0.05 or > 0.95).
         ``transitions``: one row per variable, pair of consecutive waves and pair of
         categories: ``variable``, ``from_wave``, ``wave``, ``from``, ``to``, ``observed``
         (count of units), the same replicated columns, ``p_value`` and ``flag``.
+        ``stayed``: per variable and pair of consecutive waves, the number of units in the
+        same category at both (the diagonal of the transition table), with the same columns.
 
     Notes
     -----
     Replicates keep the data's missing entries, so each share or count is over the same
     units in the data and in every replicate. Predictive p-values pile up near 0.5 under a
     true model (Gelman, Meng & Stern 1996): a flag is a signal, its absence no proof of fit.
+    With many cells (C x C per pair of waves), some fall in the outer tails by chance.
     """
     _check_categorical_fit(fit, "category_ppc")
     panel, cat = fit.panel, fit.categorical
     rep = replicate_categories(fit, draws=draws, seed=seed)
     names = list(panel.observed_names)
     waves = list(panel.waves)
-    shares, moves = [], []
+    shares, moves, stays = [], [], []
     for v in cat.variables:
         j, C = names.index(v), cat.n_categories[v]
         labels = list(panel.categories[v])
@@ -172,12 +181,15 @@ def category_ppc(fit, *, draws: int = 200, seed=0) -> dict[str, pd.DataFrame]:
                     shares.append(_row(obs_s[t, c], rep_s[:, t, c], variable=v, wave=wave,
                                        category=labels[c]))
         for t in range(1, len(waves)):
+            stays.append(_row(np.trace(obs_t[t - 1]), np.trace(rep_t[:, t - 1], axis1=1, axis2=2),
+                              variable=v, from_wave=waves[t - 1], wave=waves[t]))
             for a in range(C):
                 for b in range(C):
                     moves.append(_row(obs_t[t - 1, a, b], rep_t[:, t - 1, a, b], variable=v,
                                       from_wave=waves[t - 1], wave=waves[t], **{
                                           "from": labels[a], "to": labels[b]}))
-    out = {"shares": pd.DataFrame(shares), "transitions": pd.DataFrame(moves)}
+    out = {"shares": pd.DataFrame(shares), "transitions": pd.DataFrame(moves),
+           "stayed": pd.DataFrame(stays)}
     n = int(min(draws, len(fit.theta_draws())))
     for table in out.values():
         for col in ("wave", "from_wave", "category", "from", "to"):  # keep the data's labels

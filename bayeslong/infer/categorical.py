@@ -282,6 +282,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     marginal log-likelihood is computed on at most this many draws, thinned evenly within
     each chain; ``attrs["thin"]`` of the log-likelihood group says by how much) and
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
+    ``progressbar`` shows the sampler's own bar when True; a callable (the live progress of
+    ``bayeslong run``) is not fed by this sampler, which then runs without a bar.
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 
@@ -298,6 +300,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     from importlib.util import find_spec
 
     which = "nutpie" if sampler == "nutpie" or (sampler == "auto" and find_spec("nutpie")) else "pymc"
+    show = progressbar if isinstance(progressbar, bool) else False
     cat = categorical_structure(spec, panel)
     prior_set, gaps = categorical_priors(cat, panel, priors)
     t0 = time.perf_counter()
@@ -320,7 +323,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
             # correlates strongly with the variances and the first wave's parameters
             raw = nutpie.sample(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
-                                cores=cores, seed=int(seed), progress_bar=progressbar,
+                                cores=cores, seed=int(seed), progress_bar=show,
                                 low_rank_modified_mass_matrix=True)
         else:
             import pymc as pm
@@ -328,7 +331,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compile_s = 0.0
             with model:
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
-                                random_seed=int(seed), progressbar=progressbar, var_names=keep,
+                                random_seed=int(seed), progressbar=show, var_names=keep,
                                 compute_convergence_checks=False)
         sample_s = time.perf_counter() - t0
         t0 = time.perf_counter()

@@ -124,6 +124,8 @@ def test_category_ppc_tables_label_categories_and_keep_missing_entries():
     moved = moves[(moves["wave"] == 2)].groupby("wave")["rep_mean"].sum()
     assert moved.iloc[0] == pytest.approx(4.0)
     assert shares.attrs["draws"] == 40
+    # stayed: the diagonal of the hand-counted tables, 2 (waves 1 -> 2) and 2 (2 -> 3)
+    assert out["stayed"]["observed"].tolist() == [2.0, 2.0]
     assert set(moves.columns) >= {"from", "to", "from_wave", "p_value", "flag"}
 
 
