@@ -145,9 +145,17 @@ def cmd_check_data(args) -> int:
 
 def cmd_identify(args) -> int:
     from bayeslong.model.identification import identify
+    from bayeslong.workflow.category_run import NO_IDENTIFICATION, is_categorical
 
     study = _load(args)
     panel = study.panel()
+    if is_categorical(panel):  # the Jacobian check is for continuous outcomes
+        if args.json:
+            _print_json([{"model": c.label, "identified": None, "reason": NO_IDENTIFICATION}
+                         for c in study.models])
+        else:
+            print(NO_IDENTIFICATION[0].upper() + NO_IDENTIFICATION[1:] + ".")
+        return OK
     rows = []
     for cand in study.models:
         ident = identify(cand.spec, panel)

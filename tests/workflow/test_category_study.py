@@ -127,3 +127,21 @@ def test_a_second_run_reuses_the_saved_categorical_fits(run):
     for old, new in zip(results.models, again.models):
         assert type(new.fit).__name__ == "CategoricalFit"
         np.testing.assert_array_equal(new.fit.threshold_draws(), old.fit.threshold_draws())
+
+
+def test_identify_command_says_why_it_makes_no_check_and_check_data_reads_categories(
+        tmp_path, capsys):
+    import json
+
+    from bayeslong.workflow.cli import main
+
+    _ratings().to_csv(tmp_path / "ratings.csv", index=False)
+    (tmp_path / "study.toml").write_text(STUDY)
+    assert main(["identify", str(tmp_path / "study.toml"), "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert [r["model"] for r in rows] == ["random-effects", "waves-apart"]
+    assert all(r["identified"] is None and r["reason"] == NO_IDENTIFICATION for r in rows)
+    assert main(["check-data", str(tmp_path / "study.toml"), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    # reference: pandas on the CSV (unit 5 misses week 4)
+    assert out["n_units"] == 60 and out["observed"]["4"]["rating"] == pytest.approx(59 / 60)
