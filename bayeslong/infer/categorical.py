@@ -45,6 +45,7 @@ from bayeslong.dims import PARAMETER, UNIT
 from bayeslong.errors import SpecError
 from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
 from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
@@ -282,8 +283,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     marginal log-likelihood is computed on at most this many draws, thinned evenly within
     each chain; ``attrs["thin"]`` of the log-likelihood group says by how much) and
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
-    ``progressbar`` shows the sampler's own bar when True; a callable (the live progress of
-    ``bayeslong run``) is not fed by this sampler, which then runs without a bar.
+    ``progressbar``: True shows the sampler's own bar, a callable receives a
+    :class:`bayeslong.infer.progress.SamplingProgress` as for continuous fits.
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 
@@ -300,7 +301,6 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     from importlib.util import find_spec
 
     which = "nutpie" if sampler == "nutpie" or (sampler == "auto" and find_spec("nutpie")) else "pymc"
-    show = progressbar if isinstance(progressbar, bool) else False
     cat = categorical_structure(spec, panel)
     prior_set, gaps = categorical_priors(cat, panel, priors)
     t0 = time.perf_counter()
@@ -314,6 +314,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
         t0 = time.perf_counter()
+        report = progressbar if callable(progressbar) else None
+        if report is not None:
+            report(SamplingProgress(stage="compiling", sampler=which))
         if which == "nutpie":
             import nutpie
 
@@ -321,18 +324,22 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compile_s = time.perf_counter() - t0
             t0 = time.perf_counter()
             # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
-            # correlates strongly with the variances and the first wave's parameters
-            raw = nutpie.sample(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
-                                cores=cores, seed=int(seed), progress_bar=show,
-                                low_rank_modified_mass_matrix=True)
+            # correlates strongly with the variances and the first wave's parameters; a
+            # callable progressbar gets the draws per chain (infer/progress.py)
+            raw = run_nutpie(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
+                             cores=cores, seed=int(seed), init_mean=np.zeros(compiled.n_dim),
+                             progressbar=progressbar)
         else:
             import pymc as pm
 
             compile_s = 0.0
+            counter = None if report is None else PymcCounter(int(chains), int(draws + tune), report)
             with model:
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
-                                random_seed=int(seed), progressbar=show, var_names=keep,
-                                compute_convergence_checks=False)
+                                random_seed=int(seed), progressbar=progressbar is True,
+                                var_names=keep, compute_convergence_checks=False, callback=counter)
+            if counter is not None:
+                counter.finish()
         sample_s = time.perf_counter() - t0
         t0 = time.perf_counter()
         idata = _tidy(raw, cat, panel, keep, int(loglik_draws), int(points), int(replicates), int(seed))

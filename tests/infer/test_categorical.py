@@ -171,8 +171,11 @@ def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_pat
     priors = {"threshold[y,2]": ("halfnormal", 2.0), "level_mean": ("normal", 0.0, 2.0)}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        seen = []  # a callable progressbar gets the draws per chain (infer/progress.py)
         fit = bl.fit(spec, panel, draws=100, tune=100, chains=2, sampler="pymc", cores=1,
-                     progressbar=False, priors=priors, loglik_draws=40)
+                     progressbar=seen.append, priors=priors, loglik_draws=40)
+    assert seen[0].stage == "compiling" and seen[-1].stage == "done"
+    assert seen[-1].done == (200, 200)  # tune + draws per chain
     path = fit.save(tmp_path / "fit.nc")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", bl.ConvergenceWarning)
