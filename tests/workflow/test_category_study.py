@@ -145,3 +145,14 @@ def test_identify_command_says_why_it_makes_no_check_and_check_data_reads_catego
     out = json.loads(capsys.readouterr().out)
     # reference: pandas on the CSV (unit 5 misses week 4)
     assert out["n_units"] == 60 and out["observed"]["4"]["rating"] == pytest.approx(59 / 60)
+
+
+def test_a_maximum_likelihood_run_of_categorical_variables_is_refused_with_the_fix(tmp_path):
+    from bayeslong.errors import SpecError
+
+    _ratings().to_csv(tmp_path / "ratings.csv", index=False)
+    (tmp_path / "study.toml").write_text(STUDY.replace("[sampling]", '[sampling]\nmethod = "ml"'))
+    with pytest.raises(SpecError, match=r"`sampling.method = \"ml\"` cannot fit the categorical "
+                                        r"variables rating: maximum likelihood is not available "
+                                        r"for categorical variables yet.*set `method = \"bayes\"`"):
+        run_study(load_study(tmp_path / "study.toml"), progress=None)
