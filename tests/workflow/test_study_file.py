@@ -345,3 +345,25 @@ def test_category_not_in_the_declared_labels_names_the_column_and_line(tmp_path)
     with pytest.raises(DataError, match=r"column 'woke' row 7 holds 'maybe', which is not among the categories "
                                         r"declared for 'woke'"):
         study.panel()
+
+
+def test_ordinal_example_regenerates_and_reads_its_categories(tmp_path):
+    import importlib.util
+
+    folder = EXAMPLE.parent
+    spec = importlib.util.spec_from_file_location("make_pain_data", folder / "make_pain_data.py")
+    maker = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(maker)
+    maker.make(tmp_path / "again.csv")  # the generator with its fixed seed: the same bytes
+    assert (tmp_path / "again.csv").read_bytes() == (folder / "pain_interference.csv").read_bytes()
+    study = load_study(folder / "pain_interference.toml")
+    raw = tomllib.loads((folder / "pain_interference.toml").read_text())
+    labels = raw["data"]["categorical"]["interference"]
+    assert labels == maker.CATEGORIES
+    panel = study.panel()
+    assert panel.categories == {"interference": tuple(labels)}
+    # reference: pandas counts of the labels in the CSV
+    counts = pd.read_csv(folder / "pain_interference.csv")["interference"].value_counts()
+    y = panel.y[:, :, 0]
+    for k, label in enumerate(labels):
+        assert int((y == k).sum()) == counts[label]
