@@ -18,6 +18,12 @@ from typing import Callable
 
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.workflow.category_run import (
+    NO_IDENTIFICATION,
+    NO_ML,
+    NO_SENSITIVITY,
+    is_categorical,
+)
 from bayeslong.workflow.results import (
     ModelResult,
     Step,
@@ -25,12 +31,6 @@ from bayeslong.workflow.results import (
     convergence_problems,
     slug,
     table_of,
-)
-from bayeslong.workflow.category_run import (
-    NO_IDENTIFICATION,
-    NO_ML,
-    NO_SENSITIVITY,
-    is_categorical,
 )
 from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.steps import saved_step, step_path, timed_step
