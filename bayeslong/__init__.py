@@ -21,7 +21,7 @@ from bayeslong.model.identification import Identification, identify
 from bayeslong.model.spec import Spec, catalog, load_model, model
 
 _LAZY = {
-    "Fit": "infer.sampling", "fit": "infer.fitting", "load_fit": "infer.sampling",
+    "Fit": "infer.sampling", "fit": "infer.fitting", "load_fit": "infer.fitting",
     "CategoricalFit": "infer.categorical",
     "Prior": "infer.priors", "PriorSet": "infer.priors", "prior_predictive": "infer.priors",
     "build_model": "infer.pymc_model",
@@ -38,6 +38,7 @@ _LAZY = {
     "plot_compare": "evaluate.plots", "plot_ppc": "evaluate.plots",
     "plot_trajectories": "evaluate.plots", "plot_latent_scores": "evaluate.plots",
     "latent_scores": "evaluate.scores", "latent_draws": "evaluate.scores",
+    "category_ppc": "evaluate.category_checks", "plot_category_shares": "evaluate.plots",
     "Study": "workflow.study_file", "load_study": "workflow.study_file",
     "StudyResults": "workflow.results", "run_study": "workflow.runner",
     "write_report": "workflow.report",
@@ -111,6 +112,8 @@ __all__ = [
     "trajectories",
     "latent_scores",
     "latent_draws",
+    "category_ppc",
+    "plot_category_shares",
     "plot_compare",
     "plot_ppc",
     "plot_trajectories",

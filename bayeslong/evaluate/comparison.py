@@ -503,13 +503,16 @@ def _score(spec: Spec, past, panel, thetas: np.ndarray) -> ForecastScore:
     """Score wave T of ``panel`` with draws ``thetas`` in the order of ``past.names``."""
     full = structure_for(spec, panel)
     thetas, carried = extend_draws(past, full, thetas)
-    terms = last_wave_logpdf(full, panel, thetas)
+    return _from_terms(spec, panel, last_wave_logpdf(full, panel, thetas), carried)
+
+
+def _from_terms(spec: Spec, panel, terms: pd.Series, carried=(), **more) -> ForecastScore:
     n = len(terms)
     se = float(np.sqrt(n) * np.std(terms.to_numpy(), ddof=1)) if n > 1 else float("nan")
     scored = set(terms.index)
     return ForecastScore(spec=spec, elpd=float(terms.sum()), se=se, n_units=n,
                          pointwise=terms, carried=carried,
-                         unscored=tuple(u for u in panel.units if u not in scored))
+                         unscored=tuple(u for u in panel.units if u not in scored), **more)
 
 
 def last_wave_hidden(panel):
@@ -524,7 +527,8 @@ def last_wave_hidden(panel):
     keep = ~np.isnan(y).all(axis=(1, 2))
     return Panel(units=tuple(u for u, k in zip(panel.units, keep) if k), waves=panel.waves,
                  outcomes=panel.outcomes, time_varying=panel.time_varying,
-                 time_invariant=panel.time_invariant, y=y[keep], x=panel.x[keep], z=panel.z[keep])
+                 time_invariant=panel.time_invariant, y=y[keep], x=panel.x[keep], z=panel.z[keep],
+                 indicators=panel.indicators, categories=panel.categories)
 
 
 def contains_past(past, full, *, points: int = 3, seed: int = 0) -> bool:
@@ -612,6 +616,9 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
     Units not observed at wave T contribute nothing; units observed only at wave T are
     scored by their marginal density at wave T.
 
+    A panel with categorical variables is scored by the marginal probability of its wave-T
+    categories given the earlier waves (evaluate/category_forecast.py).
+
     When the T-wave model with wave T unobserved is the (T-1)-wave model
     (:func:`contains_past`: no wave-T-only parameter, nothing earlier depends on wave T),
     the refit is made on the T-wave structure with wave T hidden
@@ -630,6 +637,11 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
         raise DataError(
             f"leave-future-out needs at least 4 waves (refit on T-1 >= 3); the panel has {panel.n_waves}."
         )
+    if getattr(panel, "categories", None):  # the marginal probabilities of the categories
+        from bayeslong.evaluate.category_forecast import last_wave_terms
+
+        terms, problems, timing = last_wave_terms(spec, panel, last_wave_hidden(panel), **fit_kwargs)
+        return _from_terms(spec, panel, terms, problems=problems, timing=timing)
     past = panel.head(panel.n_waves - 1)
     # fail before sampling when wave T cannot be predicted
     before, after = structure_for(spec, past), structure_for(spec, panel)

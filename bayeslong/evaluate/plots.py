@@ -266,3 +266,64 @@ def plot_latent_scores(fit, units=None, *, max_units: int = 6, draws: int = 200,
     fig.suptitle("Latent trajectories given each unit's indicators" + (f": {model}" if model else ""),
                  fontsize=10)
     return fig
+
+
+def plot_category_shares(fit_or_table, *, draws: int = 200, seed=0):
+    """Plot each category's observed share per wave against its replicated 50% and 90% bands.
+
+    Parameters
+    ----------
+    fit_or_table : CategoricalFit or pandas.DataFrame
+        A fit with categorical variables (then
+        :func:`bayeslong.evaluate.category_checks.category_ppc` is run) or its ``shares``
+        table.
+    draws, seed : passed to ``category_ppc`` when a fit is given.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One row per categorical variable, one column per category; flagged shares
+        (p < 0.05 or > 0.95) are drawn as red points.
+    """
+    if isinstance(fit_or_table, pd.DataFrame):
+        table = fit_or_table
+    else:
+        from bayeslong.evaluate.category_checks import category_ppc
+
+        table = category_ppc(fit_or_table, draws=draws, seed=seed)["shares"]
+    _need_columns(table, ("variable", "wave", "category", "observed", "rep_q05", "rep_q25",
+                          "rep_q75", "rep_q95", "flag"), "plot_category_shares")
+    variables = list(dict.fromkeys(table["variable"]))
+    width = max(len(dict.fromkeys(table.loc[table["variable"] == v, "category"]))
+                for v in variables)
+    fig = _figure(2.7 * width + 0.6, 2.5 * len(variables) + 0.4)
+    axes = fig.subplots(len(variables), width, squeeze=False, sharey="row")
+    for r, var in enumerate(variables):
+        rows = table[table["variable"] == var]
+        categories = list(dict.fromkeys(rows["category"]))
+        for c in range(width):
+            ax = axes[r][c]
+            if c >= len(categories):
+                ax.set_visible(False)
+                continue
+            t = rows[rows["category"] == categories[c]]
+            x = np.arange(len(t))
+            ax.fill_between(x, t["rep_q05"], t["rep_q95"], color=_BAND90, label="replicated 90%")
+            ax.fill_between(x, t["rep_q25"], t["rep_q75"], color=_BAND50, label="replicated 50%")
+            ax.plot(x, t["observed"], color="black", lw=1)
+            flag = t["flag"].to_numpy(dtype=bool)
+            obs = t["observed"].to_numpy(dtype=float)
+            ax.scatter(x[~flag], obs[~flag], color="black", s=16, zorder=3, label="observed")
+            if flag.any():
+                ax.scatter(x[flag], obs[flag], color=_FLAG, s=22, zorder=4,
+                           label="observed, p < 0.05 or > 0.95")
+            ax.set_xticks(x, [str(w) for w in t["wave"]])
+            ax.set_title(f"{var} = {categories[c]}", fontsize=9)
+            ax.set_xlabel("wave")
+            if c == 0:
+                ax.set_ylabel("share of units")
+            if r == 0 and c == 0:
+                ax.legend(fontsize=7, loc="best")
+    model = table.attrs.get("model")
+    fig.suptitle("Category shares per wave" + (f": {model}" if model else ""), fontsize=11)
+    return fig

@@ -30,6 +30,8 @@ doi:10.1214/088342307000000014
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import os
 import time
 import warnings
@@ -43,6 +45,7 @@ from bayeslong.dims import PARAMETER, UNIT
 from bayeslong.errors import SpecError
 from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
 from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
@@ -241,6 +244,7 @@ class CategoricalFit(Fit):
     """
 
     categorical: Categorical | None = None
+    gaps: dict = dataclasses.field(default_factory=dict)
 
     def diagnostics(self) -> pd.DataFrame:
         return diagnose(self.idata, self.categorical.names)
@@ -255,11 +259,11 @@ class CategoricalFit(Fit):
         table.index.name = "parameter"
         return table
 
-    def save(self, path):
-        """Not available yet for categorical fits (the file would lose the categories)."""
-        raise SpecError("saving a fit with categorical variables is not supported yet: "
-                        "load_fit would rebuild the panel without its categories. Keep the "
-                        "InferenceData instead: fit.idata.to_netcdf(path)")
+    def file_attrs(self) -> dict:
+        """:meth:`Fit.file_attrs` plus the priors of the thresholds' gaps (the panel's
+        categories are among its labels); ``bl.load_fit`` reads them back."""
+        return {**super().file_attrs(),
+                "bayeslong_threshold_priors": json.dumps({k: list(v) for k, v in self.gaps.items()})}
 
     def threshold_draws(self) -> np.ndarray:
         """The thresholds' draws, (chains * draws, n_thresholds), ``categorical.thresholds`` order."""
@@ -279,6 +283,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     marginal log-likelihood is computed on at most this many draws, thinned evenly within
     each chain; ``attrs["thin"]`` of the log-likelihood group says by how much) and
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
+    ``progressbar``: True shows the sampler's own bar, a callable receives a
+    :class:`bayeslong.infer.progress.SamplingProgress` as for continuous fits.
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 
@@ -308,6 +314,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
         warnings.filterwarnings("ignore", category=RuntimeWarning)
         warnings.filterwarnings("ignore", category=FutureWarning)
         t0 = time.perf_counter()
+        report = progressbar if callable(progressbar) else None
+        if report is not None:
+            report(SamplingProgress(stage="compiling", sampler=which))
         if which == "nutpie":
             import nutpie
 
@@ -315,28 +324,47 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compile_s = time.perf_counter() - t0
             t0 = time.perf_counter()
             # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
-            # correlates strongly with the variances and the first wave's parameters
-            raw = nutpie.sample(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
-                                cores=cores, seed=int(seed), progress_bar=progressbar,
-                                low_rank_modified_mass_matrix=True)
+            # correlates strongly with the variances and the first wave's parameters; a
+            # callable progressbar gets the draws per chain (infer/progress.py)
+            raw = run_nutpie(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
+                             cores=cores, seed=int(seed), init_mean=np.zeros(compiled.n_dim),
+                             progressbar=progressbar)
         else:
             import pymc as pm
 
             compile_s = 0.0
+            counter = None if report is None else PymcCounter(int(chains), int(draws + tune), report)
             with model:
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
-                                random_seed=int(seed), progressbar=progressbar, var_names=keep,
-                                compute_convergence_checks=False)
+                                random_seed=int(seed), progressbar=progressbar is True,
+                                var_names=keep, compute_convergence_checks=False, callback=counter)
+            if counter is not None:
+                counter.finish()
         sample_s = time.perf_counter() - t0
         t0 = time.perf_counter()
         idata = _tidy(raw, cat, panel, keep, int(loglik_draws), int(points), int(replicates), int(seed))
         loglik_s = time.perf_counter() - t0
     result = CategoricalFit(spec=spec, panel=panel, structure=cat.structure, seed=int(seed),
                             idata=idata, prior_set=prior_set, sampler=which, categorical=cat,
+                            gaps=gaps,
                             timing={"build": build_s, "compile": compile_s, "sample": sample_s,
                                     "loglik": loglik_s})
     warn_convergence(result.diagnostics())
     return result
+
+
+def categorical_fit_from_file(idata, attrs, spec, panel, path) -> CategoricalFit:
+    """The :class:`CategoricalFit` of a file read by
+    :func:`bayeslong.infer.sampling.read_fit_file` (``bl.load_fit`` calls it)."""
+    from bayeslong.infer.sampling import stored_priors
+
+    cat = categorical_structure(spec, panel)
+    gaps = {k: tuple(v) for k, v in json.loads(attrs.get("bayeslong_threshold_priors", "{}")).items()}
+    prior_set, gaps = categorical_priors(cat, panel, {**stored_priors(attrs, path), **gaps})
+    return CategoricalFit(spec=spec, panel=panel, structure=cat.structure,
+                          seed=int(attrs["bayeslong_seed"]), idata=idata, prior_set=prior_set,
+                          sampler=str(attrs.get("bayeslong_sampler", "")), categorical=cat,
+                          gaps=gaps, timing={})
 
 
 def _tidy(raw, cat: Categorical, panel, keep, loglik_draws, points, replicates, seed):

@@ -10,7 +10,10 @@ groups, so comparisons and summaries read them alike.
 from __future__ import annotations
 
 from bayeslong.infer import sampling
-from bayeslong.infer.categorical import fit_categorical
+from bayeslong.infer.categorical import categorical_fit_from_file, fit_categorical
+from bayeslong.infer.sampling import SAMPLERS
+
+__all__ = ["SAMPLERS", "fit", "load_fit"]
 
 
 def fit(spec, panel, **kwargs):
@@ -23,3 +26,16 @@ def fit(spec, panel, **kwargs):
     if getattr(panel, "categories", None):
         return fit_categorical(spec, panel, **kwargs)
     return sampling.fit(spec, panel, **kwargs)
+
+
+def load_fit(path):
+    """Read a fit written by ``Fit.save`` (see :func:`bayeslong.infer.sampling.load_fit`).
+
+    A fit with categorical variables comes back as a
+    :class:`~bayeslong.infer.categorical.CategoricalFit`, with its panel's categories, its
+    thresholds and the priors of their gaps.
+    """
+    idata, attrs, spec, panel = sampling.read_fit_file(path)
+    if getattr(panel, "categories", None):
+        return categorical_fit_from_file(idata, attrs, spec, panel, path)
+    return sampling.fit_from_file(idata, attrs, spec, panel, path)

@@ -142,16 +142,20 @@ class Fit:
         """
         path = Path(path)
         idata = self.idata.copy()
-        idata.posterior.attrs.update({
+        idata.posterior.attrs.update(self.file_attrs())
+        idata.to_netcdf(str(path), engine="h5netcdf")
+        return path
+
+    def file_attrs(self) -> dict:
+        """What :meth:`save` stores beside the draws (JSON text and numbers)."""
+        return {
             "bayeslong_spec": json.dumps(self.spec.to_dict()),
             "bayeslong_priors": json.dumps({k: list(v) for k, v in self.prior_set.user_spec().items()}),
             "bayeslong_prior_table": json.dumps(self.prior_set.to_dict()),
             "bayeslong_panel": json.dumps(_panel_labels(self.panel)),
             "bayeslong_seed": int(self.seed),
             "bayeslong_sampler": self.sampler,
-        })
-        idata.to_netcdf(str(path), engine="h5netcdf")
-        return path
+        }
 
     def __repr__(self) -> str:
         post = self.idata.posterior
@@ -163,29 +167,46 @@ def _panel_labels(panel) -> dict:
     def plain(v):
         return v.item() if hasattr(v, "item") else v
 
-    return {"units": [plain(u) for u in panel.units], "waves": [plain(w) for w in panel.waves],
-            "outcomes": list(panel.outcomes), "time_varying": list(panel.time_varying),
-            "time_invariant": list(panel.time_invariant),
-            "indicators": {k: list(v) for k, v in panel.indicators.items()}}
+    labels = {"units": [plain(u) for u in panel.units], "waves": [plain(w) for w in panel.waves],
+              "outcomes": list(panel.outcomes), "time_varying": list(panel.time_varying),
+              "time_invariant": list(panel.time_invariant)}
+    if getattr(panel, "has_indicators", False):
+        labels["indicators"] = {k: list(v) for k, v in panel.indicators.items()}
+    if getattr(panel, "categories", None):
+        labels["categories"] = {k: [plain(c) for c in v] for k, v in panel.categories.items()}
+    return labels
 
 
 def load_fit(path) -> Fit:
-    """Read a fit written by :meth:`Fit.save`.
-
-    Parameters
-    ----------
-    path : str or path-like
-
-    Returns
-    -------
-    Fit
-        With the spec, the priors (user factories are not restorable: their rows fall back
-        to the defaults and a warning says so) and the panel rebuilt from the file.
+    """Read a fit written by :meth:`Fit.save`: the spec, the priors (user factories are not
+    restorable: their rows fall back to the defaults, with a warning) and the panel.
 
     Raises
     ------
     SpecError
-        The file was not written by :meth:`Fit.save`.
+        The file was not written by :meth:`Fit.save`, or holds a fit with categorical
+        variables (``bayeslong.load_fit``, infer/fitting.py, reads those).
+    """
+    return fit_from_file(*read_fit_file(path), path)
+
+
+def fit_from_file(idata, attrs, spec, panel, path) -> Fit:
+    """The :class:`Fit` of a file read by :func:`read_fit_file`."""
+    if getattr(panel, "categories", None):
+        raise SpecError(f"{str(path)!r} holds a fit with categorical variables; read it with "
+                        "bl.load_fit, which rebuilds its thresholds")
+    structure = structure_for(spec, panel)
+    prior_set = resolve_priors(structure, panel, stored_priors(attrs, path))
+    return Fit(spec=spec, panel=panel, structure=structure, seed=int(attrs["bayeslong_seed"]),
+               idata=idata, prior_set=prior_set, sampler=str(attrs.get("bayeslong_sampler", "")),
+               timing={})
+
+
+def read_fit_file(path):
+    """``(idata, attrs, spec, panel)`` of a file written by :meth:`Fit.save`.
+
+    The panel is rebuilt from the file's observed and constant data and the labels stored
+    in its attributes (indicators and categories included).
     """
     import arviz as az
 
@@ -202,31 +223,35 @@ def load_fit(path) -> Fit:
     spec = Spec.from_dict(json.loads(attrs["bayeslong_spec"]))
     labels = json.loads(attrs["bayeslong_panel"])
     obs = idata.observed_data
-    # processes measured by several indicators keep them (files from before store none)
-    indicators = labels.get("indicators") or {k: [k] for k in labels["outcomes"]}
-    y = np.stack([obs[name].values for group in indicators.values() for name in group], axis=-1)
+    indicators = labels.get("indicators")
+    names = [n for g in indicators.values() for n in g] if indicators else labels["outcomes"]
+    if not all(n in obs for n in names):  # a fit that stored one variable per process
+        names, indicators = labels["outcomes"], None
+    y = np.stack([obs[name].values for name in names], axis=-1)
     const = idata.constant_data if "constant_data" in idata.groups() else None
     n, t = y.shape[:2]
     x = (np.stack([const[name].values for name in labels["time_varying"]], axis=-1)
          if labels["time_varying"] else np.empty((n, t, 0)))
     z = (np.stack([const[name].values for name in labels["time_invariant"]], axis=-1)
          if labels["time_invariant"] else np.empty((n, 0)))
+    categories = {k: tuple(v) for k, v in labels.get("categories", {}).items()} or None
     panel = Panel(units=tuple(labels["units"]), waves=tuple(labels["waves"]),
                   outcomes=tuple(labels["outcomes"]), time_varying=tuple(labels["time_varying"]),
                   time_invariant=tuple(labels["time_invariant"]), y=y, x=x, z=z,
-                  indicators={k: tuple(v) for k, v in indicators.items()})
-    structure = structure_for(spec, panel)
+                  indicators=indicators, categories=categories)
+    return idata, attrs, spec, panel
+
+
+def stored_priors(attrs, path) -> dict:
+    """The user's prior overrides stored by :meth:`Fit.save` (warns about lost factories)."""
     user = {k: tuple(v) for k, v in json.loads(attrs["bayeslong_priors"]).items()}
     table = json.loads(attrs["bayeslong_prior_table"])
     lost = [k for k, v in table.items() if v["family"] == "callable"]
     if lost:
         warnings.warn(f"the fit in {str(path)!r} used prior factories for {', '.join(lost)}; "
                       "factories are not stored, so the prior table shows the defaults there",
-                      UserWarning, stacklevel=2)
-    prior_set = resolve_priors(structure, panel, user)
-    return Fit(spec=spec, panel=panel, structure=structure, seed=int(attrs["bayeslong_seed"]),
-               idata=idata, prior_set=prior_set, sampler=str(attrs.get("bayeslong_sampler", "")),
-               timing={})
+                      UserWarning, stacklevel=3)
+    return user
 
 
 def unit_loglik(structure: Structure, panel, theta: np.ndarray, *, chunk: int | None = None) -> np.ndarray:

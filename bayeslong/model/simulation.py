@@ -399,13 +399,14 @@ class Simulation:
         eta = _solve_latents(structure, B, a + w @ G.T + zeta)
         y = nu + eta @ Lam.T + eps  # (N, K*T), process-major
         if self.categorical:  # latent responses cut at the thresholds
+            from bayeslong.model.thresholds import categorize
+
             cat = self._categorical()
             for v, cuts in cat.cut_values(tau).items():
                 r = cat.rows[v]
                 noise = (rng.standard_normal((N, len(r))) if cat.link == "probit"
                          else rng.logistic(size=(N, len(r))))
-                ystar = y[:, r] + noise
-                y[:, r] = 1 + (ystar[:, :, None] > cuts[None, :, 1:-1]).sum(axis=2)
+                y[:, r] = 1 + categorize(y[:, r] + noise, cuts[None])
         y = y.reshape(N, K, T).transpose(0, 2, 1).copy()  # (N, T, K observed variables)
         # missingness, wave 1 always kept
         if dropout > 0 or intermittent > 0:

@@ -140,6 +140,16 @@ class Categorical:
         return out
 
 
+def categorize(ystar, cuts) -> np.ndarray:
+    """Category positions 0..C-1 of latent responses: the number of inner cuts below each.
+
+    ``ystar`` (..., T) and ``cuts`` (..., T, C+1) as :meth:`Categorical.cut_values` gives
+    them (broadcast over leading axes); y = c exactly when tau_(c-1) < y* <= tau_c.
+    """
+    ystar = np.asarray(ystar, dtype=float)
+    return (ystar[..., None] > np.asarray(cuts)[..., 1:-1]).sum(axis=-1)
+
+
 def categorical_structure(spec: Spec, panel, *, with_error: bool = True) -> Categorical:
     """The :class:`Categorical` part of ``spec`` on ``panel``'s design (see module notes).
 

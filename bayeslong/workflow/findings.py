@@ -72,6 +72,12 @@ REFERENCES = {
     "fiml": "Arbuckle, J. L. (1996). Full information estimation in the presence of incomplete "
             "data. In G. A. Marcoulides & R. E. Schumacker (eds.), Advanced Structural Equation "
             "Modeling, 243-277. Mahwah, NJ: Erlbaum.",
+    "latent": "Muthén, B. (1984). A general structural equation model with dichotomous, ordered "
+              "categorical, and continuous latent variable indicators. Psychometrika 49(1), "
+              "115-132. doi:10.1007/BF02294210",
+    "marginal": "Merkle, E. C., Furr, D. & Rabe-Hesketh, S. (2019). Bayesian comparison of "
+                "latent variable models: conditional versus marginal likelihoods. Psychometrika "
+                "84(3), 802-829. doi:10.1007/s11336-019-09679-0",
     "aic": "Akaike, H. (1974). A new look at the statistical model identification. IEEE "
            "Transactions on Automatic Control 19(6), 716-723. doi:10.1109/TAC.1974.1100705",
     "invariance": "Meredith, W. (1993). Measurement invariance, factor analysis and factorial "
@@ -352,6 +358,15 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
                  + " invariance over waves " + cite("invariance", "(Meredith 1993)")
                  + "; the invariance levels were compared by maximum-likelihood ratio tests "
                  + cite("lr", "(Wilks 1938)") + " with AIC and BIC beside them.")
+    categories = getattr(panel, "categories", None) or {}
+    if categories:
+        kinds = ", ".join(f"{v} ({'binary' if len(c) == 2 else f'ordinal, {len(c)} categories'})"
+                          for v, c in categories.items())
+        m.append(f"Categorical variables, {kinds}, were modelled as latent responses cut at "
+                 "thresholds " + cite("latent", "(Muthén 1984)") + ", with every unit's latent "
+                 "variables sampled; model comparison used each unit's marginal likelihood, "
+                 "the latents integrated out " + cite("marginal", "(Merkle, Furr & "
+                                                      "Rabe-Hesketh 2019)") + ".")
     m.append("Missing outcomes entered through the full-information likelihood under missing at "
              "random " + cite("fiml", "(Arbuckle 1996)") + ", with covariates treated as fixed.")
     facts = _sampling_facts(results) if results.method == "bayes" else None
@@ -395,8 +410,10 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
                  "leave-future-out, " + cite("lfo", "Bürkner, Gabry & Vehtari 2020") + ").")
     checks = [x for x in results.models if x.check.ran]
     if checks:
-        m.append("Posterior predictive checks compared wave means, SDs and lag-1 correlations "
-                 "of the data with replicated data " + cite("ppc", "(Gelman, Meng & Stern 1996)")
+        m.append("Posterior predictive checks compared "
+                 + ("the categories' shares per wave and the transitions between consecutive "
+                    "waves" if categories else "wave means, SDs and lag-1 correlations")
+                 + " of the data with replicated data " + cite("ppc", "(Gelman, Meng & Stern 1996)")
                  + ".")
     spread = f["lag_range"]
     if spread is not None:

@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.workflow import category_report
 from bayeslong.workflow.findings import add_findings, add_manuscript_text
 from bayeslong.workflow.measurement_section import add_measurement_section
 from bayeslong.workflow.results import slug, table_of
@@ -339,6 +340,8 @@ def _section_data(doc: _Doc, results) -> None:
               + (f"; {len(shown)} of {len(patterns)} shown" if len(patterns) > len(shown) else ""))
     doc.figure(_figure_data(panel), "data-trajectories",
                "Observed trajectories (thin lines) and the wave means (thick line)")
+    if getattr(panel, "categories", None):
+        category_report.add_categories(doc, panel)
 
 
 def _section_models(doc: _Doc, results) -> None:
@@ -376,6 +379,8 @@ def _section_models(doc: _Doc, results) -> None:
             summary = _try_table(lambda: m.fit.summary())
             if summary is not None:
                 doc.table(summary, "Posterior summary")
+            if getattr(m.fit, "categorical", None) is not None:
+                category_report.add_thresholds(doc, m.fit)
             diag = _try_table(lambda: m.fit.diagnostics())
             if diag is not None:
                 a = diag.attrs
@@ -525,6 +530,9 @@ def _section_checks(doc: _Doc, results) -> None:
         any_ran = True
         doc.heading(m.label, 3)
         value = step.value
+        if isinstance(value, dict) and "shares" in value:  # categorical variables
+            category_report.add_category_checks(doc, m.label, value)
+            continue
         table = value.get("ppc") if isinstance(value, dict) else None
         if table is not None and len(table):
             _draw(doc, "predictive check",

@@ -19,6 +19,11 @@ from typing import Callable
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
 from bayeslong.workflow.progress import QueueForwarder
+from bayeslong.workflow.category_run import (
+    NO_ML,
+    NO_SENSITIVITY,
+    is_categorical,
+)
 from bayeslong.workflow.results import (
     ModelResult,
     Step,
@@ -154,9 +159,13 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     fits_dir.mkdir(parents=True, exist_ok=True)
 
     method = study.sampling["method"]
+    if method == "ml" and is_categorical(panel):
+        raise SpecError(f"study file {study.source.name}: `sampling.method = \"ml\"` cannot fit "
+                        f"the categorical variables {', '.join(map(str, panel.categories))}: "
+                        + NO_ML.split(";")[0] + "; set `method = \"bayes\"`")
     fit_module = None
-    if method == "bayes":
-        fit_module, absent = optional_module("infer.sampling")
+    if method == "bayes":  # bl.fit: continuous and categorical panels alike
+        fit_module, absent = optional_module("infer.fitting")
         samplers = getattr(fit_module, "SAMPLERS", None)
         if samplers and study.sampling["sampler"] not in samplers:
             raise SpecError(
@@ -337,7 +346,7 @@ def _sample_job(spec, panel, kwargs: dict, path: str, future_kwargs: dict | None
     compiled in this process. Returns the fit's timing and the score (or why not).
     """
     from bayeslong.errors import ConvergenceWarning
-    from bayeslong.infer.sampling import fit
+    from bayeslong.infer.fitting import fit
 
     t0 = time.perf_counter()
     with warnings.catch_warnings():
@@ -390,7 +399,7 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
     notes: list[str] = []
     stem = f"{slug(cand.label)}-{key}"
     ident_path = fits_dir / f"{stem}.identify.json"
-    if not fit and not ident_path.exists():
+    if not fit and not ident_path.exists() and not is_categorical(panel):
         raise SpecError(
             f"candidate {cand.label!r} has no saved results for the current study and data "
             f"(nothing for hash {key} in {fits_dir}); run `bayeslong run {study.source.name}` "
@@ -404,7 +413,9 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
                            seconds=time.perf_counter() - t0), "skipped"
 
     ml, what = None, "none"
-    if fit_module is None or study.checks["ml"]:
+    if is_categorical(panel) and study.checks["ml"]:
+        notes.append(NO_ML)
+    elif fit_module is None or study.checks["ml"]:
         ml, ml_reused = _ml(study, panel, cand, fits_dir / f"{stem}.ml.json", notes, say,
                             fit=fit)
         if fit_module is None and ml is not None:  # the ML fit is the run's fit
@@ -628,6 +639,10 @@ def _check(study, panel, m: ModelResult, say, strict=False) -> ModelResult:
     draws, seed = study.checks["ppc_draws"], study.sampling["seed"]
 
     def compute():
+        if getattr(m.fit, "categorical", None) is not None:  # shares and transitions
+            from bayeslong.evaluate.category_checks import category_ppc
+
+            return category_ppc(m.fit, draws=draws, seed=seed)
         table = module.ppc(m.fit, draws=draws, seed=seed)
         units = list(m.fit.panel.units[:N_TRAJECTORY_UNITS])
         bands = module.trajectories(m.fit, units, draws=draws, seed=seed)
@@ -646,6 +661,8 @@ def _sensitivity(study, panel, models, method, say, strict=False, show=False) ->
         return Step.skipped("not requested (turn axes on in [sensitivity])")
     if method != "bayes":
         return Step.skipped("lag sensitivity needs posterior fits, which this run did not make")
+    if is_categorical(panel):
+        return Step.skipped(NO_SENSITIVITY)
     module, absent = optional_module("evaluate.sensitivity")
     if module is None:
         return Step.skipped(absent)

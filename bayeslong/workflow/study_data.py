@@ -7,22 +7,33 @@ description); this module holds :class:`DataSource` and the reader of that table
 measured by several indicators, a table from each process to its indicator columns (long)
 or to a table from each indicator to its columns in wave order (wide). ``""`` in a wide
 indicator's list marks a wave at which the indicator was not asked (missing there).
+``categorical`` declares binary and ordinal outcomes or indicators as
+:meth:`bayeslong.Panel.from_long` takes them (data/categories.py): a table from each
+observed variable to ``"ordinal"``, ``"binary"`` or its category labels in order.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import difflib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from bayeslong.data.categories import KINDS
 from bayeslong.errors import DataError
 
 #: Keys of the ``[data]`` table.
 DATA_KEYS = ("path", "layout", "unit", "wave", "outcomes", "time_varying", "time_invariant",
-             "waves", "drop_incomplete_covariates")
+             "waves", "drop_incomplete_covariates", "categorical")
 LAYOUTS = ("long", "wide")
 DATA_SUFFIXES = (".csv", ".parquet")
+
+
+def nearest_hint(word: str, choices) -> str:
+    """``; did you mean 'x'?`` for the closest of ``choices``, or nothing."""
+    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
+    return f"; did you mean '{close[0]}'?" if close else ""
 
 
 def _plain(value: Any) -> Any:
@@ -47,6 +58,7 @@ class DataSource:
     time_invariant: tuple[str, ...] = ()
     waves: tuple | None = None
     drop_incomplete_covariates: bool = False
+    categorical: dict | None = None
 
     @property
     def has_indicators(self) -> bool:
@@ -63,7 +75,20 @@ class DataSource:
         d["time_varying"] = _plain(self.time_varying)
         d["time_invariant"] = list(self.time_invariant)
         d["waves"] = None if self.waves is None else list(self.waves)
+        if self.categorical:
+            d["categorical"] = _plain(self.categorical)
+        else:  # absent, so the content hashes of continuous studies stay as they were
+            del d["categorical"]
         return d
+
+    def observed_names(self) -> list[str]:
+        """The observed variables (outcomes, or indicators) by the names the panel gives them."""
+        if isinstance(self.outcomes, dict):
+            if self.layout == "long":
+                return [c for v in self.outcomes.values() for c in v]
+            return [item for k, v in self.outcomes.items()
+                    for item in (v if isinstance(v, dict) else (k,))]
+        return list(self.outcomes)
 
     def columns(self) -> list[tuple[str, str]]:
         """Every column the study names, with the key that names it."""
@@ -155,9 +180,45 @@ def read_data_table(r, raw: dict, base: Path) -> DataSource:
             waves = tuple(waves)
     if not outcomes:
         r.fail("`data.outcomes` is empty; name at least one outcome column")
-    return DataSource(path=path, layout=layout, unit=unit, wave=wave, outcomes=outcomes,
-                      time_varying=varying, time_invariant=invariant, waves=waves,
-                      drop_incomplete_covariates=drop)
+    source = DataSource(path=path, layout=layout, unit=unit, wave=wave, outcomes=outcomes,
+                        time_varying=varying, time_invariant=invariant, waves=waves,
+                        drop_incomplete_covariates=drop)
+    if "categorical" in raw:
+        source = dataclasses.replace(source, categorical=_read_categorical(
+            r, raw["categorical"], source.observed_names()))
+    return source
+
+
+def _read_categorical(r, value: Any, observed: list[str]) -> dict:
+    """``data.categorical``: observed variable -> "ordinal", "binary" or its labels in order."""
+    example = 'categorical = { rested = "ordinal", woke = "binary" }'
+    if not isinstance(value, dict):
+        r.fail(f"`data.categorical` must be a table from each categorical outcome or indicator "
+               f"to \"ordinal\", \"binary\" or its labels in order, e.g. {example}; got {value!r}")
+    out = {}
+    for name, kind in value.items():
+        where = f"data.categorical.{name}"
+        if name not in observed:
+            r.fail(f"`{where}` names {name!r}, which is not an outcome or indicator of "
+                   f"`data.outcomes`{nearest_hint(name, observed)} (they are "
+                   f"{', '.join(observed)}); name the observed variables that hold categories",
+                   DataError)
+        if isinstance(kind, str):
+            if kind not in KINDS:
+                r.fail(f"`{where}` is {kind!r}; give \"ordinal\", \"binary\" or the category "
+                       f"labels in order, e.g. [\"never\", \"sometimes\", \"often\"]"
+                       f"{nearest_hint(kind, KINDS)}")
+            out[name] = kind
+        elif isinstance(kind, list) and all(isinstance(v, (str, int)) and not isinstance(v, bool)
+                                            for v in kind):
+            if len(kind) < 2 or len(set(kind)) != len(kind):
+                r.fail(f"`{where}` must list at least two different categories, lowest first; "
+                       f"got {kind!r}")
+            out[name] = tuple(kind)
+        else:
+            r.fail(f"`{where}` must be \"ordinal\", \"binary\" or a list of category labels "
+                   f"(text or whole numbers) in order; got {kind!r}")
+    return out
 
 
 def _wave_texts(r, value: Any, where: str) -> tuple[str, ...]:

@@ -50,6 +50,13 @@ Top level
     Wave labels for the per-wave column lists.
 ``drop_incomplete_covariates`` (true/false, default false)
     Drop units with a missing covariate (with a warning naming them) instead of stopping.
+``categorical`` (table, default none: every outcome is continuous)
+    Binary and ordinal outcomes or indicators, as ``Panel.from_long(..., categorical=...)``
+    takes them: ``categorical = { rested = "ordinal", woke = "binary" }`` reads the
+    categories from integer codes in the data, ``categorical = { rested = ["never",
+    "sometimes", "often"] }`` gives the labels in order. Each key names an observed
+    variable (an outcome, or an indicator). Candidates are then fitted with person-level
+    latents and thresholds (docs/model-family.md, "Categorical indicators").
 
 ``[[models]]`` (one table per candidate model; at least one, required)
 
@@ -204,7 +211,7 @@ from typing import Any
 
 from bayeslong.data.validation import SOURCE
 from bayeslong.errors import DataError, SpecError
-from bayeslong.workflow.study_data import DataSource, read_data_table
+from bayeslong.workflow.study_data import DataSource, nearest_hint, read_data_table
 
 __all__ = ["Study", "Candidate", "DataSource", "load_study"]
 
@@ -226,11 +233,6 @@ _METHODS = ("bayes", "ml")
 # --------------------------------------------------------------------------------------------
 # checking helpers (each raises a SpecError that names the key and the fix)
 # --------------------------------------------------------------------------------------------
-
-
-def nearest_hint(word: str, choices) -> str:
-    close = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.5)
-    return f"; did you mean '{close[0]}'?" if close else ""
 
 
 class _Reader:
@@ -415,14 +417,16 @@ class Study:
                 panel = Panel.from_long(
                     df, unit=d.unit, wave=d.wave, outcomes=d.outcome_argument(),
                     time_varying=list(d.time_varying), time_invariant=list(d.time_invariant),
-                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+                    drop_incomplete_covariates=d.drop_incomplete_covariates,
+                    categorical=d.categorical)
             else:
                 panel = Panel.from_wide(
                     df, unit=d.unit, outcomes=d.outcome_argument(),
                     time_varying={k: list(v) for k, v in d.time_varying.items()},
                     time_invariant=list(d.time_invariant),
                     waves=None if d.waves is None else list(d.waves),
-                    drop_incomplete_covariates=d.drop_incomplete_covariates)
+                    drop_incomplete_covariates=d.drop_incomplete_covariates,
+                    categorical=d.categorical)
         for w in caught:
             if record is not None:
                 record.append(str(w.message))

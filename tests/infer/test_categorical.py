@@ -157,3 +157,40 @@ def test_latent_correlations_match_pairwise_polychoric():
     # correlations slightly. The bound is therefore 0.25 posterior SD, not 0.1.
     for s, t, mean, sd, reference in found:
         assert abs(mean - reference) < 0.25 * sd, found
+
+
+def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_path):
+    from bayeslong.infer.sampling import load_fit as load_continuous
+
+    spec = bl.model("random-effects")
+    params = {"level_mean": 0.2, "level_var": 0.8, "threshold[y,2]": 0.9}
+    df = bl.simulate(spec, params, 60, 3, seed=8, categorical={"y": 3})
+    df["y"] = df["y"].map({1: "low", 2: "middle", 3: "high"})
+    panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes=["y"],
+                               categorical={"y": ["low", "middle", "high"]})
+    priors = {"threshold[y,2]": ("halfnormal", 2.0), "level_mean": ("normal", 0.0, 2.0)}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        seen = []  # a callable progressbar gets the draws per chain (infer/progress.py)
+        fit = bl.fit(spec, panel, draws=100, tune=100, chains=2, sampler="pymc", cores=1,
+                     progressbar=seen.append, priors=priors, loglik_draws=40)
+    assert seen[0].stage == "compiling" and seen[-1].stage == "done"
+    assert seen[-1].done == (200, 200)  # tune + draws per chain
+    path = fit.save(tmp_path / "fit.nc")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        back = bl.load_fit(path)
+    assert isinstance(back, bl.CategoricalFit)
+    assert back.panel == panel and back.panel.categories == {"y": ("low", "middle", "high")}
+    assert back.categorical.thresholds == fit.categorical.thresholds == ("threshold[y,2]",)
+    assert back.categorical.pinned == fit.categorical.pinned
+    assert back.gaps == fit.gaps == {"threshold[y,2]": ("halfnormal", 2.0)}
+    pd.testing.assert_frame_equal(back.priors(), fit.priors())
+    pd.testing.assert_frame_equal(back.summary(), fit.summary())
+    np.testing.assert_array_equal(back.threshold_draws(), fit.threshold_draws())
+    np.testing.assert_array_equal(back.idata.log_likelihood["y"].values,
+                                  fit.idata.log_likelihood["y"].values)
+    # the continuous reader refuses rather than rebuilding the panel without its categories
+    with pytest.raises(bl.SpecError, match="holds a fit with categorical variables; read it "
+                                           "with bl.load_fit"):
+        load_continuous(path)

@@ -227,3 +227,143 @@ def test_parquet_reads_like_csv(tmp_path):
     expected = bl.Panel.from_long(frame, unit="id", wave="time", outcomes=["score"],
                                   time_varying=["stress"], time_invariant=["age"])
     assert study.panel() == expected
+
+
+# --------------------------------------------------------------------------------------------
+# categorical outcomes and indicators (`data.categorical`)
+# --------------------------------------------------------------------------------------------
+
+
+def _ordinal_frame(seed: int = 5) -> pd.DataFrame:
+    """20 units x 4 waves: an ordinal rating 1..3, a yes/no item as labels, drawn by NumPy."""
+    rng = np.random.default_rng(seed)
+    n, t = 20, 4
+    rating = rng.integers(1, 4, size=n * t)
+    rating[:3] = [1, 2, 3]  # every category is observed
+    woke = np.where(rng.uniform(size=n * t) < 0.5, "no", "yes")
+    woke[:2] = ["no", "yes"]
+    return pd.DataFrame({"id": np.repeat(np.arange(1, n + 1), t),
+                         "time": np.tile(np.arange(1, t + 1), n),
+                         "rating": rating, "woke": woke})
+
+
+CATEGORICAL_STUDY = """
+title = "ordinal"
+[data]
+path = "panel.csv"
+unit = "id"
+wave = "time"
+outcomes = { sleep = ["rating", "woke"] }
+categorical = { rating = "ordinal", woke = ["no", "yes"] }
+[[models]]
+model = "random-effects"
+options = { unique_covariance = "none" }
+"""
+
+
+def test_categorical_study_reads_the_panel_of_direct_intake(tmp_path):
+    frame = _ordinal_frame()
+    study = load_study(_write(tmp_path, CATEGORICAL_STUDY, frame))
+    assert study.data.categorical == {"rating": "ordinal", "woke": ("no", "yes")}
+    # reference: the Python API on the same frame (data/categories.py reads the categories)
+    expected = bl.Panel.from_long(frame, unit="id", wave="time",
+                                  outcomes={"sleep": ["rating", "woke"]},
+                                  categorical={"rating": "ordinal", "woke": ["no", "yes"]})
+    panel = study.panel()
+    assert panel == expected
+    assert panel.categories == {"rating": (1, 2, 3), "woke": ("no", "yes")}
+    # category positions 0..C-1, counted by pandas from the raw column
+    codes = frame.sort_values(["id", "time"])["rating"].to_numpy() - 1
+    np.testing.assert_array_equal(panel.y[:, :, 0].ravel(), codes)
+
+
+def test_categorical_changes_the_fit_key_and_its_absence_does_not(tmp_path):
+    plain = load_study(_write(tmp_path, STUDY))
+    assert "categorical" not in plain.data.settings()  # continuous studies keep their hashes
+    other = tmp_path / "other"
+    other.mkdir()
+    study = load_study(_write(other, CATEGORICAL_STUDY, _ordinal_frame()))
+    changed = load_study(_write(other, CATEGORICAL_STUDY.replace(
+        'woke = ["no", "yes"]', 'woke = "binary"'), _ordinal_frame().assign(
+            woke=lambda d: (d["woke"] == "yes").astype(int))))
+    assert study.fit_key(study.models[0]) != changed.fit_key(changed.models[0])
+
+
+def test_wide_categorical_names_the_indicator(tmp_path):
+    frame = _ordinal_frame()
+    wide = frame.pivot(index="id", columns="time", values=["rating", "woke"])
+    wide.columns = [f"{v}{t}" for v, t in wide.columns]
+    text = """
+title = "wide ordinal"
+[data]
+path = "panel.csv"
+layout = "wide"
+unit = "id"
+outcomes = { rating = ["rating1", "rating2", "rating3", "rating4"] }
+categorical = { rating = "ordinal" }
+[[models]]
+model = "random-effects"
+"""
+    study = load_study(_write(tmp_path, text, wide.reset_index()))
+    panel = study.panel()
+    assert panel.categories == {"rating": (1, 2, 3)}
+
+
+BAD_CATEGORICAL = [
+    ("not-a-table", lambda s: s.replace('categorical = { rating = "ordinal", woke = ["no", "yes"] }',
+                                        'categorical = ["rating"]'), SpecError,
+     r"`data.categorical` must be a table from each categorical outcome or indicator"),
+    ("unknown-variable", lambda s: s.replace("rating = \"ordinal\"", "ratin = \"ordinal\""),
+     DataError, r"`data.categorical.ratin` names 'ratin', which is not an outcome or indicator "
+                r"of `data.outcomes`; did you mean 'rating'\? \(they are rating, woke\)"),
+    ("unknown-kind", lambda s: s.replace("rating = \"ordinal\"", "rating = \"ordinl\""),
+     SpecError, r"`data.categorical.rating` is 'ordinl'; give \"ordinal\", \"binary\" or the "
+                r"category labels in order.*did you mean 'ordinal'\?"),
+    ("one-label", lambda s: s.replace('woke = ["no", "yes"]', 'woke = ["no"]'), SpecError,
+     r"`data.categorical.woke` must list at least two different categories"),
+    ("repeated-label", lambda s: s.replace('woke = ["no", "yes"]', 'woke = ["no", "no"]'),
+     SpecError, r"`data.categorical.woke` must list at least two different categories"),
+    ("number", lambda s: s.replace('woke = ["no", "yes"]', "woke = 2"), SpecError,
+     r"`data.categorical.woke` must be \"ordinal\", \"binary\" or a list of category labels"),
+]
+
+
+@pytest.mark.parametrize("change, error, wording", [b[1:] for b in BAD_CATEGORICAL],
+                         ids=[b[0] for b in BAD_CATEGORICAL])
+def test_malformed_categorical_names_key_and_fix(tmp_path, change, error, wording):
+    path = _write(tmp_path, change(CATEGORICAL_STUDY), _ordinal_frame())
+    with pytest.raises(error, match=wording) as info:
+        load_study(path)
+    assert str(info.value).startswith("study file study.toml: ")
+
+
+def test_category_not_in_the_declared_labels_names_the_column_and_line(tmp_path):
+    frame = _ordinal_frame()
+    frame.loc[5, "woke"] = "maybe"
+    study = load_study(_write(tmp_path, CATEGORICAL_STUDY, frame))
+    # data/categories.py words it; the file's line is the frame's row + 2 (header is line 1)
+    with pytest.raises(DataError, match=r"column 'woke' row 7 holds 'maybe', which is not among the categories "
+                                        r"declared for 'woke'"):
+        study.panel()
+
+
+def test_ordinal_example_regenerates_and_reads_its_categories(tmp_path):
+    import importlib.util
+
+    folder = EXAMPLE.parent
+    spec = importlib.util.spec_from_file_location("make_pain_data", folder / "make_pain_data.py")
+    maker = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(maker)
+    maker.make(tmp_path / "again.csv")  # the generator with its fixed seed: the same bytes
+    assert (tmp_path / "again.csv").read_bytes() == (folder / "pain_interference.csv").read_bytes()
+    study = load_study(folder / "pain_interference.toml")
+    raw = tomllib.loads((folder / "pain_interference.toml").read_text())
+    labels = raw["data"]["categorical"]["interference"]
+    assert labels == maker.CATEGORIES
+    panel = study.panel()
+    assert panel.categories == {"interference": tuple(labels)}
+    # reference: pandas counts of the labels in the CSV
+    counts = pd.read_csv(folder / "pain_interference.csv")["interference"].value_counts()
+    y = panel.y[:, :, 0]
+    for k, label in enumerate(labels):
+        assert int((y == k).sum()) == counts[label]
