@@ -358,7 +358,7 @@ def test_deviation_sd_axis_refits_an_approximate_invariance_model():
     pytest.importorskip("bayeslong.infer.sampling")
     import warnings
 
-    from bayeslong.infer.sampling import _arviz_numpy
+    from bayeslong.infer.diagnostics import _arviz_numpy
 
     panel = _indicator_study(200, 21)
     approx = bl.model("alt", invariance="approximate")

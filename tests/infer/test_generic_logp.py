@@ -16,7 +16,8 @@ import bayeslong as bl
 from bayeslong.errors import ConvergenceWarning, SpecError
 from bayeslong.infer.generic_logp import layout, logp_function
 from bayeslong.infer.priors import resolve_priors
-from bayeslong.infer.sampling import _arviz_numpy, _choose, fit
+from bayeslong.infer.diagnostics import _arviz_numpy
+from bayeslong.infer.sampling import _choose, fit
 from bayeslong.model.structure import structure_for
 
 
