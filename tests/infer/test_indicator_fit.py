@@ -110,7 +110,7 @@ def test_tiny_deviation_prior_is_scalar_invariance(drift_panel):
     # means agree within 4 combined Monte Carlo standard errors (ArviZ's mcse of the mean)
     import arviz as az
 
-    from bayeslong.infer.sampling import _arviz_numpy
+    from bayeslong.infer.diagnostics import _arviz_numpy
 
     fits = [_fit(bl.model("alt"), drift_panel),
             _fit(bl.model("alt", invariance="approximate", deviation_sd=1e-4), drift_panel, seed=4)]
