@@ -116,21 +116,28 @@ def identify(spec: Spec, panel, *, points: int = 3, seed: int = 0, tol: float = 
     return _RESULTS[key]
 
 
+def _best_rank(jacobians, tol: float):
+    """``(rank, null-space rows, rows)`` of the highest-rank Jacobian among ``jacobians``,
+    each column scaled to unit length, singular values below ``tol`` times the largest
+    counted as zero."""
+    best = None
+    for J in jacobians:
+        J = J / np.maximum(np.linalg.norm(J, axis=0), 1e-300)
+        _, sv, vt = np.linalg.svd(J, full_matrices=True)
+        rank = int(np.sum(sv > tol * sv.max()))
+        if best is None or rank > best[0]:
+            best = (rank, vt[rank:], J.shape[0])
+    return best
+
+
 def _identify(spec, panel, *, points, seed, tol) -> Identification:
     structure = structure_for(spec, panel)
     tr = Unconstrained(structure)
     rng = np.random.default_rng(seed)
     u0 = tr.from_natural(start_values(structure, panel))
-    best = None
-    for _ in range(points):
-        u = u0 + rng.normal(0.0, 0.5, size=u0.shape)
-        J = _moment_jacobian(structure, tr.to_natural(u))
-        J = J / np.maximum(np.linalg.norm(J, axis=0), 1e-300)
-        _, s, vt = np.linalg.svd(J, full_matrices=True)
-        rank = int(np.sum(s > tol * s.max()))
-        if best is None or rank > best[0]:
-            best = (rank, vt[rank:], J.shape[0])
-    rank, null, n_moments = best
+    rank, null, n_moments = _best_rank(
+        (_moment_jacobian(structure, tr.to_natural(u0 + rng.normal(0.0, 0.5, size=u0.shape)))
+         for _ in range(points)), tol)
     p = structure.n_params
     deficient = ()
     advice = ""
@@ -194,21 +201,18 @@ def _identify_categorical(spec, panel, *, points, seed, tol) -> Identification:
     rng = np.random.default_rng(seed)
     u0 = tr.from_natural(start_values(structure_for(spec, panel), panel))
     n_free, n_tau = len(cat.free), len(cat.thresholds)
-    best = None
-    for _ in range(points):
-        theta = tr.to_natural(u0 + rng.normal(0.0, 0.5, size=u0.shape))
-        # thresholds increasing from the fixed first cut 0, in the responses' SD units
-        tau = np.cumsum(rng.uniform(0.3, 1.0, size=max(n_tau, 1)))[:n_tau]
-        x = np.concatenate([theta[list(cat.free)], tau])
-        step = 1e-30
-        g = _standardised(cat, x[None] + 1j * step * np.eye(len(x)))
-        J = (g.imag / step).T
-        J = J / np.maximum(np.linalg.norm(J, axis=0), 1e-300)
-        _, sv, vt = np.linalg.svd(J, full_matrices=True)
-        rank = int(np.sum(sv > tol * sv.max()))
-        if best is None or rank > best[0]:
-            best = (rank, vt[rank:], J.shape[0])
-    rank, null, n_moments = best
+
+    def jacobians():
+        for _ in range(points):
+            theta = tr.to_natural(u0 + rng.normal(0.0, 0.5, size=u0.shape))
+            # thresholds increasing from the fixed first cut 0, in the responses' SD units
+            tau = np.cumsum(rng.uniform(0.3, 1.0, size=max(n_tau, 1)))[:n_tau]
+            x = np.concatenate([theta[list(cat.free)], tau])
+            step = 1e-30
+            g = _standardised(cat, x[None] + 1j * step * np.eye(len(x)))
+            yield (g.imag / step).T
+
+    rank, null, n_moments = _best_rank(jacobians(), tol)
     p = n_free + n_tau
     deficient, advice = (), ""
     if rank < p:
