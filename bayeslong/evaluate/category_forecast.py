@@ -28,15 +28,13 @@ Simulation 90(14), 2499-2523. doi:10.1080/00949655.2020.1783262
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pandas as pd
 from scipy.special import logsumexp
 
 from bayeslong.dims import UNIT
-from bayeslong.errors import ConvergenceWarning
 from bayeslong.infer.categorical import LOGLIK_DRAWS, fit_categorical
+from bayeslong.infer.diagnostics import convergence_problems
 from bayeslong.infer.marginal import unit_marginal_loglik
 from bayeslong.model.thresholds import categorical_structure
 
@@ -48,14 +46,8 @@ def last_wave_terms(spec, panel, hidden, **fit_kwargs) -> tuple[pd.Series, tuple
     at wave T (indexed by unit), the refit's convergence warnings and its timing.
     """
     kwargs = {"loglik_draws": 2, **fit_kwargs}  # the refit's own LOO terms are not needed
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ConvergenceWarning)
+    with convergence_problems() as problems:  # kept with the score, and passed on
         past = fit_categorical(spec, hidden, **kwargs)
-    problems = []
-    for w in caught:  # pass every warning on; keep the convergence ones with the score too
-        if issubclass(w.category, ConvergenceWarning):
-            problems.append(str(w.message))
-        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     post = past.idata.posterior
     n = post.sizes["chain"] * post.sizes["draw"]
     rows = np.unique(np.linspace(0, n - 1, min(n, LOGLIK_DRAWS)).round().astype(int))

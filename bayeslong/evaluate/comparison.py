@@ -44,6 +44,7 @@ from bayeslong.data.panel import check_panel
 from bayeslong.dims import UNIT
 from bayeslong.errors import ConvergenceWarning, DataError, SpecError
 from bayeslong.evaluate.checks import conditional_normal
+from bayeslong.infer.diagnostics import convergence_problems
 from bayeslong.infer.likelihood import mvn_logpdf
 from bayeslong.infer.marginal import treatment_conflict
 from bayeslong.model.moments import moment_draws, unit_means
@@ -659,16 +660,11 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
         if not prior_set.has_callable and np.isfinite(starts).all():
             data = hidden
             kwargs["priors"] = {p.parameter: (p.family, *p.args) for p in prior_set.priors}
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ConvergenceWarning)
+    # convergence problems are kept with the score; the start values' "mean of empty slice"
+    # over the hidden wave is dropped (checked finite above), every other warning passed on
+    drop = (lambda w: data is not past and str(w.message) == "Mean of empty slice")
+    with convergence_problems(drop) as problems:
         fit_past = run_fit(spec, data, **kwargs)
-    problems = []
-    for w in caught:  # pass every warning on; keep the convergence ones with the score too
-        if issubclass(w.category, ConvergenceWarning):
-            problems.append(str(w.message))
-        elif data is not past and str(w.message) == "Mean of empty slice":
-            continue  # start values averaging the hidden wave (checked finite above)
-        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     thetas = np.asarray(fit_past.theta_draws(), dtype=float)  # same names, same order
     return dataclasses.replace(_score(spec, before, panel, thetas), problems=tuple(problems),
                                timing=dict(getattr(fit_past, "timing", {}) or {}))

@@ -24,6 +24,26 @@ EBFMI_MIN = 0.3
 
 
 
+@contextlib.contextmanager
+def convergence_problems(drop=None):
+    """Collect the convergence warnings raised inside the block, and pass every warning on.
+
+    Yields a list that, when the block ends, holds the text of each ConvergenceWarning (a
+    refit's problems, kept with its score); every warning is then re-issued, except those
+    for which ``drop(warning)`` is true.
+    """
+    problems: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ConvergenceWarning)
+        yield problems
+    for w in caught:
+        if issubclass(w.category, ConvergenceWarning):
+            problems.append(str(w.message))
+        elif drop is not None and drop(w):
+            continue
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
 def _stat(stats, *names):
     for name in names:
         if name in stats:
