@@ -21,7 +21,8 @@ from bayeslong.model.spec import Spec, check_spec
 
 def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
          replications: int = 20, executor=None, fit_kwargs: dict | None = None, seed: int = 0,
-         missing: dict | None = None, kind: str = "fit", progress: bool = True) -> pd.DataFrame:
+         missing: dict | None = None, kind: str = "fit", progress: bool = True,
+         indicators: dict | None = None, categorical: dict | None = None) -> pd.DataFrame:
     """Simulate and fit replications of a design; report how well the lag is recovered.
 
     Parameters
@@ -48,6 +49,12 @@ def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
         ``fit_ml`` uses maximum likelihood with Wald intervals (estimate +- 1.645 SE) in
         place of the posterior (fast, for a first look).
     progress : bool, default True
+    indicators, categorical : dict, optional
+        As for :func:`bayeslong.simulate`: several indicators per process (``params`` then
+        also sets ``loading[..]``, ``intercept[..]``, ``unique_var[..]``), and indicators or
+        outcomes declared binary or ordinal (``params`` sets their thresholds). The fits
+        are those :func:`bayeslong.fit` chooses for such panels; ``kind="fit_ml"`` refuses
+        categorical panels, as :func:`bayeslong.fit_ml` does.
 
     Returns
     -------
@@ -84,15 +91,19 @@ def plan(spec: Spec, params: dict, *, n_units=(30, 60, 120), n_waves=(4, 6),
                         "plan() reports on the lag, give a model with lag='constant'")
     if kind not in ("fit", "fit_ml"):
         raise SpecError(f"`kind` must be 'fit' or 'fit_ml'; got {kind!r}")
+    if kind == "fit_ml" and categorical:
+        raise SpecError("plan(kind='fit_ml') cannot fit binary or ordinal outcomes: maximum "
+                        "likelihood is not available for categorical panels; use kind='fit'")
     designs = [(int(n), int(t)) for n in n_units for t in n_waves]
     seeds = np.random.SeedSequence(seed).generate_state(len(designs) * replications * 2)
     tasks, k, truths = [], 0, {}
     for n, t in designs:
-        sim0 = Simulation(spec=spec, params=params, n_units=n, n_waves=t, missing=missing)
+        design = dict(spec=spec, params=params, n_units=n, n_waves=t, missing=missing,
+                      indicators=indicators, categorical=categorical)
+        sim0 = Simulation(**design)
         truths[n, t] = float(dict(zip(sim0.structure.names, sim0.theta()))[par])  # checks params
         for r in range(replications):
-            sim = Simulation(spec=spec, params=params, n_units=n, n_waves=t, missing=missing,
-                             seed=int(seeds[2 * k]))
+            sim = Simulation(**design, seed=int(seeds[2 * k]))
             tasks.append(Task(name=f"N={n} T={t} rep={r}", spec=spec, panel=sim, kind=kind,
                               kwargs=dict(fit_kwargs or {}), seed=int(seeds[2 * k + 1]) % (2**31),
                               params=(par,)))

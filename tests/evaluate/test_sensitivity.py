@@ -384,3 +384,46 @@ def test_deviation_sd_axis_refits_an_approximate_invariance_model():
     # offered only where it applies: not for a model with exact invariance
     with pytest.raises(SpecError, match="`deviation_sds` refits .* invariance='scalar'"):
         bl.lag_sensitivity(panel, models=["alt"], deviation_sds=[0.1], **off)
+
+
+# --- planning with indicators and categorical outcomes ----------------------------------------
+AR_ITEMS = {**AR, "loading": 0.8, "intercept[b]": 0.5, "intercept[c]": -0.5, "unique_var": 0.5,
+            "unique_cov": 0.1}
+
+
+def test_plan_with_indicators_matches_a_hand_loop():
+    # the simulated panels carry three indicators; the hand loop draws and fits the same ones
+    spec = bl.model("ar")
+    items = {"y": ["a", "b", "c"]}
+    out = plan(spec, AR_ITEMS, n_units=[80], n_waves=[4], replications=2, kind="fit_ml", seed=3,
+               fit_kwargs={"starts": 1, "check": False}, executor=SerialExecutor(),
+               progress=False, indicators=items)
+    seeds = np.random.SeedSequence(3).generate_state(4)
+    est = []
+    for r in range(2):
+        panel = Simulation(spec=spec, params=AR_ITEMS, n_units=80, n_waves=4,
+                           seed=int(seeds[2 * r]), indicators=items).panel()
+        assert panel.indicators == {"y": ("a", "b", "c")}
+        ml = bl.fit_ml(spec, panel, starts=1, check=False, seed=int(seeds[2 * r + 1]) % 2**31)
+        est.append(ml.params["lag"])
+    row = out.iloc[0]
+    assert row["n_ok"] == 2 and row["truth"] == 0.5
+    assert row["bias"] == pytest.approx(np.mean(est) - 0.5, abs=1e-9)
+
+
+def test_plan_refuses_ml_for_categorical_outcomes():
+    with pytest.raises(SpecError, match="maximum likelihood is not available for categorical"):
+        plan(bl.model("ar"), AR, kind="fit_ml", categorical={"y": "binary"}, replications=2)
+
+
+@pytest.mark.slow
+def test_plan_with_bayes_on_binary_outcomes():
+    pytest.importorskip("bayeslong.infer.sampling")
+    spec = bl.model("ar")
+    truth = {"intercept": 0.0, "lag": 0.5, "initial_mean": 0.0, "initial_var": 1.0,
+             "resid_var": 0.6}
+    out = plan(spec, truth, n_units=[60], n_waves=[4], replications=2, seed=2,
+               categorical={"y": "binary"}, executor=SerialExecutor(), progress=False,
+               fit_kwargs=dict(draws=200, tune=200, chains=2))
+    row = out.iloc[0]
+    assert row["n_ok"] == 2 and row["truth"] == 0.5 and np.isfinite(row["post_sd"])
