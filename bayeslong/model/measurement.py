@@ -104,10 +104,49 @@ def settle_design(spec, outcomes: tuple, indicators) -> dict[str, tuple[str, ...
             raise SpecError(f"`{option}` names {name!r}, which is not an indicator of a process "
                             f"measured by several indicators{hint} (indicators: {have})")
     if several and spec.form == "within":
-        raise SpecError(f"model '{spec.name}' has the within-person form, which is not available "
-                        "with several indicators per wave yet; give each process one observed "
-                        "score, or choose a model of the latent form")
+        _check_within(spec, indicators)
     return indicators
+
+
+def _check_within(spec, indicators: dict) -> None:
+    """Refuse the options the within form with several indicators cannot identify (module notes)."""
+    m = spec.measurement
+    where = f"model '{spec.name}' (within-person form, several indicators per wave)"
+    if tuple(spec.factors) != ("level",):
+        raise SpecError(f"{where} takes random intercepts only (factors = [\"level\"]); got "
+                        f"factors = {list(spec.factors)}: growth factors on indicators are not "
+                        "available in the within form")
+    if m["unique_covariance"] == "same-indicator":
+        raise SpecError(f"`unique_covariance = \"same-indicator\"` is not identified in {where}: "
+                        "each indicator's random intercept already gives its scores one "
+                        "covariance shared by every pair of waves, and free unique covariances "
+                        "over waves would absorb it; set unique_covariance=\"none\"")
+    groups = [g for g in indicators.values() if len(g) > 1]
+    if spec.options.get("intercepts") == "equal" and not all(within_means_move(spec, g)
+                                                             for g in groups):
+        freed = m["release"]["intercept"]
+        raise SpecError(f"`intercepts = \"equal\"` has nothing to act on in {where} with "
+                        f"invariance={m['invariance']!r}"
+                        + (f" and the intercepts of {', '.join(freed)} released" if freed else "")
+                        + ": no "
+                        "indicator holds its intercept equal over waves, so every wave's means "
+                        "are the indicators' own intercepts; leave `intercepts` at \"free\", or "
+                        "hold at least one indicator's intercept equal (invariance=\"scalar\" "
+                        "without releasing it)")
+
+
+def within_means_move(spec, names: tuple[str, ...]) -> bool:
+    """Whether the within factor of a process measured by ``names`` gets wave intercepts.
+
+    In the within form the indicators' intercepts are the first wave's means; the within
+    factor's mean may move from wave 2 on when at least one indicator holds its intercept
+    equal over waves (scalar invariance or above, not all released), which ties the
+    indicators' mean changes to the loadings (module notes).
+    """
+    m = spec.measurement
+    if "intercept" not in EQUAL_PARTS[m["invariance"]]:
+        return False
+    return any(n not in m["release"]["intercept"] for n in names)
 
 
 def marker_of(spec, names: tuple[str, ...]) -> str:
@@ -119,13 +158,19 @@ def marker_of(spec, names: tuple[str, ...]) -> str:
     return chosen[0] if chosen else names[0]
 
 
-def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) -> set[int]:
+def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row,
+                   intercept_row=None) -> set[int]:
     """Fill Lam, nu and Theta for one process measured by ``names`` (see module notes).
 
     ``eta_row(t)`` is the row of the process's latent at wave t, ``obs_row(j, t)`` that of
     indicator ``names[j]`` at wave t. Returns the waves at which the marker's intercept is
     free (below scalar invariance, or released): there the indicators carry the latent's
     mean, and the structural part adds no wave intercept of its own.
+
+    ``intercept_row(j)``, given in the within form, is the row of indicator ``names[j]``'s
+    random intercept: the indicator loads 1 on it at every wave, and the marker's intercept
+    is a parameter like the others (the within factor's zero mean at the first wave is the
+    origin), with no per-wave deviation under approximate invariance (module notes).
     """
     m = spec.measurement
     marker = marker_of(spec, names)
@@ -161,10 +206,13 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
             tab.put(which, pos, label, kind)
 
     others = [n for n in names if n != marker]
+    within = intercept_row is not None
     free_origin: set[int] = set()
     for j, name in enumerate(names):
         for t in range(1, T + 1):
             row = obs_row(j, t)
+            if within:  # the indicator's own random intercept (Mulder & Hamaker 2021)
+                tab.fix("Lam", (row, intercept_row(j)), 1.0)
             if name == marker and effects:
                 # effects coding: the loadings average 1 at every wave, so this one is
                 # J - (sum of the others) (Little, Slegers & Card 2006)
@@ -175,6 +223,12 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
             else:
                 place("Lam", (row, eta_row(t)), "loading", name, t)
             same = equal_over_waves("intercept", name)
+            if within:
+                if name == marker and same:  # the marker carries the within factor's mean
+                    tab.put("nu", row, _label("intercept", name), "intercept")
+                else:
+                    place("nu", row, "intercept", name, t)
+                continue
             if name == marker and (same or t == 1):
                 if effects:  # the intercepts sum to 0: this one is minus the others
                     tab.combine("nu", row, 0.0,
