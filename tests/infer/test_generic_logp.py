@@ -14,9 +14,9 @@ import pytest
 
 import bayeslong as bl
 from bayeslong.errors import ConvergenceWarning, SpecError
+from bayeslong.infer.diagnostics import _arviz_numpy
 from bayeslong.infer.generic_logp import layout, logp_function
 from bayeslong.infer.priors import resolve_priors
-from bayeslong.infer.diagnostics import _arviz_numpy
 from bayeslong.infer.sampling import _choose, fit
 from bayeslong.model.structure import structure_for
 
