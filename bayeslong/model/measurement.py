@@ -33,6 +33,18 @@ its loading 1 and intercept 0 at every wave (it sets the latent's unit and origi
 wave); the common value and the deviations are identified only jointly with their prior,
 so maximum likelihood refuses this level (infer/ml.py).
 
+In the within form (the multiple-indicator RI-CLPM; Mulder & Hamaker 2021) each indicator
+also loads 1 on a random intercept of its own, ``level[j]``, and the process's latent is
+the within factor, which carries the lags. The within part has mean 0 at the first wave
+and the random intercepts mean 0, so that zero is the origin: every indicator's intercept
+is a parameter (the marker's too; effects coding then sets only the unit), and at scalar
+invariance the within factor gets wave intercepts from wave 2 on (:func:`within_means_move`)
+while the marker keeps one intercept with no per-wave deviation under approximate
+invariance. Unique covariances over waves are not identified there (the random intercept
+adds one variance to every pair of an indicator's waves) and are refused, as are growth
+factors and ``intercepts="equal"`` where no indicator holds its intercept equal
+(docs/model-family.md, "The multiple-indicator RI-CLPM").
+
 Unique factors of the same indicator may covary over waves (``unique_covariance =
 "same-indicator"``, the default): the specific part of an item recurs at every wave, and
 leaving that covariance out pushes it into the latent's stability (common practice in
@@ -47,6 +59,8 @@ Little, T. D. (2013). Longitudinal Structural Equation Modeling. Guilford Press.
 Little, T. D., Slegers, D. W. & Card, N. A. (2006). A non-arbitrary method of identifying and
 scaling latent variables in SEM and MACS models. Structural Equation Modeling 13(1), 59-72.
 doi:10.1207/s15328007sem1301_3
+Mulder, J. D. & Hamaker, E. L. (2021). Three extensions of the random intercept cross-lagged
+panel model. Structural Equation Modeling 28(4), 638-648. doi:10.1080/10705511.2020.1784738
 Muthén, B. & Asparouhov, T. (2012). Bayesian structural equation modeling: a more flexible
 representation of substantive theory. Psychological Methods 17(3), 313-335.
 doi:10.1037/a0026802
