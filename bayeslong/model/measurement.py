@@ -163,6 +163,23 @@ def within_means_move(spec, names: tuple[str, ...]) -> bool:
     return any(n not in m["release"]["intercept"] for n in names)
 
 
+def nearest_exact(spec):
+    """``(spec, note)``: the spec maximum-likelihood steps use, and a note when it differs.
+
+    Approximate invariance has no maximum-likelihood estimate (module notes); its nearest
+    exact level is scalar invariance, which it becomes as the deviations' prior narrows. A
+    spec at any other level comes back unchanged with an empty note.
+    """
+    if spec.measurement["invariance"] != "approximate":
+        return spec, ""
+    return spec.replace(invariance="scalar"), (
+        "approximate invariance has no maximum-likelihood estimate (the common values and the "
+        "per-wave deviations of loadings and intercepts are told apart only by the "
+        "deviations' prior), so the maximum-likelihood steps of this model (identification "
+        "check, maximum-likelihood fit and its AIC/BIC) use scalar invariance, the nearest "
+        "exact level; a Bayesian fit keeps approximate invariance")
+
+
 def marker_of(spec, names: tuple[str, ...]) -> str:
     """The process's marker: the one named by the ``marker`` option, else its first indicator."""
     chosen = [n for n in (spec.measurement["marker"] or ()) if n in names]

@@ -24,6 +24,7 @@ import pandas as pd
 from bayeslong.errors import BayeslongError
 from bayeslong.evaluate.measurement import PARTS, wave_measurement
 from bayeslong.infer.invariance import compare_invariance
+from bayeslong.model.measurement import nearest_exact
 from bayeslong.model.spec import model
 from bayeslong.model.structure import structure_for
 from bayeslong.workflow.results import slug
@@ -205,7 +206,8 @@ def _table_of(m, panel):
     structure = structure_for(m.candidate.spec, panel)
     if m.fit is not None:
         return wave_measurement(structure, panel, m.fit.theta_draws())
-    if m.ml is not None:
+    if m.ml is not None:  # fitted at the nearest exact invariance level (model/measurement.py)
+        structure = structure_for(nearest_exact(m.candidate.spec)[0], panel)
         estimate = m.ml["table"]["estimate"]
         return wave_measurement(structure, panel, estimate.reindex(structure.names).to_numpy())
     return None
