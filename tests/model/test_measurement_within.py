@@ -87,14 +87,17 @@ class _Read(dict):
         return super().__getitem__(name)
 
 
-def _naive_moments(p, indicators, invariance):
+def _naive_moments(p, indicators, invariance, scale="marker"):
     """Mean and covariance of y (process, indicator, wave order) from the published equations.
 
     ``p`` holds the documented parameter names (docs/model-family.md, "The multiple-indicator
     RI-CLPM"). A process with one indicator is observed directly (lambda = 1, no eps, wave
-    means intercept[k,t]); with several: marker loading 1 (the first indicator), loadings
-    equal over waves at metric and above, intercepts mu[j,t] free by wave below scalar,
-    else mu[j] + lambda_j * (within factor's wave intercepts intercept[k,t], t >= 2).
+    means intercept[k,t]); with several: marker loading 1 (the first indicator), or under
+    effects coding (Little, Slegers & Card 2006) J minus the other loadings; loadings equal
+    over waves at metric and above, intercepts mu[j,t] free by wave below scalar, else
+    mu[j] + lambda_j * (within factor's wave intercepts intercept[k,t], t >= 2). Approximate
+    invariance (Muthén & Asparouhov 2012): every non-marker loading and intercept is the
+    common value plus its wave's deviation; the marker keeps loading 1 and one intercept.
     """
     procs = list(indicators)
     K = len(procs)
@@ -113,7 +116,13 @@ def _naive_moments(p, indicators, invariance):
             return p[f"{base}_cov[{a},{b}{'' if t is None else f',{t}'}]"]
         return np.array([[val(a, b) for b in procs] for a in procs])
 
-    moves = invariance in ("scalar", "strict")
+    moves = invariance in ("scalar", "strict", "approximate")
+    approx = invariance == "approximate"
+
+    def loading(j, t):
+        if invariance == "configural":
+            return p[f"loading[{j},{t}]"]
+        return p[f"loading[{j}]"] + (p[f"loading_deviation[{j},{t}]"] if approx else 0.0)
     a = [np.zeros(K)] + [np.array([p[f"intercept[{k},{t}]"] if several[k] and moves else 0.0
                                    for k in procs]) for t in range(2, T + 1)]
     m = [np.zeros(K)]
@@ -141,13 +150,18 @@ def _naive_moments(p, indicators, invariance):
                 L[row, kk * T + t - 1] = 1.0
                 mu[row] = p[f"intercept[{k},{t}]"]
                 continue
-            if first:
+            others = [o for o in indicators[k] if o != j]
+            if first and scale == "effects":
+                L[row, kk * T + t - 1] = len(indicators[k]) - sum(loading(o, t) for o in others)
+            elif first:
                 L[row, kk * T + t - 1] = 1.0
-            elif invariance == "configural":
-                L[row, kk * T + t - 1] = p[f"loading[{j},{t}]"]
             else:
-                L[row, kk * T + t - 1] = p[f"loading[{j}]"]
-            mu[row] = p[f"intercept[{j}]"] if moves else p[f"intercept[{j},{t}]"]
+                L[row, kk * T + t - 1] = loading(j, t)
+            if not moves:
+                mu[row] = p[f"intercept[{j},{t}]"]
+            else:
+                mu[row] = p[f"intercept[{j}]"] + (p[f"intercept_deviation[{j},{t}]"]
+                                                  if approx and not first else 0.0)
             eps[row] = p[f"unique_var[{j}]"] if invariance == "strict" else p[f"unique_var[{j},{t}]"]
     # random intercepts: one per indicator, loading 1 at every wave (I_J kron 1_T)
     names = [j for _, j in items]
@@ -160,8 +174,8 @@ def _naive_moments(p, indicators, invariance):
     return mean, cov
 
 
-def _naive_loglik(p, indicators, invariance, y):
-    mean, cov = _naive_moments(p, indicators, invariance)
+def _naive_loglik(p, indicators, invariance, y, scale="marker"):
+    mean, cov = _naive_moments(p, indicators, invariance, scale)
     total = 0.0
     for row in y:  # unit by unit on its observed entries
         seen = ~np.isnan(row)
@@ -174,9 +188,12 @@ def _naive_loglik(p, indicators, invariance, y):
     (TWO_BY_THREE, {"invariance": "configural"}),
     (TWO_BY_THREE, {"invariance": "metric"}),
     (TWO_BY_THREE, {"invariance": "strict"}),
+    (TWO_BY_THREE, {"scale": "effects"}),
+    (TWO_BY_THREE, {"invariance": "approximate"}),
     (MIXED, {}),
     (ONE_EACH, {}),
-], ids=["2x3-scalar", "2x3-configural", "2x3-metric", "2x3-strict", "mixed", "one-each"])
+], ids=["2x3-scalar", "2x3-configural", "2x3-metric", "2x3-strict", "2x3-effects",
+        "2x3-approximate", "mixed", "one-each"])
 def test_loglik_equals_naive_published_equations(indicators, options):
     spec = bl.model("ri-clpm", **options)
     panel = _panel(indicators, _truth(indicators), 150, seed=3, missing=0.12)
@@ -188,7 +205,7 @@ def test_loglik_equals_naive_published_equations(indicators, options):
         np.random.default_rng(8).normal(0.0, 0.4, size=structure.n_params))
     values = _Read(dict(zip(structure.names, theta)))
     expected = _naive_loglik(values, indicators, spec.measurement["invariance"],
-                             panel.outcome_matrix())
+                             panel.outcome_matrix(), spec.measurement["scale"])
     # the naive form reads exactly the engine's parameters, by their documented names
     assert values.read == set(structure.names), sorted(set(structure.names) ^ values.read)
     # both sum the same ~150 terms in double precision: agreement to 1e-8 absolute
