@@ -137,7 +137,9 @@ def add_measurement_section(doc, results, draw) -> None:
         f"{p}: {', '.join(map(str, g))}" for p, g in panel.indicators.items() if g != (p,))
         + ". Each is a latent variable per wave; its first listed indicator (or the one named "
         "by `marker`) sets its unit (loading 1) and its origin (intercept 0 at the first wave), "
-        "or with `scale = \"effects\"` the indicators' average does.")
+        "or with `scale = \"effects\"` the indicators' average does. In the within-person form "
+        "(ri-clpm) the latent is the within part, whose zero mean at the first wave is the "
+        "origin, and each indicator has a random intercept of its own.")
     if len(panel.outcomes) == 1:
         doc.heading("The measurement alone: unlinked waves", 3)
         doc.para("The same indicators in a model with a mean and a variance of its own at every "
@@ -154,9 +156,11 @@ def add_measurement_section(doc, results, draw) -> None:
         if table is not None and len(table):
             what = ("posterior mean [90% interval]" if m.fit is not None
                     else "maximum-likelihood estimate")
+            level = f"'{spec.measurement['invariance']}'"
+            if m.fit is None and nearest_exact(spec)[1]:
+                level = f"'scalar' (the nearest exact level to {level})"
             doc.table(measurement_frame(table), f"{m.label}: loadings, intercepts and unique "
-                      f"variances by indicator and wave, {what}; invariance "
-                      f"'{spec.measurement['invariance']}'")
+                      f"variances by indicator and wave, {what}; invariance {level}")
         _comparison(doc, spec, m.label, panel, results.study.sampling["seed"])
         if m.fit is not None and not shown:
             shown = True
