@@ -254,6 +254,12 @@ def test_every_invariance_level_is_identified():
     released = bl.model("ri-clpm", release={"intercept": ["a", "b", "c"]})  # no within means
     assert bl.identify(released, panel).identified
     assert bl.identify(bl.model("ri-clpm", scale="effects"), panel).identified
+    # approximate invariance: the common values and deviations are one parameter more than
+    # the data identify per indicator and part, told apart only by their prior
+    approx = bl.identify(bl.model("ri-clpm", invariance="approximate"), panel)
+    assert not approx.identified and "loading_deviation[b,2]" in approx.deficient
+    assert "intercept[a]" not in approx.deficient  # the marker's intercept has no deviation
+    assert "prior" in approx.advice
 
 
 def test_same_indicator_unique_covariances_are_not_identified(monkeypatch):
