@@ -249,7 +249,8 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
 
     For a process measured by several indicators, m and s are those of its first listed
     indicator (the default marker, whose unit the latent takes), and m_j, s_j those of
-    indicator j (:meth:`~bayeslong.data.Panel.indicator_scale`). A loading is centred on the
+    indicator j (:meth:`~bayeslong.data.Panel.indicator_scale`); the variance of indicator
+    j's random intercept (within form, ``level_var[j]``) is on s_j. A loading is centred on the
     marker's 1 (an indicator on the marker's scale); an intercept is the indicator's mean
     minus its loading times the latent's mean, centred on 0 with the same wide location
     scale as the means. Under approximate invariance each wave's deviation of an intercept
@@ -308,6 +309,8 @@ def default_priors(structure: Structure, panel) -> list[Prior]:
         procs = [k for k in keys if k in outcome]
         y = procs[0] if procs else names[0]
         m, s = outcome[y]["mean"], outcome[y]["sd"]
+        if not procs and keys and keys[0] in items:  # an indicator's random intercept
+            m, s = items[keys[0]]["mean"], items[keys[0]]["sd"]
         xs = [k for k in keys if k in cov]
         base = name.split("[")[0]
         if kind in ("mean", "intercept"):

@@ -33,6 +33,18 @@ its loading 1 and intercept 0 at every wave (it sets the latent's unit and origi
 wave); the common value and the deviations are identified only jointly with their prior,
 so maximum likelihood refuses this level (infer/ml.py).
 
+In the within form (the multiple-indicator RI-CLPM; Mulder & Hamaker 2021) each indicator
+also loads 1 on a random intercept of its own, ``level[j]``, and the process's latent is
+the within factor, which carries the lags. The within part has mean 0 at the first wave
+and the random intercepts mean 0, so that zero is the origin: every indicator's intercept
+is a parameter (the marker's too; effects coding then sets only the unit), and at scalar
+invariance the within factor gets wave intercepts from wave 2 on (:func:`within_means_move`)
+while the marker keeps one intercept with no per-wave deviation under approximate
+invariance. Unique covariances over waves are not identified there (the random intercept
+adds one variance to every pair of an indicator's waves) and are refused, as are growth
+factors and ``intercepts="equal"`` where no indicator holds its intercept equal
+(docs/model-family.md, "The multiple-indicator RI-CLPM").
+
 Unique factors of the same indicator may covary over waves (``unique_covariance =
 "same-indicator"``, the default): the specific part of an item recurs at every wave, and
 leaving that covariance out pushes it into the latent's stability (common practice in
@@ -47,6 +59,8 @@ Little, T. D. (2013). Longitudinal Structural Equation Modeling. Guilford Press.
 Little, T. D., Slegers, D. W. & Card, N. A. (2006). A non-arbitrary method of identifying and
 scaling latent variables in SEM and MACS models. Structural Equation Modeling 13(1), 59-72.
 doi:10.1207/s15328007sem1301_3
+Mulder, J. D. & Hamaker, E. L. (2021). Three extensions of the random intercept cross-lagged
+panel model. Structural Equation Modeling 28(4), 638-648. doi:10.1080/10705511.2020.1784738
 Muthén, B. & Asparouhov, T. (2012). Bayesian structural equation modeling: a more flexible
 representation of substantive theory. Psychological Methods 17(3), 313-335.
 doi:10.1037/a0026802
@@ -104,10 +118,66 @@ def settle_design(spec, outcomes: tuple, indicators) -> dict[str, tuple[str, ...
             raise SpecError(f"`{option}` names {name!r}, which is not an indicator of a process "
                             f"measured by several indicators{hint} (indicators: {have})")
     if several and spec.form == "within":
-        raise SpecError(f"model '{spec.name}' has the within-person form, which is not available "
-                        "with several indicators per wave yet; give each process one observed "
-                        "score, or choose a model of the latent form")
+        _check_within(spec, indicators)
     return indicators
+
+
+def _check_within(spec, indicators: dict) -> None:
+    """Refuse the options the within form with several indicators cannot identify (module notes)."""
+    m = spec.measurement
+    where = f"model '{spec.name}' (within-person form, several indicators per wave)"
+    if tuple(spec.factors) != ("level",):
+        raise SpecError(f"{where} takes random intercepts only (factors = [\"level\"]); got "
+                        f"factors = {list(spec.factors)}: growth factors on indicators are not "
+                        "available in the within form")
+    if m["unique_covariance"] == "same-indicator":
+        raise SpecError(f"`unique_covariance = \"same-indicator\"` is not identified in {where}: "
+                        "each indicator's random intercept already gives its scores one "
+                        "covariance shared by every pair of waves, and free unique covariances "
+                        "over waves would absorb it; set unique_covariance=\"none\"")
+    groups = [g for g in indicators.values() if len(g) > 1]
+    if spec.options.get("intercepts") == "equal" and not all(within_means_move(spec, g)
+                                                             for g in groups):
+        freed = m["release"]["intercept"]
+        raise SpecError(f"`intercepts = \"equal\"` has nothing to act on in {where} with "
+                        f"invariance={m['invariance']!r}"
+                        + (f" and the intercepts of {', '.join(freed)} released" if freed else "")
+                        + ": no "
+                        "indicator holds its intercept equal over waves, so every wave's means "
+                        "are the indicators' own intercepts; leave `intercepts` at \"free\", or "
+                        "hold at least one indicator's intercept equal (invariance=\"scalar\" "
+                        "without releasing it)")
+
+
+def within_means_move(spec, names: tuple[str, ...]) -> bool:
+    """Whether the within factor of a process measured by ``names`` gets wave intercepts.
+
+    In the within form the indicators' intercepts are the first wave's means; the within
+    factor's mean may move from wave 2 on when at least one indicator holds its intercept
+    equal over waves (scalar invariance or above, not all released), which ties the
+    indicators' mean changes to the loadings (module notes).
+    """
+    m = spec.measurement
+    if "intercept" not in EQUAL_PARTS[m["invariance"]]:
+        return False
+    return any(n not in m["release"]["intercept"] for n in names)
+
+
+def nearest_exact(spec):
+    """``(spec, note)``: the spec maximum-likelihood steps use, and a note when it differs.
+
+    Approximate invariance has no maximum-likelihood estimate (module notes); its nearest
+    exact level is scalar invariance, which it becomes as the deviations' prior narrows. A
+    spec at any other level comes back unchanged with an empty note.
+    """
+    if spec.measurement["invariance"] != "approximate":
+        return spec, ""
+    return spec.replace(invariance="scalar"), (
+        "approximate invariance has no maximum-likelihood estimate (the common values and the "
+        "per-wave deviations of loadings and intercepts are told apart only by the "
+        "deviations' prior), so the maximum-likelihood steps of this model (identification "
+        "check, maximum-likelihood fit and its AIC/BIC) use scalar invariance, the nearest "
+        "exact level; a Bayesian fit keeps approximate invariance")
 
 
 def marker_of(spec, names: tuple[str, ...]) -> str:
@@ -119,13 +189,19 @@ def marker_of(spec, names: tuple[str, ...]) -> str:
     return chosen[0] if chosen else names[0]
 
 
-def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) -> set[int]:
+def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row,
+                   intercept_row=None) -> set[int]:
     """Fill Lam, nu and Theta for one process measured by ``names`` (see module notes).
 
     ``eta_row(t)`` is the row of the process's latent at wave t, ``obs_row(j, t)`` that of
     indicator ``names[j]`` at wave t. Returns the waves at which the marker's intercept is
     free (below scalar invariance, or released): there the indicators carry the latent's
     mean, and the structural part adds no wave intercept of its own.
+
+    ``intercept_row(j)``, given in the within form, is the row of indicator ``names[j]``'s
+    random intercept: the indicator loads 1 on it at every wave, and the marker's intercept
+    is a parameter like the others (the within factor's zero mean at the first wave is the
+    origin), with no per-wave deviation under approximate invariance (module notes).
     """
     m = spec.measurement
     marker = marker_of(spec, names)
@@ -161,10 +237,13 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
             tab.put(which, pos, label, kind)
 
     others = [n for n in names if n != marker]
+    within = intercept_row is not None
     free_origin: set[int] = set()
     for j, name in enumerate(names):
         for t in range(1, T + 1):
             row = obs_row(j, t)
+            if within:  # the indicator's own random intercept (Mulder & Hamaker 2021)
+                tab.fix("Lam", (row, intercept_row(j)), 1.0)
             if name == marker and effects:
                 # effects coding: the loadings average 1 at every wave, so this one is
                 # J - (sum of the others) (Little, Slegers & Card 2006)
@@ -175,6 +254,12 @@ def add_indicators(tab, spec, names: tuple[str, ...], T: int, eta_row, obs_row) 
             else:
                 place("Lam", (row, eta_row(t)), "loading", name, t)
             same = equal_over_waves("intercept", name)
+            if within:
+                if name == marker and same:  # the marker carries the within factor's mean
+                    tab.put("nu", row, _label("intercept", name), "intercept")
+                else:
+                    place("nu", row, "intercept", name, t)
+                continue
             if name == marker and (same or t == 1):
                 if effects:  # the intercepts sum to 0: this one is minus the others
                     tab.combine("nu", row, 0.0,

@@ -243,8 +243,9 @@ def simulate(spec: Spec, params: dict, n_units: int, n_waves: int, seed: int | N
         For each process, its indicator names, ``{"y": ["y_a", "y_b", "y_c"]}``: the process
         is then a latent measured by those indicators at every wave, with the parameters of
         the measurement part (``loading[y_b]``, ``intercept[y_b]``, ``unique_var[y_b]``...,
-        named as the model's ``invariance`` option makes them). Default: each process is
-        observed directly.
+        named as the model's ``invariance`` option makes them; in the within form, ri-clpm,
+        also each indicator's random intercept, ``level_var[y_b]`` and ``level_cov[y_a,y_b]``).
+        Default: each process is observed directly.
     missing : dict, optional
         ``{"dropout": d, "intermittent": p}``. Dropout is monotone: at each wave t >= 2 a unit
         still in the study leaves with probability d and is missing from then on.

@@ -26,7 +26,10 @@ def start_values(structure: Structure, panel) -> np.ndarray:
     default marker). Indicator loadings start at 1 (a cross-loading on another process, like
     a same-wave path, at 0), intercepts at the indicator's overall
     mean minus its process's first indicator's (the marker's own free intercepts at 0),
-    unique variances at half the indicator's variance, their covariances at 0.
+    unique variances at half the indicator's variance, their covariances at 0. In the
+    within form an indicator's intercept is its mean, so it starts at the indicator's
+    overall mean, its random intercept's variance at half the indicator's variance, and
+    the within factor's wave intercepts at 0.
     """
     y = panel.y  # (N, T, J): the observed variables (J = K with one indicator per process)
     T = panel.n_waves
@@ -42,12 +45,16 @@ def start_values(structure: Structure, panel) -> np.ndarray:
     proc = {name: observed.index(group[0]) for name, group in panel.indicators.items()}
     marker_of = {n: observed.index(group[0]) for group in panel.indicators.values() for n in group}
     own = {n: v for v, n in enumerate(observed) if n not in proc}
+    within = structure.spec.form == "within"
+    several = {name for name, group in panel.indicators.items() if len(group) > 1}
 
     def which(name: str) -> int:
         if "[" in name:
             for key in name[name.index("[") + 1:-1].replace("<-", ",").split(","):
                 if key in proc:
                     return proc[key]
+                if key in own:  # an indicator's own random intercept (within form)
+                    return own[key]
         return 0
 
     theta = np.zeros(structure.n_params)
@@ -58,6 +65,8 @@ def start_values(structure: Structure, panel) -> np.ndarray:
             v = own[keys[0]]  # a parameter of indicator v's measurement part
             if name.startswith("loading["):
                 theta[i] = 1.0
+            elif name.startswith("intercept[") and within:
+                theta[i] = overall[v]
             elif name.startswith("intercept["):
                 theta[i] = 0.0 if v == marker_of[keys[0]] else overall[v] - overall[marker_of[keys[0]]]
             elif name.startswith("unique_var["):
@@ -67,7 +76,8 @@ def start_values(structure: Structure, panel) -> np.ndarray:
             theta[i] = {"level": first[k], "initial": first[k],
                         "slope": (last[k] - first[k]) / max(T - 1, 1)}.get(name.split("_")[0], 0.0)
         elif kind == "intercept":
-            theta[i] = overall[k] if name.startswith("intercept") else 0.0
+            within_mean = within and keys and keys[0] in several
+            theta[i] = overall[k] if name.startswith("intercept") and not within_mean else 0.0
         elif kind == "loading":
             if name.startswith("slope_score"):
                 theta[i] = float(name.rsplit(",", 1)[-1].rstrip("]").split("[")[-1]) - 1.0

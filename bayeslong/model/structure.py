@@ -23,8 +23,12 @@ import numpy as np
 
 from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
-from bayeslong.model.measurement import add_indicators, settle_design
-from bayeslong.model.paths import cross_loading_name, settle_cross_loadings, settle_paths
+from bayeslong.model.measurement import add_indicators, settle_design, within_means_move
+from bayeslong.model.paths import (
+    cross_loading_name,
+    settle_cross_loadings,
+    settle_paths,
+)
 from bayeslong.model.spec import Spec, check_spec
 
 #: Names of the measurement part's parameters (model/measurement.py).
@@ -261,12 +265,19 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
     if any(several) and spec.residuals_at == "indicator" and K > 1:
         raise SpecError(f"model '{spec.name}' puts its residuals on the indicators, which is not "
                         "available with several indicators per wave and several processes yet")
-    latents = [_label(f, pk(k)) for k in range(K) for f in F]
+    # the factors: per process its growth factors, or in the within form with several
+    # indicators one random intercept per indicator (Mulder & Hamaker 2021), keyed by name
+    members = [("level", j, k) if within and several[k] else (F[f], pk(k), k)
+               for k in range(K) for f in range(nF)
+               for j in (indicators[outcomes[k]] if within and several[k] and f == 0 else [None])]
+    latents = [_label(f, key) for f, key, _ in members]
     latents += [_label("eta", pk(k), t) for k in range(K) for t in range(1, T + 1)]
     observed = [_label(v, t) for v in obs_names for t in range(1, T + 1)]
     covariates = [_label(x, t) for x in xs for t in range(1, T + 1)] + list(zs)
-    fac = lambda k, f: k * nF + f  # noqa: E731
-    eta = lambda k, t: K * nF + k * T + (t - 1)  # noqa: E731
+    rows_of = {k: [i for i, m in enumerate(members) if m[2] == k] for k in range(K)}
+    fac = lambda k, f: rows_of[k][f]  # noqa: E731  (f: a factor, or an indicator's intercept)
+    n_fac = len(members)
+    eta = lambda k, t: n_fac + k * T + (t - 1)  # noqa: E731
     obs = lambda k, t: first_v[k] * T + (t - 1)  # noqa: E731  (a process's first indicator)
     xcol = lambda j, t: j * T + (t - 1)  # noqa: E731
     zcol = lambda j: len(xs) * T + j  # noqa: E731
@@ -309,7 +320,8 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
         if several[k]:
             free_origin[k] = add_indicators(
                 tab, spec, indicators[outcomes[k]], T, lambda t, k=k: eta(k, t),
-                lambda j, t, k=k: (first_v[k] + j) * T + (t - 1))
+                lambda j, t, k=k: (first_v[k] + j) * T + (t - 1),
+                (lambda j, k=k: fac(k, j)) if within else None)
             continue
         for t in range(1, T + 1):
             tab.fix("Lam", (obs(k, t), eta(k, t)), 1.0)
@@ -349,7 +361,11 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
                         tab.put("B", (row, fac(k, f)), s, "loading")
                     elif s != 0.0:
                         tab.fix("B", (row, fac(k, f)), s)
-            # wave intercepts
+            # wave intercepts (in the within form with several indicators: the within
+            # factor's, from wave 2 on, when an indicator's intercept ties them down)
+            if within and several[k] and t >= 2 and opts["intercepts"] == "free" \
+                    and within_means_move(spec, indicators[outcomes[k]]):
+                tab.put("a", row, _label("intercept", pk(k), t), "intercept")
             if not within:
                 has_level = nF > 0
                 if opts["intercepts"] == "free":
@@ -416,40 +432,35 @@ def build_structure(spec: Spec, *, outcomes, n_waves: int, time_varying=(), time
             tab.put("a", row, _label("initial_intercept", pk(k)), "intercept")
 
     # --- covariance blocks ---------------------------------------------------------------
-    def pair_name(a, ka, b, kb, *, initial_var=None):
+    def pair_name(a, ka, b, kb):
+        # ka, kb: the keys of the two members (a process, an indicator, or None)
         base = a if a == b else f"{a}_{b}"
-        same = a == b and ka == kb
-        suffix = "var" if same else "cov"
-        keys = [] if not multi else ([outcomes[ka]] if ka == kb else [outcomes[ka], outcomes[kb]])
-        return _label(f"{base}_{suffix}", *keys)
+        suffix = "var" if a == b and ka == kb else "cov"
+        return _label(f"{base}_{suffix}", *([ka] if ka == kb else [ka, kb]))
 
-    # growth factors (+ predetermined first wave in the latent form)
-    members = [(F[f], k, fac(k, f)) for k in range(K) for f in range(nF)]
+    # growth factors or random intercepts (+ predetermined first wave in the latent form)
+    block = [(f, key, i) for i, (f, key, _) in enumerate(members)]  # (name, key, row)
     if initial == "predetermined" and not within:
-        members += [("initial", k, eta(k, 1)) for k in range(K)]
-    if members:
-        rows = [m[2] for m in members]
+        block += [("initial", pk(k), eta(k, 1)) for k in range(K)]
+    if block:
+        rows = [m[2] for m in block]
 
         def member_pair(r, c):
             # the earlier member names first (level_slope_cov), except that the first
             # wave reads first against a factor (initial_level_cov)
-            (a, ka, _), (b, kb, _) = members[c], members[r]
+            (a, ka, _), (b, kb, _) = block[c], block[r]
             if b == "initial" and a != "initial":
                 return pair_name(b, kb, a, ka)
             return pair_name(a, ka, b, kb)
 
-        names = [[member_pair(r, c) if c <= r else None for c in range(len(members))]
-                 for r in range(len(members))]
+        names = [[member_pair(r, c) if c <= r else None for c in range(len(block))]
+                 for r in range(len(block))]
         tab.block("Psi", rows, names)
     # first wave's own block (within form predetermined; endogenous disturbance)
-    if initial == "predetermined" and within:
+    if initial == "endogenous" or (initial == "predetermined" and within):
         tab.block("Psi", [eta(k, 1) for k in range(K)],
-                  [[pair_name("initial", c, "initial", r) if c <= r else None for c in range(K)]
-                   for r in range(K)])
-    if initial == "endogenous":
-        tab.block("Psi", [eta(k, 1) for k in range(K)],
-                  [[pair_name("initial", c, "initial", r) if c <= r else None for c in range(K)]
-                   for r in range(K)])
+                  [[pair_name("initial", pk(c), "initial", pk(r)) if c <= r else None
+                    for c in range(K)] for r in range(K)])
 
     # wave residuals: latent disturbances, or measurement errors (dual change)
     resid_waves = range(1, T + 1) if spec.residuals_at == "indicator" else [

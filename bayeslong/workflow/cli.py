@@ -146,15 +146,17 @@ def cmd_check_data(args) -> int:
 
 def cmd_identify(args) -> int:
     from bayeslong.model.identification import identify
+    from bayeslong.model.measurement import nearest_exact
 
     study = _load(args)
     panel = study.panel()
     rows = []
     for cand in study.models:
-        ident = identify(cand.spec, panel)
+        spec, note = nearest_exact(cand.spec)  # as the run checks it (workflow/runner.py)
+        ident = identify(spec, panel)
         rows.append({"model": cand.label, "identified": ident.identified, "rank": ident.rank,
                      "n_params": ident.n_params, "n_moments": ident.n_moments,
-                     "deficient": list(ident.deficient), "advice": ident.advice})
+                     "deficient": list(ident.deficient), "advice": ident.advice, "note": note})
     if args.json:
         _print_json(rows)
     else:
@@ -162,6 +164,8 @@ def cmd_identify(args) -> int:
             state = "identified" if r["identified"] else "NOT IDENTIFIED"
             print(f"{r['model']}: {state} (rank {r['rank']} of {r['n_params']} parameters, "
                   f"{r['n_moments']} moments)")
+            if r["note"]:
+                print(f"  {r['note']}")
             if not r["identified"]:
                 print(f"  not separable: {', '.join(r['deficient'])}")
                 print(f"  {r['advice']}")

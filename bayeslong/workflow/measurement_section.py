@@ -24,6 +24,7 @@ import pandas as pd
 from bayeslong.errors import BayeslongError
 from bayeslong.evaluate.measurement import PARTS, wave_measurement
 from bayeslong.infer.invariance import compare_invariance
+from bayeslong.model.measurement import nearest_exact
 from bayeslong.model.spec import model
 from bayeslong.model.structure import structure_for
 from bayeslong.workflow.results import slug
@@ -136,7 +137,9 @@ def add_measurement_section(doc, results, draw) -> None:
         f"{p}: {', '.join(map(str, g))}" for p, g in panel.indicators.items() if g != (p,))
         + ". Each is a latent variable per wave; its first listed indicator (or the one named "
         "by `marker`) sets its unit (loading 1) and its origin (intercept 0 at the first wave), "
-        "or with `scale = \"effects\"` the indicators' average does.")
+        "or with `scale = \"effects\"` the indicators' average does. In the within-person form "
+        "(ri-clpm) the latent is the within part, whose zero mean at the first wave is the "
+        "origin, and each indicator has a random intercept of its own.")
     if len(panel.outcomes) == 1:
         doc.heading("The measurement alone: unlinked waves", 3)
         doc.para("The same indicators in a model with a mean and a variance of its own at every "
@@ -153,9 +156,11 @@ def add_measurement_section(doc, results, draw) -> None:
         if table is not None and len(table):
             what = ("posterior mean [90% interval]" if m.fit is not None
                     else "maximum-likelihood estimate")
+            level = f"'{spec.measurement['invariance']}'"
+            if m.fit is None and nearest_exact(spec)[1]:
+                level = f"'scalar' (the nearest exact level to {level})"
             doc.table(measurement_frame(table), f"{m.label}: loadings, intercepts and unique "
-                      f"variances by indicator and wave, {what}; invariance "
-                      f"'{spec.measurement['invariance']}'")
+                      f"variances by indicator and wave, {what}; invariance {level}")
         _comparison(doc, spec, m.label, panel, results.study.sampling["seed"])
         if m.fit is not None and not shown:
             shown = True
@@ -205,7 +210,8 @@ def _table_of(m, panel):
     structure = structure_for(m.candidate.spec, panel)
     if m.fit is not None:
         return wave_measurement(structure, panel, m.fit.theta_draws())
-    if m.ml is not None:
+    if m.ml is not None:  # fitted at the nearest exact invariance level (model/measurement.py)
+        structure = structure_for(nearest_exact(m.candidate.spec)[0], panel)
         estimate = m.ml["table"]["estimate"]
         return wave_measurement(structure, panel, estimate.reindex(structure.names).to_numpy())
     return None

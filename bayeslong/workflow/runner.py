@@ -18,12 +18,13 @@ from typing import Callable
 
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
-from bayeslong.workflow.progress import QueueForwarder
+from bayeslong.model.measurement import nearest_exact
 from bayeslong.workflow.category_run import (
     NO_ML,
     NO_SENSITIVITY,
     is_categorical,
 )
+from bayeslong.workflow.progress import QueueForwarder
 from bayeslong.workflow.results import (
     ModelResult,
     Step,
@@ -404,6 +405,9 @@ def _run_candidate(study, panel, cand, fit_module, fits_dir, *, fit, say, quiet_
             f"candidate {cand.label!r} has no saved results for the current study and data "
             f"(nothing for hash {key} in {fits_dir}); run `bayeslong run {study.source.name}` "
             "first")
+    _, exact_note = nearest_exact(cand.spec)
+    if exact_note:
+        notes.append(exact_note)
     ident = _identification(cand, panel, ident_path, notes)
     if ident is not None and not ident.identified:
         notes.append("not identified on this panel (" + ", ".join(ident.deficient)
@@ -498,7 +502,8 @@ def _identification(cand, panel, path: Path, notes: list):
         except (ValueError, TypeError, KeyError):
             pass
     try:
-        ident = identify(cand.spec, panel)
+        # at the nearest exact invariance level (model/measurement.py: nearest_exact)
+        ident = identify(nearest_exact(cand.spec)[0], panel)
     except BayeslongError as err:
         notes.append(f"identification check failed: {err}")
         return None
@@ -534,7 +539,7 @@ def _ml(study, panel, cand, path: Path, notes: list, say, *, fit: bool = True
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            res = fit_ml(cand.spec, panel, check=False)
+            res = fit_ml(nearest_exact(cand.spec)[0], panel, check=False)
     except BayeslongError as err:
         notes.append(f"maximum likelihood failed: {err}")
         return None, False

@@ -184,8 +184,9 @@ def test_measurement_option_errors(options, message):
                            r"by several indicators; did you mean 'b'\?"),
         ({"release": ("d",)}, r"`release` names 'd'"),
         ({"release": {"loading": ["a"]}}, r"frees the loading of 'a', the marker indicator"),
-        ({"name": "ri-clpm"}, r"model 'ri-clpm' has the within-person form, which is not "
-                              r"available with several indicators per wave yet"),
+        ({"name": "ri-clpm", "unique_covariance": "same-indicator"},
+         r"`unique_covariance = \"same-indicator\"` is not identified in model 'ri-clpm' "
+         r"\(within-person form"),
     ],
     ids=["marker", "release", "release-marker-loading", "within-form"],
 )

@@ -468,6 +468,72 @@ def test_engine_moments_equal_published_form(name, options, fn):
     _assert_same(moments_at(s, ml.params.to_numpy()), naive)
 
 
+# --- catalog models in their form with several indicators per wave ---------------------------
+def ri_clpm_indicators(d, indicators):
+    """Multiple-indicator RI-CLPM (Mulder & Hamaker 2021, Structural Equation Modeling 28(4),
+    "Three extensions of the random intercept cross-lagged panel model", the version with
+    indicator-specific random intercepts):
+        y_jkt = mu_jk + RI_jk + lambda_jk w_kt + eps_jkt,   RI (level_var[j], level_cov[j,j'])
+    uncorrelated with the within part; the within part as in ``ri_clpm`` with the within
+    factors' wave intercepts intercept[k,t] at t >= 2 (scalar invariance: mu_jk and lambda_jk
+    equal over waves, the first indicator the marker with loading 1); eps_jkt independent
+    (unique_var[j,t]). Covariates enter the within part, as in ``ri_clpm``."""
+    items = [(k, j) for k in d.outcomes for j in indicators[k]]
+    ri = d.factor_block([("level", j) for _, j in items])
+    w1 = d.factor_block([("initial", k) for k in d.outcomes])
+    w = {(k, 1): d.predetermined_first_wave(k, mean=False) + w1[("initial", k)] for k in d.outcomes}
+    for t in range(2, d.T + 1):
+        e = d.wave_residuals(t, free=True)
+        for k in d.outcomes:
+            w[k, t] = (d.const(d.p[label("intercept", k, t)])
+                       + sum((d.lag(k, l) * w[l, t - 1] for l in d.outcomes), d.const())
+                       + d.x_effects(k, t, with_z=True) + e[k])
+    ys = []
+    for k, j in items:
+        lam = 1.0 if j == indicators[k][0] else d.p[label("loading", j)]
+        for t in range(1, d.T + 1):
+            (eps,) = d.disturbances([f"eps:{j}:{t}"], lambda a, b, j=j, t=t: d.p[label("unique_var", j, t)])
+            ys.append(d.const(d.p[label("intercept", j)]) + ri[("level", j)] + lam * w[k, t] + eps)
+    return ys
+
+
+#: catalog name -> its published form with several indicators per wave (within-form models
+#: had none before; latent-form models are held to naive Kronecker forms in
+#: tests/model/test_measurement.py and tests/model/test_processes.py)
+INDICATOR_NAIVE = {"ri-clpm": ri_clpm_indicators}
+
+
+def test_every_within_form_model_has_a_published_indicator_form():
+    assert {n for n in bl.catalog() if bl.model(n).form == "within"} <= set(INDICATOR_NAIVE)
+
+
+@pytest.mark.parametrize("name", sorted(INDICATOR_NAIVE))
+def test_engine_moments_equal_published_indicator_form(name):
+    spec = bl.model(name)
+    outcomes, xs, zs = _design(spec)
+    indicators = {k: [f"{k}_{i}" for i in "abc"] for k in outcomes}
+    s = build_structure(spec, outcomes=outcomes, n_waves=T, time_varying=xs, time_invariant=zs,
+                        indicators=indicators)
+    fn = lambda d: INDICATOR_NAIVE[name](d, indicators)  # noqa: E731
+    theta = Unconstrained(s).to_natural(np.random.default_rng(7).normal(0.0, 0.4, size=s.n_params))
+    values = dict(zip(s.names, theta))
+    naive, read = _naive_moments(fn, values, outcomes, xs, zs)
+    assert read == set(s.names), (sorted(set(s.names) - read), sorted(read - set(s.names)))
+    _assert_same(moments_at(s, theta), naive)
+    # and at the engine's ML estimates on a panel drawn at that point
+    df = bl.simulate(spec, values, 400, T, seed=3, covariates={x: ("normal", 0.0, 1.0) for x in xs},
+                     time_invariant={z: ("normal", 0.0, 1.0) for z in zs}, outcomes=outcomes,
+                     indicators=indicators)
+    panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes=indicators, time_varying=xs,
+                               time_invariant=zs)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ml = bl.fit_ml(spec, panel, starts=1)
+    assert ml.converged and not ml.boundary
+    naive, _ = _naive_moments(fn, ml.params.to_dict(), outcomes, xs, zs)
+    _assert_same(moments_at(s, ml.params.to_numpy()), naive)
+
+
 # --- dual change: the published parameters, not a reparameterisation ------------------------
 DUAL_TRUTH = dict(level_mean=50.0, slope_mean=5.0, proportional_change=-0.1, level_var=25.0,
                   level_slope_cov=2.0, slope_var=1.0, resid_var=4.0)

@@ -180,3 +180,36 @@ def test_wide_indicator_not_asked_at_a_wave(tmp_path):
     assert np.isnan(y[:, 1]).all()
     expected = long.pivot(index="person", columns="week", values="rested").to_numpy()
     np.testing.assert_array_equal(y[:, [0, 2, 3]], expected[:, [0, 2, 3]])
+
+
+def test_approximate_invariance_uses_scalar_in_the_maximum_likelihood_steps(tmp_path, capsys,
+                                                                          monkeypatch):
+    # approximate invariance has no ML estimate (docs/model-family.md, "Approximate
+    # invariance"): the run's identification check and ML fit use scalar invariance, the
+    # nearest exact level, and the model's notes say so. Reference: bl.fit_ml of the same
+    # model at invariance="scalar" on the same data.
+    from bayeslong.workflow import measurement_section
+
+    def not_compared(*args, **kwargs):  # the report's invariance tests: 30 s, covered elsewhere
+        raise SpecError("left out in this test")
+
+    monkeypatch.setattr(measurement_section, "compare_invariance", not_compared)
+    path = _study(tmp_path, options=', invariance = "approximate", deviation_sd = 0.1')
+    assert main(["run", str(path), "--json", "--quiet"]) == 0
+    row = json.loads(capsys.readouterr().out)["models"][0]
+    assert row["identified"] and row["ml"]["converged"], row
+    assert any("use scalar invariance, the nearest exact level" in n for n in row["notes"]), row
+    panel = load_study(path).panel()
+    ml = bl.fit_ml(bl.model("clpm", processes=3, invariance="scalar"), panel)
+    # the same fit from the same start: equal up to the optimiser's tolerance
+    assert row["ml"]["loglik"] == pytest.approx(ml.loglik, abs=1e-6)
+    assert row["ml"]["n_params"] == ml.n_params
+    (report,) = tmp_path.rglob("report.md")
+    page = report.read_text()
+    assert "nearest exact level" in page  # the model's notes
+    # the measurement table of the ML fit names the level it was fitted at
+    assert "invariance 'scalar' (the nearest exact level to 'approximate')" in page
+    # the identify command checks the same level and says so
+    assert main(["identify", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert ": identified (rank" in out and "nearest exact level" in out
