@@ -15,8 +15,11 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 # pytest exits 5 when it collected no test: that must fail, not pass silently.
+# The tests run in one worker process per core (at most 4), a test file per worker at a time,
+# so a file's shared fixtures (fitted models) are made once; --durations lists the slowest.
 test: $(STAMP)
-	$(BIN)/python -m pytest -q -p no:cacheprovider; rc=$$?; \
+	$(BIN)/python -m pytest -q -p no:cacheprovider -n auto --maxprocesses 4 --dist loadfile \
+		--durations 15; rc=$$?; \
 	if [ $$rc -eq 5 ]; then echo "pytest collected no tests: failing on purpose"; exit 1; fi; exit $$rc
 
 demo: $(STAMP)

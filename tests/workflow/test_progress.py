@@ -62,7 +62,9 @@ def test_without_a_terminal_a_slow_model_still_prints_after_a_silence():
     assert [line.split("chain ")[1].split(" of")[0] for line in lines] == ["1", "4"]
 
 
-def test_on_a_terminal_one_status_line_is_rewritten_in_place():
+def test_on_a_terminal_one_status_line_is_rewritten_in_place(monkeypatch):
+    # the status line is cut to the terminal's width; pytest's workers may have a narrow one
+    monkeypatch.setenv("COLUMNS", "200")
     out = io.StringIO()
     reporter = ProgressReporter(out, tty=True)
     reporter.update("alt", SamplingProgress(stage="sampling", done=(10, 0), total=(100, 100),
@@ -153,3 +155,14 @@ def test_warnings_are_one_line_in_the_tools_words(capsys):
     shown = warnings.showwarning
     assert cli.main(["models"]) == 0
     assert warnings.showwarning is shown  # restored after the command
+
+
+def test_on_a_narrow_terminal_the_status_line_is_cut_with_an_ellipsis(monkeypatch):
+    monkeypatch.setenv("COLUMNS", "40")
+    out = io.StringIO()
+    reporter = ProgressReporter(out, tty=True)
+    reporter.update("alt", SamplingProgress(stage="sampling", done=(10, 0), total=(100, 100),
+                                            elapsed=2.0))
+    reporter.close()
+    shown = out.getvalue().split("\r")[1]
+    assert shown == "[bayeslong] alt: sampling, iteration..."  # 39 characters: width - 1
