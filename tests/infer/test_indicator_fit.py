@@ -210,3 +210,32 @@ def test_within_form_with_indicators_is_near_maximum_likelihood():
     for name in ["lag[s<-m]", "lag[m<-s]", "lag[s<-s]", "loading[b]"]:
         mean, sd = float(post[name].mean()), float(post[name].std())
         assert abs(mean - ml.params[name]) < 2.0 * sd, (name, mean, ml.params[name], sd)
+
+
+def test_invariance_levels_are_compared_by_per_unit_psis_loo(panel, default_fit):
+    # bl.compare of two invariance levels (scalar, the default, against strict) by PSIS-LOO
+    # with one term per unit over all its indicators and waves. References: each term is the
+    # unit's observed indicator x wave vector scored by scipy.stats.multivariate_normal under
+    # the draw's implied moments; the table's elpd_loo is ArviZ's az.loo (Vehtari, Gelman &
+    # Gabry 2017, Statistics and Computing 27(5)) on those terms.
+    import arviz as az
+    from scipy import stats
+
+    from bayeslong.model.moments import moments_at
+
+    strict = _fit(bl.model("alt", invariance="strict"), panel)
+    y = panel.outcome_matrix()  # (N, indicators x waves), the order of the implied moments
+    for fit in (default_fit, strict):
+        terms = fit.idata.log_likelihood["y"]
+        assert terms.sizes["unit"] == panel.n_units == 300  # one term per unit
+        flat = terms.values.reshape(-1, panel.n_units)
+        for s in (0, 137, 599):
+            c, _, sigma = moments_at(fit.structure, fit.theta_draws()[s])
+            for i in (0, 41, 299):
+                seen = ~np.isnan(y[i])
+                ref = stats.multivariate_normal(c[seen], sigma[np.ix_(seen, seen)]).logpdf(y[i, seen])
+                assert flat[s, i] == pytest.approx(ref, abs=1e-8)  # float rounding only
+    table = bl.compare({"scalar": default_fit, "strict": strict})
+    assert set(table.index) == {"scalar", "strict"}
+    for name, fit in (("scalar", default_fit), ("strict", strict)):
+        assert table.loc[name, "elpd_loo"] == pytest.approx(az.loo(fit.idata).elpd_loo, rel=1e-12)
