@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import warnings
+import weakref
 
 import numpy as np
 import pandas as pd
@@ -69,10 +70,24 @@ def _arviz_numpy():
         Numba.numba_flag = was
 
 
+#: Tables already computed, by posterior (the draws of a fit do not change once sampled; a
+#: report asks for the same fit's table several times, about 0.2-0.7 s each).
+#: Keyed by id, checked by a weak reference (a Dataset is not hashable); an entry goes
+#: when its posterior does.
+_DONE: dict[int, tuple[weakref.ref, dict]] = {}
+
+
 def diagnose(idata, names) -> pd.DataFrame:
     """Per-parameter R-hat and ESS with flags, and run-level checks in ``attrs`` (see Fit.diagnostics)."""
-    with _arviz_numpy():
-        return _diagnose(idata, names)
+    post, names = idata.posterior, tuple(names)
+    ref, done = _DONE.get(id(post), (None, None))
+    if ref is None or ref() is not post:
+        done = {}
+        _DONE[id(post)] = (weakref.ref(post, lambda _, k=id(post): _DONE.pop(k, None)), done)
+    if names not in done:
+        with _arviz_numpy():
+            done[names] = _diagnose(idata, names)
+    return done[names].copy(deep=True)
 
 
 def _diagnose(idata, names) -> pd.DataFrame:
