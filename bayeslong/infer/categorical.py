@@ -47,6 +47,7 @@ from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
 from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
 from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
+from bayeslong.model.structure import structure_for
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
 #: Scale s of a categorical variable's latent response for the default priors, in units
@@ -123,7 +124,12 @@ def _observed_parts(cat: Categorical, panel):
 
 
 def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: dict):
-    """The PyMC model of a categorical fit (module notes)."""
+    """The PyMC model of a categorical fit (module notes).
+
+    The priors' hyperparameters, the covariates and the observed values are model data
+    (``prior_hyper``, ``covariates``, ``observed[<variable>]``; :func:`model_inputs`), so one
+    built and compiled model serves every panel of the same design and every prior set of
+    the same families (:func:`_entry`)."""
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -198,11 +204,48 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                                           for k in table[t]]) for t in range(len(table))])
                 dist = pm.OrderedProbit if cat.link == "probit" else pm.OrderedLogistic
                 dist(f"y[{name}]", eta=mean, cutpoints=cut[waves], compute_p=False,
-                     observed=obs.astype(np.int64))
+                     observed=pm.Data(f"observed[{name}]", obs.astype(np.int64)))
             else:
                 sd = pt.sqrt(pt.diagonal(_unique_variances(cat, Theta, m, name, rows)))
-                pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves], observed=obs)
+                pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves],
+                          observed=pm.Data(f"observed[{name}]", obs))
     return model
+
+
+def model_inputs(cat: Categorical, panel, prior_set: PriorSet) -> dict:
+    """The data of :func:`build_categorical_model`'s model for this panel and prior set."""
+    inputs = {"prior_hyper": prior_set.hyper, "covariates": panel.covariate_matrix()}
+    for name, _, _, _, obs in _observed_parts(cat, panel):
+        inputs[f"observed[{name}]"] = obs.astype(np.int64) if name in cat.rows else obs
+    return inputs
+
+
+#: Built (and, for nutpie, compiled) models by design: see :func:`_entry`.
+_COMPILED: dict = {}
+
+
+def _entry(spec, cat: Categorical, panel, prior_set: PriorSet, gaps: dict) -> dict:
+    """``{"model": ..., "nutpie": ...}`` for this design, built once and reused.
+
+    Two fits share a model when their specs, structures, categories, prior families, gap
+    priors and observed positions (which units are seen at which waves) are equal (the
+    categorical structure derives from the design's cached structure, :func:`structure_for`,
+    and the categories): what differs then (observed values, covariates, prior
+    hyperparameters) is model data. A prior given as a PyMC factory is never shared.
+    """
+    parts = _observed_parts(cat, panel)
+    key = None if prior_set.has_callable else (
+        json.dumps(spec.to_dict(), sort_keys=True), structure_for(spec, panel), prior_set.key,
+        json.dumps(sorted((k, list(v)) for k, v in gaps.items())),
+        tuple((v, len(c)) for v, c in panel.categories.items()), panel.n_units,
+        panel.covariate_matrix().shape,
+        tuple((name, units.tobytes(), waves.tobytes()) for name, _, units, waves, _ in parts))
+    if key is not None and key in _COMPILED:
+        return _COMPILED[key]
+    entry = {"model": build_categorical_model(cat, panel, prior_set, gaps)}
+    if key is not None:
+        _COMPILED[key] = entry
+    return entry
 
 
 def _active_disturbances(cat: Categorical) -> list[int]:
@@ -304,7 +347,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     cat = categorical_structure(spec, panel)
     prior_set, gaps = categorical_priors(cat, panel, priors)
     t0 = time.perf_counter()
-    model = build_categorical_model(cat, panel, prior_set, gaps)
+    entry = _entry(spec, cat, panel, prior_set, gaps)
+    model = entry["model"]
     build_s = time.perf_counter() - t0
     keep = list(cat.structure.names) + list(cat.thresholds)
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
@@ -320,7 +364,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
         if which == "nutpie":
             import nutpie
 
-            compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+            if "nutpie" not in entry:
+                entry["nutpie"] = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+            compiled = entry["nutpie"].with_data(**model_inputs(cat, panel, prior_set))
             compile_s = time.perf_counter() - t0
             t0 = time.perf_counter()
             # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
@@ -335,6 +381,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compile_s = 0.0
             counter = None if report is None else PymcCounter(int(chains), int(draws + tune), report)
             with model:
+                pm.set_data(model_inputs(cat, panel, prior_set))
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
                                 random_seed=int(seed), progressbar=progressbar is True,
                                 var_names=keep, compute_convergence_checks=False, callback=counter)

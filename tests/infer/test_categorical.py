@@ -194,3 +194,28 @@ def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_pat
     with pytest.raises(bl.SpecError, match="holds a fit with categorical variables; read it "
                                            "with bl.load_fit"):
         load_continuous(path)
+
+
+def test_second_panel_of_one_design_reuses_the_model_with_its_own_data():
+    # two panels of one design share a built model (infer/categorical.py: _entry), their
+    # observed values and the priors' hyperparameters being model data; the reused model
+    # must give exactly the draws that a model built for the second panel alone gives
+    from bayeslong.infer import categorical
+
+    spec = bl.model("random-effects")
+    params = {"level_mean": 0.3, "level_var": 0.8}
+    first, second = (bl.Simulation(spec=spec, params=params, n_units=30, n_waves=3, seed=s,
+                                   categorical={"y": "binary"}).panel() for s in (1, 2))
+    kwargs = dict(draws=30, tune=30, chains=1, sampler="pymc", progressbar=False,
+                  loglik_draws=5, seed=3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        categorical._COMPILED.clear()
+        bl.fit(spec, first, priors={"level_mean": ("normal", 0.0, 2.0)}, **kwargs)
+        reused = bl.fit(spec, second, priors={"level_mean": ("normal", 1.0, 0.5)}, **kwargs)
+        assert len(categorical._COMPILED) == 1
+        categorical._COMPILED.clear()
+        fresh = bl.fit(spec, second, priors={"level_mean": ("normal", 1.0, 0.5)}, **kwargs)
+    for name in ("level_mean", "level_var"):
+        np.testing.assert_array_equal(reused.idata.posterior[name].values,
+                                      fresh.idata.posterior[name].values)
