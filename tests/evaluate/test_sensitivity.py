@@ -416,11 +416,14 @@ def _binary_alt_panel():
                             categorical={"y": "binary"}).panel()
 
 
+# two categorical fits: about 3 min on a loaded 2-core machine, so outside the default pass
+@pytest.mark.slow
 def test_lag_sensitivity_of_a_binary_panel_refits_and_reads_categorical_fits():
     import warnings
 
     spec, panel = _binary_alt_panel()
-    kwargs = dict(draws=30, tune=30, chains=2, sampler="pymc", seed=4, loglik_draws=10)
+    # 200 warm-up draws: with 30 the step size stays small and sampling takes longer
+    kwargs = dict(draws=30, tune=200, chains=2, sampler="pymc", seed=4, loglik_draws=10)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", bl.ConvergenceWarning)
         tight = bl.fit(spec, panel, priors={"lag": ("normal", 0.0, 0.1)}, **kwargs)
@@ -443,7 +446,7 @@ def test_lag_sensitivity_of_a_binary_panel_refits_and_reads_categorical_fits():
 @pytest.mark.slow
 def test_lag_sensitivity_of_a_binary_panel_refits_prior_and_first_wave_axes():
     spec, panel = _binary_alt_panel()
-    kwargs = dict(draws=60, tune=60, chains=2, sampler="pymc", seed=4, loglik_draws=10)
+    kwargs = dict(draws=60, tune=200, chains=2, sampler="pymc", seed=4, loglik_draws=10)
     result = bl.lag_sensitivity(panel, models=[spec], prior_grid=[("normal", 0.0, 0.1)],
                                 variance_scales=[2.0], fit_kwargs=kwargs)
     table = result.table.set_index("setting")
