@@ -189,20 +189,57 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
             eta_i = eta_mean + dev
         else:
             eta_i = eta_mean
-        ystar = m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T)
+        ystar = pt.flatten(m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T))
+        Y = len(structure.observed)
         for name, rows, units, waves, obs in _observed_parts(cat, panel):
-            mean = ystar[units, rows[waves]]
+            mean = ystar[units * Y + rows[waves]]  # one flat index: a cheap gather and gradient
             if name in cat.rows:
                 table = cat.cuts[name]
-                cut = pt.stack([pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
-                                          for k in table[t]]) for t in range(len(table))])
-                dist = pm.OrderedProbit if cat.link == "probit" else pm.OrderedLogistic
-                dist(f"y[{name}]", eta=mean, cutpoints=cut[waves], compute_p=False,
-                     observed=obs.astype(np.int64))
+                cut = pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
+                                for k in table.ravel()])
+                pm.Potential(f"y[{name}]", category_loglik(
+                    mean, cut, obs.astype(np.int64), waves, table.shape[1] + 1, cat.link).sum())
             else:
                 sd = pt.sqrt(pt.diagonal(_unique_variances(cat, Theta, m, name, rows)))
                 pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves], observed=obs)
     return model
+
+
+def category_loglik(mean, cut, codes: np.ndarray, waves: np.ndarray, n_categories: int, link: str):
+    """Log probability of each observed category given its latent response's mean (PyTensor).
+
+    ``cut`` holds the inner cuts, wave-major ((T, C-1) flattened); ``codes`` the categories
+    0..C-1 and ``waves`` the wave positions of the observations. With F the error's cdf
+    (standard normal or logistic), P(y = c) = F(tau_c+1 - mean) - F(tau_c - mean): the first
+    category needs only F(tau_1 - mean), the last only F(mean - tau_C-1) (F is symmetric),
+    the others the difference, taken in log space so that no probability underflows:
+    ``log_diff_normal_cdf`` (probit), and for the logit
+    log(F(u) - F(l)) = log F(u) + log F(-l) + log(1 - exp(l - u)).
+    Each observation's term is computed once for its own category (PyMC's ordered
+    distributions evaluate all C probabilities and renormalise them; the same likelihood,
+    measured at several times the cost per gradient: docs/engine.md, "Categorical fits").
+    """
+    import pytensor.tensor as pt
+    from pymc.distributions.dist_math import log_diff_normal_cdf, normal_lcdf
+
+    def log_cdf(x):
+        return normal_lcdf(0.0, 1.0, x) if link == "probit" else -pt.softplus(-x)
+
+    width = n_categories - 1
+    out = pt.zeros(len(codes))
+    first, last = np.flatnonzero(codes == 0), np.flatnonzero(codes == width)
+    middle = np.flatnonzero((codes > 0) & (codes < width))
+    if len(first):
+        out = pt.set_subtensor(out[first], log_cdf(cut[waves[first] * width] - mean[first]))
+    if len(last):
+        out = pt.set_subtensor(out[last], log_cdf(mean[last] - cut[waves[last] * width + width - 1]))
+    if len(middle):
+        at = waves[middle] * width + codes[middle]
+        upper, lower = cut[at] - mean[middle], cut[at - 1] - mean[middle]
+        out = pt.set_subtensor(out[middle], log_diff_normal_cdf(0.0, 1.0, upper, lower)
+                               if link == "probit" else
+                               log_cdf(upper) + log_cdf(-lower) + pt.log1mexp(lower - upper))
+    return out
 
 
 def _active_disturbances(cat: Categorical) -> list[int]:
