@@ -13,9 +13,10 @@ engine's implied mean and covariance Phi; the parameterisation is non-centred (t
 standard normal a priori whatever the variances), which keeps the sampler away from the
 funnel between a variance and the latents it scales (Papaspiliopoulos, Roberts & Sköld
 2007). Only disturbances with a free or non-zero variance are drawn (Psi_a: Psi on those).
-Observed categories follow ``pm.OrderedProbit`` / ``pm.OrderedLogistic`` at their thresholds
-(a binary variable is the case of one threshold, fixed at 0); continuous indicators of a
-mixed model are normal around their latent response with their unique variance.
+Observed categories add their ordered probit / logit log probability at their thresholds
+(:func:`category_loglik`; a binary variable is the case of one threshold, fixed at 0);
+continuous indicators of a mixed model are normal around their latent response with their
+unique variance.
 
 Thresholds are ordered by construction: tau_1 = 0 and each later one is the previous plus a
 positive gap with a half-normal prior. After sampling, each unit's marginal log-likelihood
@@ -217,7 +218,7 @@ def category_loglik(mean, cut, codes: np.ndarray, waves: np.ndarray, n_categorie
     log(F(u) - F(l)) = log F(u) + log F(-l) + log(1 - exp(l - u)).
     Each observation's term is computed once for its own category (PyMC's ordered
     distributions evaluate all C probabilities and renormalise them; the same likelihood,
-    measured at several times the cost per gradient: docs/engine.md, "Categorical fits").
+    about 1.5 times the cost per gradient: docs/engine.md, "Categorical fits: cost and mixing").
     """
     import pytensor.tensor as pt
     from pymc.distributions.dist_math import log_diff_normal_cdf, normal_lcdf

@@ -194,3 +194,32 @@ def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_pat
     with pytest.raises(bl.SpecError, match="holds a fit with categorical variables; read it "
                                            "with bl.load_fit"):
         load_continuous(path)
+
+
+@pytest.mark.parametrize("n_categories,link", [(2, "probit"), (2, "logit"), (4, "probit"), (4, "logit")],
+                         ids=["binary-probit", "binary-logit", "four-probit", "four-logit"])
+def test_category_loglik_matches_scipy_interval_probabilities(n_categories, link):
+    import pytensor
+    import pytensor.tensor as pt
+    from scipy import stats
+
+    from bayeslong.infer.categorical import category_loglik
+
+    rng = np.random.default_rng(3)
+    T, n, C = 3, 300, n_categories
+    cuts = np.concatenate([np.zeros((T, 1)), np.cumsum(rng.gamma(2, 0.7, (T, C - 2)), 1)], 1)
+    waves, codes = rng.integers(0, T, n), rng.integers(0, C, n)
+    mean = rng.normal(0, 6, n)  # wide: many terms far in a tail, where log(F(u) - F(l)) is delicate
+    m, c = pt.vector(), pt.vector()
+    got = pytensor.function([m, c], category_loglik(m, c, codes, waves, C, link))(mean, cuts.ravel())
+    # reference: P(y = c) = F(tau_c+1 - mean) - F(tau_c - mean) with scipy's cdf and survival
+    # function (the difference of survival functions above the median, where cdfs round to 1)
+    F = stats.norm if link == "probit" else stats.logistic
+    ext = np.concatenate([np.full((T, 1), -np.inf), cuts, np.full((T, 1), np.inf)], 1)
+    u, lo = ext[waves, codes + 1] - mean, ext[waves, codes] - mean
+    want = np.where(np.isinf(lo), F.logcdf(u), np.where(
+        np.isinf(u), F.logsf(lo), np.where(lo > 0, np.log(F.sf(lo) - F.sf(u)),
+                                           np.log(F.cdf(u) - F.cdf(lo)))))
+    # relative 1e-6: PyMC's log-cdf of the normal in the far tail (logp down to about -300
+    # here) agrees with scipy's log_ndtr to about 1e-8 relative, not to rounding
+    np.testing.assert_allclose(got, want, rtol=1e-6, atol=1e-10)
