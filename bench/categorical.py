@@ -5,7 +5,10 @@ with a fixed seed from the parameters below): the wall time of 4 chains x 1000 d
 (1000 warm-up) with person-level latents after compilation, the effective sample size of
 the lag and its ESS per second (target: ESS(lag) >= 400 within 3 minutes); then the
 per-unit marginal log-likelihood (latents integrated out) for 200 units x 1000 draws
-(target: under 60 s), with its numerical error.
+(target: under 60 s), with its numerical error. It also prints why the lag mixes as it
+does: the parameters with the lowest bulk ESS, leapfrog steps per draw and tree depths,
+E-BFMI per chain, sampling seconds per leapfrog step, and the posterior correlations of the
+lag (docs/engine.md, "Categorical fits: cost and mixing").
 
 Command:  .venv/bin/python bench/categorical.py [sampler] [N]      (sampler: nutpie | pymc)
 Machine:  2-core Linux VM shared with other jobs; read the timings with the load average
@@ -49,6 +52,25 @@ def main(sampler="nutpie", n=200):
     print(f"lag: mean {float(fit.idata.posterior['lag'].mean()):.3f} (true {TRUE['lag']}), "
           f"ESS bulk {ess:.0f}, R-hat {rhat:.3f}, ESS/s (sampling) {ess / sample_s:.1f}; "
           f"divergences {fit.diagnostics().attrs['divergences']}")
+    diag = fit.diagnostics()
+    low = diag.sort_values("ess_bulk").head(4)
+    print("lowest bulk ESS: " + ", ".join(f"{n} {r.ess_bulk:.0f} (R-hat {r.r_hat:.3f})"
+                                         for n, r in low.iterrows())
+          + f"; flagged parameters: {int((diag['flag'] != '').sum())}")
+    stats = fit.idata.sample_stats
+    steps = stats["n_steps"].values
+    depth = np.bincount(stats["depth"].values.ravel().astype(int))
+    # warm-up statistics are not kept: assume a warm-up iteration takes as many steps as a draw
+    per_step = sample_s * min(4, os.cpu_count() or 1) / (steps.sum() * 2.0)
+    print(f"leapfrog steps per draw: mean {steps.mean():.1f}; tree depth counts {depth.tolist()}; "
+          f"E-BFMI per chain {np.round(az.bfmi(fit.idata), 2).tolist()}; about "
+          f"{per_step * 1e3:.2f} ms per step and core (sampling time x cores / steps)")
+    post = fit.idata.posterior
+    names = [n for n in fit.categorical.names if n != "lag"]
+    lag = post["lag"].values.ravel()
+    corr = {n: np.corrcoef(lag, post[n].values.ravel())[0, 1] for n in names}
+    print("posterior correlation of the lag with: " + ", ".join(
+        f"{n} {c:+.2f}" for n, c in sorted(corr.items(), key=lambda kv: -abs(kv[1]))[:5]))
     attrs = fit.idata.log_likelihood.attrs
     print(f"per-unit marginal log-likelihood in the fit: {fit.timing['loglik']:.1f} s for "
           f"{n} units x {fit.idata.log_likelihood.sizes['chain'] * fit.idata.log_likelihood.sizes['draw']}"

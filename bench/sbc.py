@@ -25,6 +25,18 @@ indicator's unique factors correlated over waves), checking the lag and the load
 the second indicator; every prior again given (``indicator_priors``); output files
 ``sbc_indicators_ranks.*``.
 
+``--binary``: the ALT of one binary outcome instead (probit, thresholds fixed at 0; fitted
+with person-level latents by ``bl.fit``, docs/model-family.md, "Categorical indicators"),
+checking the lag and the slope mean with every prior given (``BINARY_PRIORS``, tighter
+than ``PRIORS``: the binary latent scale is set by the probit error's SD of 1, and means of
+several SDs would give panels of one category); N = ``--units`` (default 120), T = 5.
+The replications share one compiled model (their designs are equal, the data are model
+inputs: infer/categorical.py, ``_entry``), so nutpie compiles once per run. Ranks are written to ``sbc_binary_ranks.csv`` after every replication,
+so an interrupted run keeps them; ``--report`` reads that file and prints the test:
+
+    PYTHONPATH=. .venv/bin/python bench/sbc.py --binary --replications 100 --seed 7
+    PYTHONPATH=. .venv/bin/python bench/sbc.py --binary --report
+
 Output: bench/out/sbc_ranks.csv, bench/out/sbc_ranks.png and a printed table of p-values.
 """
 
@@ -44,7 +56,7 @@ import pandas as pd  # noqa: E402
 from scipy import stats  # noqa: E402
 
 import bayeslong as bl  # noqa: E402
-from bayeslong.infer.batch import SerialExecutor, Task, run_many  # noqa: E402
+from bayeslong.infer.batch import BatchResult, SerialExecutor, Task, run_many  # noqa: E402
 from bayeslong.infer.priors import prior_draws, resolve_priors  # noqa: E402
 from bayeslong.model.simulation import Simulation  # noqa: E402
 from bayeslong.model.structure import structure_for  # noqa: E402
@@ -59,6 +71,15 @@ PRIORS = {
     "initial_var": ("halfnormal", 1.0), "resid_var": ("halfnormal", 0.7),
 }
 
+
+#: Priors of the binary ALT (``--binary``), every one given; LKJ(2) on the growth/initial
+#: block is the default and fixed.
+BINARY_PRIORS = {
+    "level_mean": ("normal", 0.0, 0.5), "slope_mean": ("normal", 0.0, 0.25),
+    "lag": ("normal", 0.3, 0.15), "initial_mean": ("normal", 0.0, 0.5),
+    "level_var": ("halfnormal", 0.7), "slope_var": ("halfnormal", 0.2),
+    "initial_var": ("halfnormal", 0.7), "resid_var": ("halfnormal", 0.7),
+}
 
 INDICATORS = ("y_a", "y_b", "y_c")
 INDICATOR_PARAMS = ("lag", "loading[y_b]")
@@ -99,7 +120,7 @@ def sbc_ranks(fit, truth: dict, params, thin: int, bins: int) -> dict:
 
 def fit_and_rank(spec, panel, *, truth, thin, bins, params, **fit_kwargs):
     """A batch task: fit and return the SBC ranks as the task's info."""
-    from bayeslong.infer.sampling import fit
+    from bayeslong.infer.fitting import fit  # continuous and categorical panels alike
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # short chains warn about ESS; SBC itself is the check
@@ -110,21 +131,42 @@ def fit_and_rank(spec, panel, *, truth, thin, bins, params, **fit_kwargs):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--replications", type=int, default=100)
-    ap.add_argument("--draws", type=int, default=500)
-    ap.add_argument("--tune", type=int, default=500)
+    ap.add_argument("--draws", type=int, default=None, help="default 500 (--binary: 200)")
+    ap.add_argument("--tune", type=int, default=None, help="default 500 (--binary: 300)")
     ap.add_argument("--chains", type=int, default=2)
-    ap.add_argument("--thin", type=int, default=10)
+    ap.add_argument("--thin", type=int, default=None, help="default 10 (--binary: 4)")
     ap.add_argument("--bins", type=int, default=10)
     ap.add_argument("--seed", type=int, default=2018)
     ap.add_argument("--pool", action="store_true", help="local process pool instead of serial")
-    ap.add_argument("--indicators", action="store_true",
-                    help="the ALT with three indicators per wave (see the module notes)")
+    kind = ap.add_mutually_exclusive_group()
+    kind.add_argument("--indicators", action="store_true",
+                      help="the ALT with three indicators per wave (see the module notes)")
+    kind.add_argument("--binary", action="store_true",
+                      help="the ALT of one binary outcome (see the module notes)")
+    ap.add_argument("--units", type=int, default=None, help="N (default 100; --binary: 120)")
+    ap.add_argument("--sampler", default="auto", help="auto (default), nutpie or pymc")
+    ap.add_argument("--report", action="store_true",
+                    help="only read the saved ranks (e.g. of an interrupted run) and test them")
     args = ap.parse_args(argv)
+    binary = args.binary
+    draws = args.draws or (200 if binary else 500)
+    tune = args.tune if args.tune is not None else (300 if binary else 500)
+    thin = args.thin or (4 if binary else 10)
+    n_units = args.units or (120 if binary else N_UNITS)
+    sampler = args.sampler
 
     spec = bl.model("alt", residuals="equal")
     indicators = {"y": list(INDICATORS)} if args.indicators else None
+    categorical = {"y": "binary"} if binary else None
     params = INDICATOR_PARAMS if args.indicators else PARAMS
-    stem = "sbc_indicators_ranks" if args.indicators else "sbc_ranks"
+    stem = ("sbc_indicators_ranks" if args.indicators else
+            "sbc_binary_ranks" if binary else "sbc_ranks")
+    out = ROOT / "bench" / "out"
+    out.mkdir(parents=True, exist_ok=True)
+    if args.report:
+        ranks = pd.read_csv(out / f"{stem}.csv")
+        print(f"{len(ranks)} replications read from {out / f'{stem}.csv'}")
+        return rank_test(ranks, params, args.bins, out / f"{stem}.png")
     base_values = {"level_mean": 0, "slope_mean": 0, "lag": 0.3, "initial_mean": 0,
                    "level_var": 1, "level_slope_cov": 0, "slope_var": 0.1,
                    "initial_level_cov": 0, "initial_slope_cov": 0, "initial_var": 1,
@@ -137,33 +179,64 @@ def main(argv=None):
             base_values.setdefault(name, {"loading": 1.0, "intercept": 0.0, "unique_var": 0.5,
                                           "unique_cov": 0.0}.get(base, 0.0))
     # a reference panel only supplies the design to resolve the (fully user-given) priors
-    ref = Simulation(spec=spec, params=base_values, n_units=N_UNITS, n_waves=N_WAVES, seed=0,
-                     indicators=indicators).panel()
-    structure = structure_for(spec, ref)
-    priors = indicator_priors(structure) if args.indicators else PRIORS
-    prior_set = resolve_priors(structure, ref, priors)
+    ref = Simulation(spec=spec, params=base_values, n_units=n_units, n_waves=N_WAVES, seed=0,
+                     indicators=indicators, categorical=categorical).panel()
+    if binary:  # the prior set exactly as the categorical fit resolves it
+        from bayeslong.infer.categorical import categorical_priors
+        from bayeslong.model.thresholds import categorical_structure
+
+        cat = categorical_structure(spec, ref)
+        if cat.pinned or cat.thresholds:  # a binary ALT with equal residuals has neither
+            raise SystemExit(f"unexpected fixed parameters or thresholds: {cat.pinned}, "
+                             f"{cat.thresholds}")
+        structure, priors = cat.structure, BINARY_PRIORS
+        prior_set, _ = categorical_priors(cat, ref, priors)
+    else:
+        structure = structure_for(spec, ref)
+        priors = indicator_priors(structure) if args.indicators else PRIORS
+        prior_set = resolve_priors(structure, ref, priors)
     thetas = prior_draws(prior_set, draws=args.replications, seed=args.seed)
     seeds = np.random.SeedSequence(args.seed).generate_state(2 * args.replications)
+    fit_kwargs = dict(draws=draws, tune=tune, chains=args.chains, priors=priors,
+                      **({"sampler": sampler} if sampler != "auto" else {}),
+                      **({"loglik_draws": 10} if binary else {}))  # LOO terms are not used
     tasks = []
     for r, theta in enumerate(thetas):
         truth = dict(zip(structure.names, map(float, theta)))
-        sim = Simulation(spec=spec, params=truth, n_units=N_UNITS, n_waves=N_WAVES,
-                         seed=int(seeds[2 * r]), indicators=indicators)
+        sim = Simulation(spec=spec, params=truth, n_units=n_units, n_waves=N_WAVES,
+                         seed=int(seeds[2 * r]), indicators=indicators, categorical=categorical)
         tasks.append(Task(name=f"rep{r}", spec=spec, panel=sim, kind="bench.sbc:fit_and_rank",
-                          kwargs=dict(truth={k: truth[k] for k in params}, thin=args.thin,
-                                      bins=args.bins,
-                                      params=params, draws=args.draws, tune=args.tune,
-                                      chains=args.chains, priors=priors),
+                          kwargs=dict(truth={k: truth[k] for k in params}, thin=thin,
+                                      bins=args.bins, params=params, **fit_kwargs),
                           seed=int(seeds[2 * r + 1]) % 2**31))
     t0 = time.perf_counter()
-    batch = run_many(tasks, None if args.pool else SerialExecutor())
+    if binary:  # one task at a time, the ranks saved after each (module notes)
+        results, rows = [], []
+        for r, task in enumerate(tasks):
+            result = run_many([task], SerialExecutor()).results[0]
+            results.append(result)
+            if result.ok:
+                rows.append({**result.info, "seconds": result.seconds})
+                pd.DataFrame(rows).to_csv(out / f"{stem}.csv", index=False)
+            print(f"replication {r + 1}/{len(tasks)}: {result.status} "
+                  f"({result.seconds:.0f} s, {time.perf_counter() - t0:.0f} s so far)", flush=True)
+        batch = BatchResult(results=tuple(results))
+    else:
+        batch = run_many(tasks, None if args.pool else SerialExecutor())
     wall = time.perf_counter() - t0
     ok = [r for r in batch if r.ok]
-    ranks = pd.DataFrame([r.info for r in ok])
-    out = ROOT / "bench" / "out"
-    out.mkdir(parents=True, exist_ok=True)
+    ranks = pd.DataFrame([{**r.info, "seconds": r.seconds} for r in ok])
     ranks.to_csv(out / f"{stem}.csv", index=False)
+    table = rank_test(ranks, params, args.bins, out / f"{stem}.png")
+    print(f"failed fits: {len(batch) - len(ok)}; wall time {wall:.0f} s "
+          f"({wall / max(len(batch), 1):.1f} s per fit)")
+    if batch.failed:
+        print("first failure:", next(iter(batch.failed.items())))
+    return table
 
+
+def rank_test(ranks: pd.DataFrame, params, bins: int, png: Path) -> pd.DataFrame:
+    """Chi-square test of the binned ranks against the uniform, and their histogram."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -174,27 +247,22 @@ def main(argv=None):
     for ax, name in zip(np.atleast_1d(axes), params):
         L = int(ranks[f"{name}__L"].iloc[0])
         # B bins of the L + 1 possible ranks 0..L (L + 1 divisible by B, see sbc_ranks)
-        counts = np.bincount(ranks[name].to_numpy(int) * args.bins // (L + 1),
-                             minlength=args.bins)
+        counts = np.bincount(ranks[name].to_numpy(int) * bins // (L + 1), minlength=bins)
         R = len(ranks)
         chi2, p = stats.chisquare(counts)
-        lo, hi = stats.binom.ppf([0.005, 0.995], R, 1 / args.bins)
-        ax.bar(np.arange(args.bins), counts, width=0.9, color="tab:blue")
+        lo, hi = stats.binom.ppf([0.005, 0.995], R, 1 / bins)
+        ax.bar(np.arange(bins), counts, width=0.9, color="tab:blue")
         ax.axhspan(lo, hi, color="grey", alpha=0.3, zorder=0, label="99% band, uniform")
         ax.set_title(f"{name}: chi2 = {chi2:.1f}, p = {p:.3f}")
-        ax.set_xlabel(f"rank bin ({args.bins} bins of 0..{L})")
-        rows.append({"parameter": name, "replications": R, "chi2": chi2, "df": args.bins - 1,
-                     "p_value": p})
+        ax.set_xlabel(f"rank bin ({bins} bins of 0..{L})")
+        rows.append({"parameter": name, "replications": R, "chi2": chi2, "df": bins - 1,
+                     "p_value": p, "bin_counts": " ".join(map(str, counts))})
     np.atleast_1d(axes)[0].set_ylabel("replications")
     np.atleast_1d(axes)[0].legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(out / f"{stem}.png", dpi=110)
+    fig.savefig(png, dpi=110)
     table = pd.DataFrame(rows)
     print(table.to_string(index=False))
-    print(f"failed fits: {len(batch) - len(ok)}; wall time {wall:.0f} s "
-          f"({wall / max(len(batch), 1):.1f} s per fit)")
-    if batch.failed:
-        print("first failure:", next(iter(batch.failed.items())))
     return table
 
 

@@ -19,6 +19,10 @@ carry-over effect) for each setting:
 :func:`plan` simulates replications of a design at several sample sizes and reports how
 well the lag is recovered (bias, posterior SD, interval coverage, power).
 
+On a panel with categorical variables every refit is a categorical fit (``bl.fit``), and
+only the prior and first-wave axes of the first model run; :data:`CATEGORICAL_SKIPS` says
+why the others do not (docs/comparison.md, "Lag sensitivity with categorical variables").
+
 Fits run through :func:`bayeslong.batch.run_many`: in this process by default for
 :func:`lag_sensitivity` (refits of one structure reuse its compiled model), in a local
 process pool by default for :func:`plan`, or on any executor given (e.g. a Dask cluster's).
@@ -71,6 +75,19 @@ PSENS_THRESHOLD = 0.05
 #: and 1, which leaves loadings and intercepts nearly free by wave.
 DEVIATION_SDS = (0.005, 0.1, 0.25, 1.0)
 
+#: Why an axis is not run on a panel with categorical variables (docs/comparison.md).
+CATEGORICAL_SKIPS = {
+    "specification": "not run with categorical variables: which catalog models the categories "
+                     "identify, and which disturbance variances each must fix, is not checked "
+                     "model by model yet (docs/model-family.md, 'Identification'); only the "
+                     "first model was refitted. Fit other models with bl.fit and compare them "
+                     "by LOO instead",
+    "power-scaling": "not run with categorical variables: a categorical fit stores the "
+                     "marginal log-likelihood on a thinned subset of its draws (loglik_draws) "
+                     "and the thresholds' gap priors lie outside its prior set, so neither "
+                     "power-scaled weight can be formed for every draw",
+}
+
 #: Axes of the sensitivity table, in display order.
 AXES = ("default", "prior", "deviation SD", "first wave", "specification", "power-scaling")
 
@@ -117,17 +134,17 @@ def scaled_variance_priors(spec: Spec, panel, factor: float, priors: dict | None
     """Prior overrides that multiply the scale of every standard-deviation prior by ``factor``.
 
     Variances have their priors on their standard deviations (see :mod:`bayeslong.priors`);
-    scaling an SD prior by f scales the implied variance prior by f^2. Location-free
+    scaling an SD prior by f scales the implied variance prior by f^2. On a panel with
+    categorical variables the priors are the categorical fit's (its latent scale, without
+    the variances it fixes); the thresholds' gap priors are not SD priors and stay as given. Location-free
     families scale their scale argument (halfnormal sigma, halfstudent_t sigma, exponential
     1/lam, gamma 1/beta, uniform both bounds); lognormal shifts mu by log f.
     """
-    from bayeslong.infer.priors import resolve_priors
-
-    prior_set = resolve_priors(structure_for(spec, panel), panel, priors)
+    prior_set, pinned = _prior_set_for(spec, panel, priors)
     out = dict(priors or {})
     f = float(factor)
     for p in prior_set.priors:
-        if p.target != "sd" or p.family == "callable":
+        if p.target != "sd" or p.family == "callable" or p.parameter in pinned:
             continue
         rule = {"halfnormal": lambda a: (a[0] * f,), "halfstudent_t": lambda a: (a[0], a[1] * f),
                 "exponential": lambda a: (a[0] / f,), "gamma": lambda a: (a[0], a[1] / f),
@@ -135,6 +152,34 @@ def scaled_variance_priors(spec: Spec, panel, factor: float, priors: dict | None
                 "lognormal": lambda a: (a[0] + float(np.log(f)), a[1])}[p.family]
         out[p.parameter] = (p.family, *rule(p.args))
     return out
+
+
+def _has_categories(panel) -> bool:
+    """Whether the panel has a categorical (binary or ordinal) variable."""
+    return bool(getattr(panel, "categories", None))
+
+
+def _prior_set_for(spec: Spec, panel, priors: dict | None):
+    """``(PriorSet, fixed parameters)`` of a fit of ``spec`` to ``panel`` under ``priors``."""
+    if _has_categories(panel):
+        from bayeslong.infer.categorical import categorical_priors
+        from bayeslong.model.thresholds import categorical_structure
+
+        cat = categorical_structure(spec, panel)
+        return categorical_priors(cat, panel, priors)[0], dict(cat.pinned)
+    from bayeslong.infer.priors import resolve_priors
+
+    return resolve_priors(structure_for(spec, panel), panel, priors), {}
+
+
+def _prior_names(spec: Spec, panel) -> tuple[str, ...]:
+    """Names a prior override may give for ``spec`` on ``panel`` (thresholds included)."""
+    names = tuple(structure_for(spec, panel).names)
+    if _has_categories(panel):
+        from bayeslong.model.thresholds import categorical_structure
+
+        names += tuple(categorical_structure(spec, panel).thresholds)
+    return names
 
 
 def log_prior_draws(fit) -> np.ndarray:
@@ -307,6 +352,8 @@ class LagSensitivity:
     reused : tuple of str
         Settings (task names) read from fits given to :func:`lag_sensitivity` instead of
         refitted.
+    skipped : dict
+        Axes asked for but not run, with the reason (panels with categorical variables).
     """
 
     table: pd.DataFrame
@@ -315,6 +362,7 @@ class LagSensitivity:
     warnings: dict = field(default_factory=dict)
     reference: str = ""
     reused: tuple = ()
+    skipped: dict = field(default_factory=dict)
 
     def plot(self, ax=None):
         """Forest plot of the lag's 90% intervals by axis and setting; returns the figure.
@@ -414,6 +462,10 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
 
     Notes
     -----
+    With categorical variables in ``panel`` only the first model is refitted, along the
+    prior and first-wave axes; ``specification`` (when several models are given) and
+    ``power_scaling`` are recorded in ``.skipped`` with the reason instead of run.
+
     A row is flagged when its 90% interval lies on another side of zero than the default
     fit's (above, below, or across zero), or its mean moves by more than one posterior SD
     of the default fit. Power-scaling rows are flagged when the sensitivity reaches
@@ -440,12 +492,19 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
                             "lag sensitivity needs models with lag='constant'")
         lag_of[s.name + "/" + s.options["initial"]] = name
     ref = specs[0]
+    skipped = {}
+    if _has_categories(panel):  # docs/comparison.md, "Lag sensitivity with categorical variables"
+        if specification and len(specs) > 1:
+            skipped["specification"] = CATEGORICAL_SKIPS["specification"]
+        if power_scaling:
+            skipped["power-scaling"] = CATEGORICAL_SKIPS["power-scaling"]
+        specs, specification, power_scaling = specs[:1], False, False
     grid = LAG_PRIORS if prior_grid is None else (prior_grid or ())
     scales = VARIANCE_SCALES if variance_scales is None else (variance_scales or ())
     base = dict(priors or {})
 
     def base_for(spec) -> dict:
-        names = structure_for(spec, panel).names
+        names = _prior_names(spec, panel)
         return {k: tuple(v) for k, v in base.items() if k in names}
 
     # (axis, setting, spec, priors, task name); tasks are shared between axes
@@ -536,7 +595,7 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     table["axis"] = table["axis"].astype(str)
     return LagSensitivity(table=table, power_scaling=ps_table, failed=batch.failed,
                           warnings={r.name: r.warnings for r in batch if r.warnings},
-                          reference=ref.name, reused=tuple(given))
+                          reference=ref.name, reused=tuple(given), skipped=skipped)
 
 
 def _deviation_grid(spec: Spec, panel, given) -> tuple[float, ...]:
@@ -575,12 +634,27 @@ def _matching_fit(task: Task, fits, fit_kwargs: dict):
         post = fit.idata.posterior
         if (fit.spec == task.spec and fit.panel == task.panel
                 and not fit.prior_set.has_callable
-                and {k: tuple(v) for k, v in fit.prior_set.user_spec().items()} == priors
+                and _same_priors(fit, priors)
                 and int(fit.seed) == int(want["seed"])
                 and int(post.sizes["chain"]) == int(want["chains"])
                 and int(post.sizes["draw"]) == int(want["draws"])):
             return fit
     return None
+
+
+def _same_priors(fit, priors: dict) -> bool:
+    """Whether ``fit`` was made under the prior overrides ``priors``.
+
+    A categorical fit keeps its thresholds' gap priors apart from its prior set (defaults
+    filled in), so those are compared as the categorical fit resolves ``priors``."""
+    cat = getattr(fit, "categorical", None)
+    if cat is not None:
+        from bayeslong.infer.categorical import categorical_priors
+
+        if categorical_priors(cat, fit.panel, priors)[1] != fit.gaps:
+            return False
+        priors = {k: v for k, v in priors.items() if k not in cat.thresholds}
+    return {k: tuple(v) for k, v in fit.prior_set.user_spec().items()} == priors
 
 
 def _result_of_fit(task: Task, fit) -> TaskResult:

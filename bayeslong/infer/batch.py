@@ -189,8 +189,8 @@ _LIMITER = None
 
 
 def _function(kind: str):
-    if kind == "fit":
-        from bayeslong.infer.sampling import fit
+    if kind == "fit":  # continuous and categorical panels alike (infer/fitting.py)
+        from bayeslong.infer.fitting import fit
 
         return fit
     if kind == "fit_ml":
@@ -251,9 +251,12 @@ def fit_defaults(fn, kwargs: dict) -> dict:
     import multiprocessing as mp
 
     accepted = inspect.signature(fn).parameters
-    if "cores" in accepted and mp.parent_process() is not None:
+    # a function taking **kwargs (bl.fit, which passes them to the continuous or the
+    # categorical fit, both of which take these two) gets them too
+    every = any(p.kind is inspect.Parameter.VAR_KEYWORD for p in accepted.values())
+    if ("cores" in accepted or every) and mp.parent_process() is not None:
         kwargs.setdefault("cores", 1)
-    if "progressbar" in accepted:
+    if "progressbar" in accepted or every:
         kwargs.setdefault("progressbar", False)
     return kwargs
 

@@ -13,9 +13,10 @@ engine's implied mean and covariance Phi; the parameterisation is non-centred (t
 standard normal a priori whatever the variances), which keeps the sampler away from the
 funnel between a variance and the latents it scales (Papaspiliopoulos, Roberts & Sköld
 2007). Only disturbances with a free or non-zero variance are drawn (Psi_a: Psi on those).
-Observed categories follow ``pm.OrderedProbit`` / ``pm.OrderedLogistic`` at their thresholds
-(a binary variable is the case of one threshold, fixed at 0); continuous indicators of a
-mixed model are normal around their latent response with their unique variance.
+Observed categories add their ordered probit / logit log probability at their thresholds
+(:func:`category_loglik`; a binary variable is the case of one threshold, fixed at 0);
+continuous indicators of a mixed model are normal around their latent response with their
+unique variance.
 
 Thresholds are ordered by construction: tau_1 = 0 and each later one is the previous plus a
 positive gap with a half-normal prior. After sampling, each unit's marginal log-likelihood
@@ -47,6 +48,7 @@ from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
 from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
 from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
+from bayeslong.model.structure import structure_for
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
 #: Scale s of a categorical variable's latent response for the default priors, in units
@@ -123,7 +125,12 @@ def _observed_parts(cat: Categorical, panel):
 
 
 def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: dict):
-    """The PyMC model of a categorical fit (module notes)."""
+    """The PyMC model of a categorical fit (module notes).
+
+    The priors' hyperparameters, the covariates and the observed values are model data
+    (``prior_hyper``, ``covariates``, ``observed[<variable>]``; :func:`model_inputs`), so one
+    built and compiled model serves every panel of the same design and every prior set of
+    the same families (:func:`_entry`)."""
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -189,20 +196,96 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
             eta_i = eta_mean + dev
         else:
             eta_i = eta_mean
-        ystar = m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T)
+        ystar = pt.flatten(m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T))
+        Y = len(structure.observed)
         for name, rows, units, waves, obs in _observed_parts(cat, panel):
-            mean = ystar[units, rows[waves]]
+            mean = ystar[units * Y + rows[waves]]  # one flat index: a cheap gather and gradient
             if name in cat.rows:
                 table = cat.cuts[name]
-                cut = pt.stack([pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
-                                          for k in table[t]]) for t in range(len(table))])
-                dist = pm.OrderedProbit if cat.link == "probit" else pm.OrderedLogistic
-                dist(f"y[{name}]", eta=mean, cutpoints=cut[waves], compute_p=False,
-                     observed=obs.astype(np.int64))
+                cut = pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
+                                for k in table.ravel()])
+                codes = pm.Data(f"observed[{name}]", obs.astype(np.int64))
+                pm.Potential(f"y[{name}]", category_loglik(
+                    mean, cut, codes, waves, table.shape[1] + 1, cat.link).sum())
             else:
                 sd = pt.sqrt(pt.diagonal(_unique_variances(cat, Theta, m, name, rows)))
-                pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves], observed=obs)
+                pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves],
+                          observed=pm.Data(f"observed[{name}]", obs))
     return model
+
+
+def model_inputs(cat: Categorical, panel, prior_set: PriorSet) -> dict:
+    """The data of :func:`build_categorical_model`'s model for this panel and prior set."""
+    inputs = {"prior_hyper": prior_set.hyper, "covariates": panel.covariate_matrix()}
+    for name, _, _, _, obs in _observed_parts(cat, panel):
+        inputs[f"observed[{name}]"] = obs.astype(np.int64) if name in cat.rows else obs
+    return inputs
+
+
+#: Built (and, for nutpie, compiled) models by design: see :func:`_entry`.
+_COMPILED: dict = {}
+
+
+def _entry(spec, cat: Categorical, panel, prior_set: PriorSet, gaps: dict) -> dict:
+    """``{"model": ..., "nutpie": ...}`` for this design, built once and reused.
+
+    Two fits share a model when their specs, structures, categories, prior families, gap
+    priors and observed positions (which units are seen at which waves) are equal (the
+    categorical structure derives from the design's cached structure, :func:`structure_for`,
+    and the categories): what differs then (observed values, covariates, prior
+    hyperparameters) is model data. A prior given as a PyMC factory is never shared.
+    """
+    parts = _observed_parts(cat, panel)
+    key = None if prior_set.has_callable else (
+        json.dumps(spec.to_dict(), sort_keys=True), structure_for(spec, panel), prior_set.key,
+        json.dumps(sorted((k, list(v)) for k, v in gaps.items())),
+        tuple((v, len(c)) for v, c in panel.categories.items()), panel.n_units,
+        panel.covariate_matrix().shape,
+        tuple((name, units.tobytes(), waves.tobytes()) for name, _, units, waves, _ in parts))
+    if key is not None and key in _COMPILED:
+        return _COMPILED[key]
+    entry = {"model": build_categorical_model(cat, panel, prior_set, gaps)}
+    if key is not None:
+        _COMPILED[key] = entry
+    return entry
+
+
+def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link: str):
+    """Log probability of each observed category given its latent response's mean (PyTensor).
+
+    ``cut`` holds the inner cuts, wave-major ((T, C-1) flattened); ``codes`` the categories
+    0..C-1 (an array or the model's data, so that one compiled model serves other data of the
+    same design) and ``waves`` the wave positions of the observations. With F the error's
+    cdf (standard normal or logistic), P(y = c) = F(tau_c+1 - mean) - F(tau_c - mean): the
+    first category needs only F(tau_1 - mean), the last only F(mean - tau_C-1) (F is
+    symmetric), the others the difference, taken in log space so that no probability
+    underflows: ``log_diff_normal_cdf`` (probit), and for the logit
+    log(F(u) - F(l)) = log F(u) + log F(-l) + log(1 - exp(l - u)).
+    Each observation's term is one of these three, chosen by its code; the middle one is
+    given a harmless interval where it is not chosen, so that no infinite value reaches the
+    gradient. PyMC's ordered distributions evaluate all C probabilities and renormalise them:
+    the same likelihood at about 1.5 times the cost per gradient (docs/engine.md,
+    "Categorical fits: cost and mixing").
+    """
+    import pytensor.tensor as pt
+    from pymc.distributions.dist_math import log_diff_normal_cdf, normal_lcdf
+
+    def log_cdf(x):
+        return normal_lcdf(0.0, 1.0, x) if link == "probit" else -pt.softplus(-x)
+
+    width = n_categories - 1
+    codes = pt.as_tensor_variable(codes)
+    base = np.asarray(waves, dtype=np.int64) * width
+    upper = cut[base + pt.minimum(codes, width - 1)] - mean  # tau_c+1 - mean for c < C-1
+    lower = cut[base + pt.maximum(codes - 1, 0)] - mean      # tau_c - mean for c > 0
+    first, last = log_cdf(upper), log_cdf(-lower)
+    if width == 1:  # binary: no middle category
+        return pt.switch(pt.eq(codes, 0), first, last)
+    inside = (codes > 0) & (codes < width)
+    lower_in = pt.switch(inside, lower, upper - 1.0)
+    middle = (log_diff_normal_cdf(0.0, 1.0, upper, lower_in) if link == "probit" else
+              log_cdf(upper) + log_cdf(-lower_in) + pt.log1mexp(lower_in - upper))
+    return pt.switch(pt.eq(codes, 0), first, pt.switch(pt.eq(codes, width), last, middle))
 
 
 def _active_disturbances(cat: Categorical) -> list[int]:
@@ -304,7 +387,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     cat = categorical_structure(spec, panel)
     prior_set, gaps = categorical_priors(cat, panel, priors)
     t0 = time.perf_counter()
-    model = build_categorical_model(cat, panel, prior_set, gaps)
+    entry = _entry(spec, cat, panel, prior_set, gaps)
+    model = entry["model"]
     build_s = time.perf_counter() - t0
     keep = list(cat.structure.names) + list(cat.thresholds)
     cores = min(int(chains), os.cpu_count() or 1) if cores is None else int(cores)
@@ -320,7 +404,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
         if which == "nutpie":
             import nutpie
 
-            compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+            if "nutpie" not in entry:
+                entry["nutpie"] = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+            compiled = entry["nutpie"].with_data(**model_inputs(cat, panel, prior_set))
             compile_s = time.perf_counter() - t0
             t0 = time.perf_counter()
             # the low-rank-modified mass matrix, as for continuous fits (sampling.py): the lag
@@ -335,6 +421,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             compile_s = 0.0
             counter = None if report is None else PymcCounter(int(chains), int(draws + tune), report)
             with model:
+                pm.set_data(model_inputs(cat, panel, prior_set))
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
                                 random_seed=int(seed), progressbar=progressbar is True,
                                 var_names=keep, compute_convergence_checks=False, callback=counter)

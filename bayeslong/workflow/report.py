@@ -594,6 +594,8 @@ def _section_sensitivity(doc: _Doc, results) -> None:
                        "(red: flagged; dashed: the default fit's mean; dotted: zero)")
         except Exception as err:  # the table is already shown; say why the plot is not
             doc.para(f"The sensitivity plot could not be drawn ({err}).", "warn")
+    for axis, why in (getattr(value, "skipped", None) or {}).items():
+        doc.para(f"Axis '{axis}' {why}.", "note")
     failed = getattr(value, "failed", None)
     if failed:
         doc.para("Refits that failed: " + "; ".join(f"{k}: {v}" for k, v in failed.items()), "warn")

@@ -21,7 +21,7 @@ from bayeslong.evaluate.comparison import LFO_COLUMNS
 from bayeslong.model.measurement import nearest_exact
 from bayeslong.workflow.category_run import (
     NO_ML,
-    NO_SENSITIVITY,
+    SENSITIVITY_AXES,
     is_categorical,
 )
 from bayeslong.workflow.progress import QueueForwarder
@@ -666,8 +666,6 @@ def _sensitivity(study, panel, models, method, say, strict=False, show=False) ->
         return Step.skipped("not requested (turn axes on in [sensitivity])")
     if method != "bayes":
         return Step.skipped("lag sensitivity needs posterior fits, which this run did not make")
-    if is_categorical(panel):
-        return Step.skipped(NO_SENSITIVITY)
     module, absent = optional_module("evaluate.sensitivity")
     if module is None:
         return Step.skipped(absent)
@@ -682,7 +680,8 @@ def _sensitivity(study, panel, models, method, say, strict=False, show=False) ->
         return Step.skipped("no fitted candidate has a constant lag")
     message = ("lag sensitivity: " + ", ".join(axes) + " around "
                + ", ".join(str(spec) for spec in specs) + " with the study's priors "
-               "(settings equal to a candidate's fit reuse it; the others are refitted)")
+               "(settings equal to a candidate's fit reuse it; the others are refitted)"
+               + (f"; {SENSITIVITY_AXES}" if is_categorical(panel) else ""))
     on = study.sensitivity
     # the candidates' own sampling settings (as in _run_candidate), so that a setting equal
     # to a candidate is that candidate's fit and needs no refit

@@ -427,3 +427,87 @@ def test_plan_with_bayes_on_binary_outcomes():
                fit_kwargs=dict(draws=200, tune=200, chains=2))
     row = out.iloc[0]
     assert row["n_ok"] == 2 and row["truth"] == 0.5 and np.isfinite(row["post_sd"])
+
+
+# --- categorical panels ----------------------------------------------------------------------
+BINARY_ALT = {"level_mean": 0.0, "slope_mean": 0.1, "lag": 0.4, "initial_mean": 0.0,
+              "level_var": 0.5, "slope_var": 0.05, "level_slope_cov": 0.0, "initial_var": 1.0,
+              "initial_level_cov": 0.3, "initial_slope_cov": 0.0, "resid_var": 0.5}
+
+
+def test_variance_prior_scaling_of_a_categorical_model_leaves_fixed_variances_out():
+    # alt with free residual variances on one binary variable fixes the last wave's
+    # disturbance variance at 0 (docs/model-family.md, "Identification"), so the scaled
+    # priors must not name it (the categorical fit refuses a prior for a fixed parameter)
+    spec = bl.model("alt", residuals="free")
+    params = {**BINARY_ALT, "resid_var": 0.5}
+    panel = Simulation(spec=spec, params=params, n_units=30, n_waves=4, seed=2,
+                       categorical={"y": "binary"}).panel()
+    scaled = scaled_variance_priors(spec, panel, 2.0, {"lag": ("normal", 0, 1)})
+    # a categorical variable's latent response has SD s = 1 for the default priors
+    # (docs/model-family.md, "Estimation"), so every SD prior HalfNormal(1) becomes
+    # HalfNormal(2) (docs/priors.md: a variance's SD ~ HalfNormal(s))
+    assert scaled["lag"] == ("normal", 0, 1)
+    assert {k: v for k, v in scaled.items() if k != "lag"} == {
+        name: ("halfnormal", 2.0) for name in
+        ("level_var", "slope_var", "initial_var", "resid_var[2]", "resid_var[3]")}
+
+
+def _binary_alt_panel():
+    spec = bl.model("alt", residuals="equal")
+    return spec, Simulation(spec=spec, params=BINARY_ALT, n_units=40, n_waves=4, seed=5,
+                            categorical={"y": "binary"}).panel()
+
+
+# two categorical fits: about 3 min on a loaded 2-core machine, so outside the default pass
+@pytest.mark.slow
+def test_lag_sensitivity_of_a_binary_panel_refits_and_reads_categorical_fits():
+    import warnings
+
+    spec, panel = _binary_alt_panel()
+    # 200 warm-up draws: with 30 the step size stays small and sampling takes longer
+    kwargs = dict(draws=30, tune=200, chains=2, sampler="pymc", seed=4, loglik_draws=10)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        tight = bl.fit(spec, panel, priors={"lag": ("normal", 0.0, 0.1)}, **kwargs)
+    # the default setting is refitted through the categorical path (bl.fit dispatches; the
+    # continuous fit would fail on categories), the tight-prior setting is read from the
+    # categorical fit given, whose thresholds' gap priors are the defaults
+    result = bl.lag_sensitivity(panel, models=[spec, bl.model("level-lag")],
+                                prior_grid=[("normal", 0.0, 0.1)], variance_scales=False,
+                                initial=False, fit_kwargs=kwargs, fits=[tight])
+    assert result.failed == {}, result.failed
+    assert result.reused == ("prior: lag ~ normal(0, 0.1)",)
+    assert list(result.table["axis"]) == ["default", "prior"]
+    assert set(result.skipped) == {"specification", "power-scaling"}
+    assert "marginal log-likelihood on a thinned subset" in result.skipped["power-scaling"]
+    row = result.table.set_index("setting").loc["lag ~ normal(0, 0.1)"]
+    assert row["mean"] == pytest.approx(float(tight.idata.posterior["lag"].mean()), rel=1e-12)
+    assert np.isfinite(result.table["mean"]).all() and (result.table["sd"] > 0).all()
+
+
+@pytest.mark.slow
+def test_lag_sensitivity_of_a_binary_panel_refits_prior_and_first_wave_axes():
+    spec, panel = _binary_alt_panel()
+    kwargs = dict(draws=60, tune=200, chains=2, sampler="pymc", seed=4, loglik_draws=10)
+    result = bl.lag_sensitivity(panel, models=[spec], prior_grid=[("normal", 0.0, 0.1)],
+                                variance_scales=[2.0], fit_kwargs=kwargs)
+    table = result.table.set_index("setting")
+    assert result.failed == {}, result.failed
+    assert list(result.table["axis"]) == ["default", "prior", "prior", "first wave", "first wave"]
+    assert set(result.skipped) == {"power-scaling"}
+    # each row is the categorical fit of its setting: a direct bl.fit under the same prior
+    # and seed gives the same draws (person-level latents, thresholds; infer/categorical.py)
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        tight = bl.fit(spec, panel, priors={"lag": ("normal", 0.0, 0.1)}, **kwargs)
+        other = bl.fit(spec.replace(initial="endogenous"), panel, **kwargs)
+    assert type(tight).__name__ == "CategoricalFit"
+    lag = tight.idata.posterior["lag"].values
+    assert table.loc["lag ~ normal(0, 0.1)", "mean"] == pytest.approx(lag.mean(), rel=1e-12)
+    assert table.loc["endogenous", "mean"] == pytest.approx(
+        other.idata.posterior["lag"].values.mean(), rel=1e-12)
+    # the SD-scale row is a different prior, so a different posterior from the default
+    assert table.loc["variance priors: SD scale x2", "mean"] != table.loc["default priors", "mean"]
