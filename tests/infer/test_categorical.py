@@ -95,7 +95,11 @@ def test_pareto_k_of_marginal_terms_on_binary_alt():
 def _polychoric(a, b):
     """Pairwise polychoric correlation by maximum likelihood (Olsson 1979, two-step):
     thresholds from each variable's cumulative proportions, then rho maximising the
-    likelihood of the cross table, cell probabilities from scipy's bivariate normal cdf."""
+    likelihood of the cross table, cell probabilities from scipy's bivariate normal cdf.
+
+    Returns ``(ml, flat_mean)``: the estimate, and the mean of rho under a uniform prior
+    given the same pairwise likelihood (thresholds at their two-step values), by quadrature
+    on a grid of 241 points over ml +- 0.3 (beyond 5 posterior SDs at n = 400)."""
     from scipy.optimize import minimize_scalar
     from scipy.stats import multivariate_normal, norm
 
@@ -114,8 +118,12 @@ def _polychoric(a, b):
         cells = F[1:, 1:] - F[:-1, 1:] - F[1:, :-1] + F[:-1, :-1]
         return -np.sum(counts * np.log(np.maximum(cells, 1e-300)))
 
-    return minimize_scalar(minus_loglik, bounds=(-0.99, 0.99), method="bounded",
-                           options={"xatol": 1e-6}).x
+    ml = minimize_scalar(minus_loglik, bounds=(-0.99, 0.99), method="bounded",
+                         options={"xatol": 1e-6}).x
+    grid = np.linspace(max(ml - 0.3, -0.99), min(ml + 0.3, 0.99), 241)
+    nll = np.array([minus_loglik(r) for r in grid])
+    weight = np.exp(-(nll - nll.min()))
+    return ml, float(np.sum(weight * grid) / np.sum(weight))
 
 
 @pytest.mark.slow
@@ -130,7 +138,8 @@ def test_latent_correlations_match_pairwise_polychoric():
                        "y": y.ravel()})
     panel = bl.Panel.from_long(df, unit="id", wave="t", outcomes=["y"],
                                categorical={"y": "ordinal"})
-    # vague priors: uniform over correlation matrices, wide SDs, means and threshold gap
+    # the flattest priors the model offers: uniform over correlation matrices (LKJ(1)),
+    # wide SDs, means and threshold gap
     vague = {f"resid_var[{t}]": ("halfnormal", 10) for t in (1, 2, 3)}
     vague.update({f"intercept[{t}]": ("normal", 0, 10) for t in (1, 2, 3)})
     vague.update({"resid_cov[1,2]": ("lkj", 1.0), "threshold[y,2]": ("halfnormal", 10)})
@@ -146,17 +155,28 @@ def test_latent_correlations_match_pairwise_polychoric():
         var_s = post[f"resid_var[{s}]"].values.ravel() + 1.0
         var_t = post[f"resid_var[{t}]"].values.ravel() + 1.0
         r = cov / np.sqrt(var_s * var_t)
-        reference = _polychoric(y[:, s - 1], y[:, t - 1])
-        found.append((s, t, r.mean(), r.std(), reference))
-    # Measured (n = 400, 2 x 1000 draws): the posterior means lie 0.14-0.17 posterior SD
-    # below the pairwise estimates (0.521, 0.432, 0.569 against 0.527, 0.441, 0.577), and the
-    # joint trivariate maximum likelihood agrees with the pairwise one to 0.003, so the gap
-    # is not the pairwise estimator's. Its cause is the model: y* = eta + eps with eps of
-    # unit variance, so a higher correlation of the responses needs a larger scale of eta,
-    # whose prior mass (the scale is not identified in the saturated model) shrinks the
-    # correlations slightly. The bound is therefore 0.25 posterior SD, not 0.1.
-    for s, t, mean, sd, reference in found:
-        assert abs(mean - reference) < 0.25 * sd, found
+        ml, flat_mean = _polychoric(y[:, s - 1], y[:, t - 1])
+        found.append((s, t, r.mean(), r.std(), ml, flat_mean))
+    # Why two references. A correlation's likelihood is skewed (longer towards 0), so even
+    # under a flat prior its posterior mean lies below its mode, the ML: by quadrature of
+    # the pairwise likelihood here, by 0.09-0.12 posterior SD at n = 400 (measured with
+    # this test's data; the skew shrinks as 1/sqrt(n), about 0.05 SD at n = 1600). That,
+    # not the model, is most of the 0.14-0.17 SD by which the posterior means lie below
+    # the pairwise ML. Checked and ruled out: (a) thresholds equal over waves are no
+    # constraint here: with three categories, free wave intercepts and variances every
+    # wave's two standardised cuts are free (docs/model-family.md, "Identification");
+    # (b) the priors are already the flattest (LKJ(1), HalfNormal(10)); (d) no sign of a
+    # bug: the first assertion below, and an earlier measurement recorded in this test
+    # that the joint trivariate ML agrees with the pairwise one to 0.003. So the posterior
+    # mean is held like for like to the flat-prior posterior mean of the same pairwise
+    # likelihood within 0.1 posterior SD (the asked tolerance; left over are the joint-versus-pairwise
+    # information, the thresholds' uncertainty and Monte Carlo error, about 0.03 SD at
+    # 2 x 1000 draws), and to the ML within 0.25 SD (skew plus that remainder). Meeting 0.1
+    # SD against the ML would take n of about 1600 or more (4800+ person-level latents),
+    # too slow even for this slow test on a 2-core machine.
+    for s, t, mean, sd, ml, flat_mean in found:
+        assert abs(mean - flat_mean) < 0.1 * sd, found
+        assert abs(mean - ml) < 0.25 * sd, found
 
 
 def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_path):
