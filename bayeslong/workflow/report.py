@@ -78,7 +78,9 @@ class _Doc:
         import matplotlib.pyplot as plt
 
         buf = io.BytesIO()
-        fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
+        # a figure with a layout engine fits its canvas already; "tight" would draw it twice
+        tight = None if fig.get_layout_engine() is not None else "tight"
+        fig.savefig(buf, format="png", dpi=110, bbox_inches=tight)
         plt.close(fig)
         self.blocks.append(_Block("figure", figure=buf.getvalue(), name=name, text=caption))
 

@@ -8,6 +8,8 @@ them while the study and the data are unchanged (the content hashes of
 
 from __future__ import annotations
 
+import atexit
+import contextlib
 import dataclasses
 import json
 import sys
@@ -144,7 +146,6 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     leave-future-out refit, which reuses the model compiled there. Steps whose module is not installed, or that fail, are recorded as "not run"
     with the reason instead of stopping the run; convergence problems are recorded per model.
     """
-    import contextlib
     import datetime
 
     say = progress or (lambda message: None)
@@ -216,9 +217,11 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
             fitted += did_fit == "fitted"
             reused += did_fit == "reused"
             models.append(result)
-    finally:
+    except BaseException:  # an interrupted run leaves no worker busy with its fits
         if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
+            _drop_pool(pool)
+        raise
+    finally:
         stack.close()
     fits_s = time.perf_counter() - t_fits
     if reused:
@@ -300,10 +303,32 @@ def _worker_count(asked: int, n_jobs: int) -> int:
     return max(1, min(asked or default_workers(), n_jobs))
 
 
+#: Worker pools by size, kept for the next study run in this process (``bayeslong demo``
+#: runs two studies): their workers have imported the libraries and loaded the compiled
+#: kernel already, which a new pool's workers spend seconds on.
+_POOLS: dict = {}
+
+
 def _pool(workers: int):
     from bayeslong.infer.batch import default_executor
 
-    return default_executor(workers)
+    pool = _POOLS.get(workers)
+    if pool is None or pool._broken or pool._shutdown_thread:  # a dead pool is replaced
+        pool = _POOLS[workers] = default_executor(workers)
+        if len(_POOLS) == 1:
+            atexit.register(_close_pools)
+    return pool
+
+
+def _drop_pool(pool) -> None:
+    pool.shutdown(wait=True, cancel_futures=True)
+    for k in [k for k, v in _POOLS.items() if v is pool]:
+        del _POOLS[k]
+
+
+def _close_pools() -> None:
+    for pool in list(_POOLS.values()):
+        _drop_pool(pool)
 
 
 def _future_kwargs(study, panel, fits_dir: Path) -> dict | None:

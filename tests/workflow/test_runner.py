@@ -112,3 +112,22 @@ def test_a_maximum_likelihood_run_finds_by_aic_with_a_wald_interval(tmp_path, ca
     assert "90% Wald interval" in " ".join(f["text"])
     page = (tmp_path / "out" / "report.html").read_text()
     assert "fitted by maximum likelihood only" in page and "(Akaike 1974)" in page
+
+
+def test_a_second_study_in_one_process_reuses_the_worker_pool():
+    # `bayeslong demo` runs two studies; the second must find the first one's workers, which
+    # have imported the libraries and loaded the compiled kernel, instead of starting new ones
+    import os
+
+    from bayeslong.workflow import runner
+
+    first = runner._pool(2)
+    before = {first.submit(os.getpid).result() for _ in range(6)}
+    assert runner._pool(2) is first
+    after = {runner._pool(2).submit(os.getpid).result() for _ in range(6)}
+    assert after <= set(first._processes) and before <= set(first._processes)
+    runner._drop_pool(first)  # an interrupted run drops its pool ...
+    second = runner._pool(2)
+    assert second is not first and not first._processes  # ... and the next run gets a new one
+    runner._drop_pool(second)
+    assert runner._POOLS == {}
