@@ -8,13 +8,22 @@ is clean when it has no divergent transition, R-hat < 1.01 and bulk and tail ESS
 for every parameter (the thresholds ``Fit.diagnostics`` flags at 4 chains).
 
 Command:  cd /work/main && PYTHONPATH=. .venv/bin/python bench/boundary.py [--panels 20]
+          [--no-lfo | --lfo-only]
 Prints:   the load before and after, one line per panel (divergences, worst R-hat, lowest
           bulk and tail ESS and the parameter, and whether the leave-future-out refit was
-          clean), then the counts of clean fits and clean refits.
+          clean), then the counts of clean fits and clean refits. ``--lfo-only`` skips the
+          full fits and prints, per refit, why it was flagged (divergences, R-hat, ESS and
+          which parameters), what the first run at the default target acceptance failed
+          when it was re-run, and where the divergent transitions sit (the median of the
+          divergent draws of the lag and the variances beside the posterior median).
+          ``--pool-residuals TAU``, ``--gamma-sds``, ``--draws`` and ``--rerun-draws`` are
+          probes of that mode, not defaults (docs/engine.md, "Leave-future-out refits on four
+          waves"); ``--whole`` makes the same fits on all waves.
 """
 
 import argparse
 import os
+import re
 import sys
 import time
 import warnings
@@ -56,11 +65,155 @@ def verdict(diag) -> tuple[bool, str]:
     return clean, text
 
 
+LOCATED = ("lag", "level_var", "slope_var", "initial_level_cov")
+
+
+def causes(diag) -> str:
+    """Why a diagnostics table is flagged: divergences, then the parameters of each check."""
+    parts = []
+    if diag.attrs.get("divergences", 0):
+        parts.append(f"{diag.attrs['divergences']} div")
+    for column, bad, label in (("r_hat", lambda v: not v < 1.01, "R-hat"),
+                               ("ess_bulk", lambda v: not v > 400, "bulk"),
+                               ("ess_tail", lambda v: not v > 400, "tail")):
+        names = [n for n, v in diag[column].items() if bad(v)]
+        if names:
+            parts.append(f"{label}: " + ",".join(names))
+    return "; ".join(parts) or "-"
+
+
+def where_divergent(f) -> str:
+    """Median of the divergent draws against the posterior median (lag and the variances)."""
+    div = np.asarray(f.idata.sample_stats["diverging"]).astype(bool)
+    if not div.any():
+        return ""
+    post = f.idata.posterior
+    names = list(LOCATED) + [n for n in f.structure.names if n.startswith("resid_var")]
+    cells = []
+    for n in names:
+        v = np.asarray(post[n])
+        cells.append(f"{n} {np.median(v[div]):.3g} ({np.median(v):.3g})")
+    return "divergent draws at median (posterior median): " + ", ".join(cells)
+
+
+def pool_residuals(tau: float) -> None:
+    """Probe: partial pooling of the per-wave residual variances, added to the PyMC model.
+
+    Adds log p += -1/2 sum_t (l_t - mean(l))^2 / tau^2 with l_t = log SD of resid_var[t]
+    (the residual log-SDs shrunk towards their common value; a factor <= 1 on the default
+    priors, so the prior stays proper). The generic kernel has no such term, so fits run on
+    the PyMC model (sampler "nutpie"). Not a default of the package (docs/engine.md).
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    import bayeslong.infer.pymc_model as pymc_model
+
+    build = pymc_model.build_model
+
+    def pooled(spec, panel, priors=None):
+        model = build(spec, panel, priors)
+        names = [n for n in model.named_vars if n.startswith("resid_var[") and "__" not in n]
+        with model:
+            logsd = pt.stack([0.5 * pt.log(model[n]) for n in names])
+            pm.Potential("residual_pooling",
+                         -0.5 * pt.sum((logsd - pt.mean(logsd)) ** 2) / tau ** 2)
+        return model
+
+    pymc_model.build_model = pooled
+
+
+def gamma_sds(spec, panel, person_only: bool = False) -> dict:
+    """Probe: Gamma(2, rate) on variances' SDs, with the mean of the default HalfNormal(s).
+
+    HalfNormal(s) has mean s sqrt(2/pi); Gamma(2, 2 / (s sqrt(2/pi))) has the same mean and
+    density zero at SD 0 (a boundary-avoiding prior: Chung, Rabe-Hesketh, Dorie, Gelman &
+    Liu 2013, Psychometrika 78(4), 685-709).
+    """
+    from bayeslong.model.structure import structure_for
+
+    s = panel.summary_scale()["y"]["sd"]
+    prior = ("gamma", 2.0, 2.0 / (s * np.sqrt(2.0 / np.pi)))
+    person = ("level_var", "slope_var", "initial_var")
+    return {n: prior for n in structure_for(spec, panel).names
+            if n in person or (not person_only and n.startswith("resid_var"))}
+
+
+def refits_only(panels: int, pool: float | None = None, draws: int = 1000,
+                rerun_draws: int | None = None, whole: bool = False,
+                gamma: str | None = None) -> None:
+    """The leave-future-out refits alone: the same fit ``forecast_score`` makes.
+
+    With residual variances free over waves the T-wave model with wave T hidden is not the
+    (T-1)-wave model (a wave-T-only parameter), so ``forecast_score`` fits ``panel.head(T-1)``
+    with the default priors, seed and settings: ``bl.fit(spec, panel.head(4))`` here.
+    """
+    print("command: PYTHONPATH=. .venv/bin/python bench/boundary.py " + " ".join(sys.argv[1:]))
+    print(f"before: load average {os.getloadavg()}", flush=True)
+    kwargs = {"draws": draws}
+    if pool is not None:
+        pool_residuals(pool)
+        kwargs["sampler"] = "nutpie"
+    t0 = time.perf_counter()
+    clean = reruns = 0
+    for seed in range(1, panels + 1):
+        spec, panel = panel_for(seed)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            data = panel if whole else panel.head(panel.n_waves - 1)
+            if gamma:
+                kwargs["priors"] = gamma_sds(spec, data, person_only=gamma == "person")
+            f = bl.fit(spec, data, progressbar=False, **kwargs)
+            if rerun_draws and f.rerun:  # as if the careful re-run took rerun_draws draws
+                rerun = f.rerun
+                f = bl.fit(spec, data, progressbar=False, target_accept=0.95,
+                           **{**kwargs, "draws": rerun_draws})
+                f.idata.posterior.attrs["bayeslong_rerun"] = rerun
+        diag = f.diagnostics()
+        ok, text = verdict(diag)
+        clean += ok
+        reruns += bool(f.rerun)
+        first = ""
+        if f.rerun:
+            m = re.search(r"checks \((.*)\); sampled again", f.rerun)
+            first = m.group(1) if m else f.rerun
+            first = re.sub(r"(r_hat|ess_bulk|ess_tail) [0-9.]+ [<>=]+ [0-9.]+", r"\1", first)
+        print(f"{'fit' if whole else 'refit'} {seed:2d} [target_accept {f.target_accept}, "
+              f"{f.idata.posterior.sizes['draw']} draws]: "
+              f"{'clean  ' if ok else 'FLAGGED'} {text}\n    cause: {causes(diag)}"
+              + (f"\n    first run at 0.8: {first}" if first else "")
+              + (f"\n    {where_divergent(f)}" if diag.attrs.get("divergences", 0) else ""),
+              flush=True)
+    what = "fits of all waves" if whole else "leave-future-out refits"
+    print(f"clean {what}: {clean} of {panels} ({reruns} sampled again at the careful target "
+          "acceptance)")
+    print(f"wall {time.perf_counter() - t0:.0f} s; after: load average {os.getloadavg()}")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--panels", type=int, default=20)
     ap.add_argument("--no-lfo", action="store_true", help="skip the leave-future-out refits")
+    ap.add_argument("--lfo-only", action="store_true",
+                    help="only the leave-future-out refits, with the cause of each flag")
+    ap.add_argument("--pool-residuals", type=float, default=None, metavar="TAU",
+                    help="probe, not a default: shrink the residual log-SDs towards their "
+                         "mean with scale TAU (PyMC model, sampler 'nutpie'); --lfo-only only")
+    ap.add_argument("--draws", type=int, default=1000, help="draws per chain (--lfo-only only)")
+    ap.add_argument("--rerun-draws", type=int, default=None, metavar="N",
+                    help="probe: a fit that the default sampler re-ran is sampled again at "
+                         "target_accept 0.95 with N draws per chain, and that run kept "
+                         "(--lfo-only only)")
+    ap.add_argument("--gamma-sds", choices=("all", "person"), default=None,
+                    help="probe: Gamma(2, 2 / (s sqrt(2/pi))) on the SD of every variance "
+                         "(all) or of level, slope and first-wave variances (person), by prior "
+                         "overrides (--lfo-only only)")
+    ap.add_argument("--whole", action="store_true",
+                    help="with --lfo-only: fit all waves instead (the probes on full fits)")
     args = ap.parse_args()
+    if args.lfo_only:
+        return refits_only(args.panels, pool=args.pool_residuals, draws=args.draws,
+                           rerun_draws=args.rerun_draws, whole=args.whole, gamma=args.gamma_sds)
     print("command: PYTHONPATH=. .venv/bin/python bench/boundary.py " + " ".join(sys.argv[1:]))
     print(f"before: load average {os.getloadavg()}", flush=True)
     t0 = time.perf_counter()
