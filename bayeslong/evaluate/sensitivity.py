@@ -49,13 +49,18 @@ import pandas as pd
 
 from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
-from bayeslong.evaluate.checks import check_fit
+# log_prior_draws and power_scaling are re-exported: they were this module's public names
+from bayeslong.evaluate.power_scaling import (  # noqa: F401
+    PSENS_THRESHOLD,
+    power_scaling_summary,
+    log_prior_draws,
+    power_scaling,
+)
 from bayeslong.infer.batch import (
     BatchResult,
     SerialExecutor,
     Task,
     TaskResult,
-    fit_defaults,
     run_many,
     summarise_draws,
 )
@@ -68,10 +73,6 @@ LAG_PRIORS = (("normal", 0.0, 0.1), ("normal", 0.0, 0.5), ("normal", 0.5, 0.2),
 
 #: Default factors applied to the scale of every standard-deviation prior.
 VARIANCE_SCALES = (0.5, 2.0)
-
-#: Power-scaling sensitivity at or above this value is flagged (Kallioinen et al. 2024,
-#: section 4: the threshold they use and recommend as a rule of thumb).
-PSENS_THRESHOLD = 0.05
 
 #: Default SDs of the per-wave deviations' prior for the deviation-SD axis (approximate
 #: invariance): a tenth, twice and five times the default 0.05 (model/spec.py, DEVIATION_SD),
@@ -180,184 +181,6 @@ def _prior_names(spec: Spec, panel) -> tuple[str, ...]:
 
         return tuple(categorical_structure(spec, panel).names)
     return tuple(structure_for(spec, panel).names)
-
-
-def log_prior_draws(fit) -> np.ndarray:
-    """Log prior density of each posterior draw, shape (chains, draws).
-
-    Used when ``fit.idata`` has no ``log_prior`` group. The density is that of the fit's
-    own prior set, in the variables the priors are placed on: each ``value`` prior at the
-    parameter, each variance's prior at its standard deviation, and each covariance
-    block's LKJ(eta) correlation prior through its kernel (eta - 1) log det C
-    (Lewandowski, Kurowicka & Joe 2009, eq. 16). Densities come from the PyMC
-    distributions of :func:`bayeslong.priors.family_dist`; constants do not matter because
-    power-scaling weights are normalised.
-
-    A categorical fit (``fit.categorical``) has the whole prior of its model: the prior set
-    without the parameters the categorical model fixes (they have none), plus each
-    threshold's gap prior at the gap to the threshold below it
-    (:func:`bayeslong.infer.categorical.gap_log_prior_terms`, the same gaps the model is
-    built from).
-
-    Raises
-    ------
-    SpecError
-        A prior was given as a PyMC factory (its density is not known here).
-    """
-    import pymc as pm
-
-    from bayeslong.infer.priors import family_dist
-
-    prior_set = _prior_set_of(fit)
-    structure = fit.structure
-    post = fit.idata.posterior
-    shape = (post.sizes["chain"], post.sizes["draw"])
-    theta = fit.theta_draws()  # (S, P)
-    cat = getattr(fit, "categorical", None)
-    pinned = cat.pinned if cat is not None else {}
-    terms = []
-    for i, p in enumerate(prior_set.priors):
-        if structure.names[i] in pinned:  # fixed by the categorical model: no prior
-            continue
-        if p.family == "callable":
-            raise SpecError(f"the prior of {p.parameter!r} is a PyMC factory, whose density is not "
-                            "known outside the model; power-scaling needs (family, *args) priors "
-                            "or a log_prior group in fit.idata")
-        if p.target == "correlation":
-            continue
-        x = theta[:, i] if p.target == "value" else np.sqrt(np.clip(theta[:, i], 0.0, None))
-        cls, kwargs = family_dist(p.family, p.args)
-        terms.append(pm.logp(cls.dist(**kwargs), x))
-    if cat is not None:
-        from bayeslong.infer.categorical import gap_log_prior_terms
-
-        terms += gap_log_prior_terms(cat, fit.gaps, post)
-    # one graph, one compile for all terms
-    total = np.asarray(pm.math.sum(pm.math.stack(terms), axis=0).eval(), dtype=float) if terms \
-        else np.zeros(theta.shape[0])
-    for b in prior_set.blocks:
-        idx = structure.blocks[b].index
-        S = theta[:, idx]  # (S, q, q) covariance of the block at each draw
-        sd = np.sqrt(np.einsum("sii->si", S))
-        C = S / (sd[:, :, None] * sd[:, None, :])
-        total += (prior_set.lkj_eta(b) - 1.0) * np.linalg.slogdet(C)[1]
-    return total.reshape(shape)
-
-
-def _prior_set_of(fit):
-    for attr in ("prior_set", "_prior_set"):
-        ps = getattr(fit, attr, None)
-        if ps is not None and hasattr(ps, "priors"):
-            return ps
-    from bayeslong.infer.priors import resolve_priors
-
-    user = getattr(fit, "user_priors", None)
-    return resolve_priors(fit.structure, fit.panel, user if isinstance(user, dict) else None)
-
-
-def power_scaling(fit, *, delta: float = 0.01) -> pd.DataFrame:
-    """Prior and likelihood power-scaling sensitivity of every parameter of a fit.
-
-    Parameters
-    ----------
-    fit : Fit
-        Needs ``idata.posterior`` (one variable per parameter) and the per-unit
-        ``log_likelihood``; the log prior comes from a ``log_prior`` group when present,
-        else from :func:`log_prior_draws`.
-    delta : float, default 0.01
-        The power is varied to 1/(1+delta) and 1+delta.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Index: parameter. Columns ``prior`` and ``likelihood`` (the sensitivities),
-        ``diagnosis``: ``prior-data conflict`` when both reach 0.05, ``strong prior / weak
-        likelihood`` when only the prior does, else empty.
-
-    Notes
-    -----
-    The sensitivity is the derivative, by finite differences in log2(alpha), of the
-    cumulative Jensen-Shannon distance between the posterior and the posterior with the
-    prior (or likelihood) raised to the power alpha, the latter approximated by Pareto
-    smoothed importance weights w ∝ p^(alpha - 1) (Kallioinen et al. 2024, sections 2-3).
-    Computed by :func:`arviz.psens` on the whole prior and the whole likelihood (ArviZ
-    0.23's ``psens`` ignores its ``coords`` and ``component_coords`` arguments, so they
-    are not used here; the tests check its numbers against a re-implementation).
-
-    A categorical fit stores the per-unit marginal log-likelihood on at most
-    ``loglik_draws`` draws, thinned evenly within each chain (``attrs["thin"]`` of its
-    log-likelihood group; infer/categorical.py). Its sensitivities are computed on exactly
-    those draws, the posterior restricted to them, with the whole prior of the fit: the
-    structure's priors and the thresholds' gap priors (:func:`log_prior_draws`). Its rows
-    are the estimated parameters and the thresholds (``categorical.names``); the number of
-    draws used is ``attrs["draws"]`` of the table.
-    """
-    import arviz as az
-    import xarray as xr
-
-    check_fit(fit, "power_scaling", needs=("structure", "idata"))
-    idata = fit.idata
-    names = _estimated(fit)
-    if "log_prior" in idata.groups():
-        data = idata
-    else:
-        post = idata.posterior
-        lp = xr.Dataset({"prior": (("chain", "draw"), log_prior_draws(fit))},
-                        coords={"chain": post["chain"], "draw": post["draw"]})
-        ll = idata.log_likelihood
-        if ll.sizes["draw"] != post.sizes["draw"]:  # a categorical fit's thinned draws
-            post, lp = post.sel(draw=ll["draw"].values), lp.sel(draw=ll["draw"].values)
-        data = az.InferenceData(posterior=post[names], log_likelihood=ll, log_prior=lp)
-    def values(result) -> list[float]:
-        # one variable comes back as a DataArray, several as a Dataset
-        if isinstance(result, xr.DataArray):
-            return [float(result)]
-        return [float(result[n]) for n in names]
-
-    prior = values(az.psens(data, component="prior", var_names=names, delta=delta))
-    like = values(az.psens(data, component="likelihood", var_names=names, delta=delta))
-    table = pd.DataFrame({"prior": prior, "likelihood": like}, index=names)
-    table.index.name = "parameter"
-    table.attrs["draws"] = int(data.posterior.sizes["chain"] * data.posterior.sizes["draw"])
-    p, lk = table["prior"] >= PSENS_THRESHOLD, table["likelihood"] >= PSENS_THRESHOLD
-    table["diagnosis"] = np.where(p & lk, "prior-data conflict",
-                                  np.where(p, "strong prior / weak likelihood", ""))
-    return table
-
-
-def _estimated(fit) -> list[str]:
-    """The fit's estimated parameters in its posterior: every structure parameter, or for a
-    categorical fit those it does not fix and its thresholds (``categorical.names``)."""
-    cat = getattr(fit, "categorical", None)
-    names = cat.names if cat is not None else fit.structure.names
-    return [n for n in names if n in fit.idata.posterior]
-
-
-def fit_with_power_scaling(spec, panel, *, delta: float = 0.01, **fit_kwargs) -> dict:
-    """Fit, then summarise every parameter with its power-scaling sensitivities (a batch task).
-
-    Returns ``{"summary": table, "info": info}`` as :func:`bayeslong.batch.run_task` expects:
-    the posterior summary of :func:`bayeslong.batch.summarise_draws` joined with the
-    ``prior``/``likelihood``/``diagnosis`` columns of :func:`power_scaling`. The fit is
-    :func:`bayeslong.fit`'s, so a panel with categorical variables gets a categorical fit.
-    """
-    from bayeslong.infer.fitting import fit as fit_fn
-
-    fit_defaults(fit_fn, fit_kwargs)
-    return _power_scaling_summary(fit_fn(spec, panel, **fit_kwargs), delta=delta)
-
-
-def _power_scaling_summary(fit, *, delta: float = 0.01) -> dict:
-    """Posterior summary of every parameter of ``fit`` joined with its power-scaling columns."""
-    table, info = summarise_draws(fit.idata, _estimated(fit))
-    try:
-        ps = power_scaling(fit, delta=delta)
-        table = table.join(ps.rename(columns={"prior": "psens_prior",
-                                              "likelihood": "psens_likelihood"}))
-        info["power_scaling_draws"] = ps.attrs["draws"]
-    except SpecError as err:
-        info["power_scaling"] = str(err)
-    return {"summary": table, "info": info}
 
 
 # --- the sensitivity table -------------------------------------------------------------------
@@ -556,7 +379,7 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
             kind = "fit"
             kwargs = {**fit_kwargs, **({"priors": priors} if priors else {})}
             if key == "default" and power_scaling:
-                kind = "bayeslong.evaluate.sensitivity:fit_with_power_scaling"
+                kind = "bayeslong.evaluate.power_scaling:fit_with_power_scaling"
             tasks[key] = Task(name=key, spec=spec, panel=panel, kind=kind, kwargs=kwargs,
                               params=None if kind != "fit" else
                               (lag_parameter(spec, panel.outcomes),))
@@ -728,7 +551,7 @@ def _result_of_fit(task: Task, fit) -> TaskResult:
         if task.kind == "fit":
             table, info = summarise_draws(fit.idata, task.params)
         else:  # the default setting with power-scaling: as fit_with_power_scaling gives it
-            out = _power_scaling_summary(fit)
+            out = power_scaling_summary(fit)
             table, info = out["summary"], out["info"]
     seen = warning_texts(caught)
     return TaskResult(name=task.name, status="ok", seconds=0.0, summary=table,

@@ -594,12 +594,8 @@ def _section_sensitivity(doc: _Doc, results) -> None:
                        "(red: flagged; dashed: the default fit's mean; dotted: zero)")
         except Exception as err:  # the table is already shown; say why the plot is not
             doc.para(f"The sensitivity plot could not be drawn ({err}).", "warn")
-    ps = getattr(value, "power_scaling", None)
-    if ps is not None and len(ps) and getattr(getattr(results, "panel", None), "categories", None) \
-            and "draws" in ps.attrs:  # docs/comparison.md, "Lag sensitivity with categorical variables"
-        doc.para(f"Power-scaling of the default fit is computed on its {ps.attrs['draws']} draws "
-                 "that carry the marginal log-likelihood (loglik_draws, thinned evenly within "
-                 "each chain), not on every draw.", "note")
+    if getattr(getattr(results, "panel", None), "categories", None):
+        category_report.add_power_scaling_note(doc, value)
     for axis, why in (getattr(value, "skipped", None) or {}).items():
         doc.para(f"Axis '{axis}' {why}.", "note")
     failed = getattr(value, "failed", None)
