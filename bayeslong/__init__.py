@@ -33,7 +33,7 @@ _LAZY = {
     "explain_comparison": "evaluate.comparison", "forecast_score": "evaluate.comparison",
     "pareto_k": "evaluate.comparison",
     "LagSensitivity": "evaluate.sensitivity", "lag_sensitivity": "evaluate.sensitivity",
-    "power_scaling": "evaluate.sensitivity", "plan": "evaluate.planning",
+    "power_scaling": "evaluate.power_scaling", "plan": "evaluate.planning",
     "ppc": "evaluate.checks", "replicate": "evaluate.checks", "trajectories": "evaluate.checks",
     "plot_compare": "evaluate.plots", "plot_ppc": "evaluate.plots",
     "plot_trajectories": "evaluate.plots", "plot_latent_scores": "evaluate.plots",

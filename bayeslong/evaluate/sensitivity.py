@@ -19,9 +19,12 @@ carry-over effect) for each setting:
 :func:`plan` simulates replications of a design at several sample sizes and reports how
 well the lag is recovered (bias, posterior SD, interval coverage, power).
 
-On a panel with categorical variables every refit is a categorical fit (``bl.fit``), and
-only the prior and first-wave axes of the first model run; :data:`CATEGORICAL_SKIPS` says
-why the others do not (docs/comparison.md, "Lag sensitivity with categorical variables").
+On a panel with categorical variables every refit is a categorical fit (``bl.fit``); the
+specification axis fits only the models that the categories identify (:func:`bayeslong.identify`;
+the others are skipped with its reason, :data:`CATEGORICAL_SKIPS`), the first-wave axis
+refits the first model only, and power-scaling is computed on the draws that carry the
+marginal log-likelihood (:func:`power_scaling`; docs/comparison.md, "Lag sensitivity with
+categorical variables").
 
 Fits run through :func:`bayeslong.batch.run_many`: in this process by default for
 :func:`lag_sensitivity` (refits of one structure reuse its compiled model), in a local
@@ -46,13 +49,18 @@ import pandas as pd
 
 from bayeslong.data.panel import check_panel
 from bayeslong.errors import SpecError
-from bayeslong.evaluate.checks import check_fit
+# log_prior_draws and power_scaling are re-exported: they were this module's public names
+from bayeslong.evaluate.power_scaling import (  # noqa: F401
+    PSENS_THRESHOLD,
+    power_scaling_summary,
+    log_prior_draws,
+    power_scaling,
+)
 from bayeslong.infer.batch import (
     BatchResult,
     SerialExecutor,
     Task,
     TaskResult,
-    fit_defaults,
     run_many,
     summarise_draws,
 )
@@ -66,26 +74,18 @@ LAG_PRIORS = (("normal", 0.0, 0.1), ("normal", 0.0, 0.5), ("normal", 0.5, 0.2),
 #: Default factors applied to the scale of every standard-deviation prior.
 VARIANCE_SCALES = (0.5, 2.0)
 
-#: Power-scaling sensitivity at or above this value is flagged (Kallioinen et al. 2024,
-#: section 4: the threshold they use and recommend as a rule of thumb).
-PSENS_THRESHOLD = 0.05
-
 #: Default SDs of the per-wave deviations' prior for the deviation-SD axis (approximate
 #: invariance): a tenth, twice and five times the default 0.05 (model/spec.py, DEVIATION_SD),
 #: and 1, which leaves loadings and intercepts nearly free by wave.
 DEVIATION_SDS = (0.005, 0.1, 0.25, 1.0)
 
-#: Why an axis is not run on a panel with categorical variables (docs/comparison.md).
+#: Why a setting is not run on a panel with categorical variables (docs/comparison.md, "Lag
+#: sensitivity with categorical variables"): a model of the specification axis that the
+#: categories do not identify (:func:`bayeslong.identify`) is not fitted.
 CATEGORICAL_SKIPS = {
-    "specification": "not run with categorical variables: which catalog models the categories "
-                     "identify, and which disturbance variances each must fix, is not checked "
-                     "model by model yet (docs/model-family.md, 'Identification'); only the "
-                     "first model was refitted. Fit other models with bl.fit and compare them "
-                     "by LOO instead",
-    "power-scaling": "not run with categorical variables: a categorical fit stores the "
-                     "marginal log-likelihood on a thinned subset of its draws (loglik_draws) "
-                     "and the thresholds' gap priors lie outside its prior set, so neither "
-                     "power-scaled weight can be formed for every draw",
+    "specification": "not run for model '{model}': it is not identified with these categorical "
+                     "variables (bl.identify: rank {rank} of {n_params} parameters; not "
+                     "separable: {deficient}). {advice}",
 }
 
 #: Axes of the sensitivity table, in display order.
@@ -173,157 +173,14 @@ def _prior_set_for(spec: Spec, panel, priors: dict | None):
 
 
 def _prior_names(spec: Spec, panel) -> tuple[str, ...]:
-    """Names a prior override may give for ``spec`` on ``panel`` (thresholds included)."""
-    names = tuple(structure_for(spec, panel).names)
+    """Names a prior override may give for ``spec`` on ``panel``: with categorical variables
+    the parameters the categorical model estimates and its thresholds, not those it fixes
+    (``categorical.names``; the categorical fit refuses a prior for a fixed parameter)."""
     if _has_categories(panel):
         from bayeslong.model.thresholds import categorical_structure
 
-        names += tuple(categorical_structure(spec, panel).thresholds)
-    return names
-
-
-def log_prior_draws(fit) -> np.ndarray:
-    """Log prior density of each posterior draw, shape (chains, draws).
-
-    Used when ``fit.idata`` has no ``log_prior`` group. The density is that of the fit's
-    own prior set, in the variables the priors are placed on: each ``value`` prior at the
-    parameter, each variance's prior at its standard deviation, and each covariance
-    block's LKJ(eta) correlation prior through its kernel (eta - 1) log det C
-    (Lewandowski, Kurowicka & Joe 2009, eq. 16). Densities come from the PyMC
-    distributions of :func:`bayeslong.priors.family_dist`; constants do not matter because
-    power-scaling weights are normalised.
-
-    Raises
-    ------
-    SpecError
-        A prior was given as a PyMC factory (its density is not known here).
-    """
-    import pymc as pm
-
-    from bayeslong.infer.priors import family_dist
-
-    prior_set = _prior_set_of(fit)
-    structure = fit.structure
-    post = fit.idata.posterior
-    shape = (post.sizes["chain"], post.sizes["draw"])
-    theta = fit.theta_draws()  # (S, P)
-    terms = []
-    for i, p in enumerate(prior_set.priors):
-        if p.family == "callable":
-            raise SpecError(f"the prior of {p.parameter!r} is a PyMC factory, whose density is not "
-                            "known outside the model; power-scaling needs (family, *args) priors "
-                            "or a log_prior group in fit.idata")
-        if p.target == "correlation":
-            continue
-        x = theta[:, i] if p.target == "value" else np.sqrt(np.clip(theta[:, i], 0.0, None))
-        cls, kwargs = family_dist(p.family, p.args)
-        terms.append(pm.logp(cls.dist(**kwargs), x))
-    # one graph, one compile for all terms
-    total = np.asarray(pm.math.sum(pm.math.stack(terms), axis=0).eval(), dtype=float) if terms \
-        else np.zeros(theta.shape[0])
-    for b in prior_set.blocks:
-        idx = structure.blocks[b].index
-        S = theta[:, idx]  # (S, q, q) covariance of the block at each draw
-        sd = np.sqrt(np.einsum("sii->si", S))
-        C = S / (sd[:, :, None] * sd[:, None, :])
-        total += (prior_set.lkj_eta(b) - 1.0) * np.linalg.slogdet(C)[1]
-    return total.reshape(shape)
-
-
-def _prior_set_of(fit):
-    for attr in ("prior_set", "_prior_set"):
-        ps = getattr(fit, attr, None)
-        if ps is not None and hasattr(ps, "priors"):
-            return ps
-    from bayeslong.infer.priors import resolve_priors
-
-    user = getattr(fit, "user_priors", None)
-    return resolve_priors(fit.structure, fit.panel, user if isinstance(user, dict) else None)
-
-
-def power_scaling(fit, *, delta: float = 0.01) -> pd.DataFrame:
-    """Prior and likelihood power-scaling sensitivity of every parameter of a fit.
-
-    Parameters
-    ----------
-    fit : Fit
-        Needs ``idata.posterior`` (one variable per parameter) and the per-unit
-        ``log_likelihood``; the log prior comes from a ``log_prior`` group when present,
-        else from :func:`log_prior_draws`.
-    delta : float, default 0.01
-        The power is varied to 1/(1+delta) and 1+delta.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Index: parameter. Columns ``prior`` and ``likelihood`` (the sensitivities),
-        ``diagnosis``: ``prior-data conflict`` when both reach 0.05, ``strong prior / weak
-        likelihood`` when only the prior does, else empty.
-
-    Notes
-    -----
-    The sensitivity is the derivative, by finite differences in log2(alpha), of the
-    cumulative Jensen-Shannon distance between the posterior and the posterior with the
-    prior (or likelihood) raised to the power alpha, the latter approximated by Pareto
-    smoothed importance weights w ∝ p^(alpha - 1) (Kallioinen et al. 2024, sections 2-3).
-    Computed by :func:`arviz.psens` on the whole prior and the whole likelihood (ArviZ
-    0.23's ``psens`` ignores its ``coords`` and ``component_coords`` arguments, so they
-    are not used here; the tests check its numbers against a re-implementation).
-    """
-    import arviz as az
-    import xarray as xr
-
-    check_fit(fit, "power_scaling", needs=("structure", "idata"))
-    idata = fit.idata
-    names = [n for n in fit.structure.names if n in idata.posterior]
-    if "log_prior" in idata.groups():
-        data = idata
-    else:
-        post = idata.posterior
-        lp = xr.Dataset({"prior": (("chain", "draw"), log_prior_draws(fit))},
-                        coords={"chain": post["chain"], "draw": post["draw"]})
-        data = az.InferenceData(posterior=post[names], log_likelihood=idata.log_likelihood,
-                                log_prior=lp)
-    def values(result) -> list[float]:
-        # one variable comes back as a DataArray, several as a Dataset
-        if isinstance(result, xr.DataArray):
-            return [float(result)]
-        return [float(result[n]) for n in names]
-
-    prior = values(az.psens(data, component="prior", var_names=names, delta=delta))
-    like = values(az.psens(data, component="likelihood", var_names=names, delta=delta))
-    table = pd.DataFrame({"prior": prior, "likelihood": like}, index=names)
-    table.index.name = "parameter"
-    p, lk = table["prior"] >= PSENS_THRESHOLD, table["likelihood"] >= PSENS_THRESHOLD
-    table["diagnosis"] = np.where(p & lk, "prior-data conflict",
-                                  np.where(p, "strong prior / weak likelihood", ""))
-    return table
-
-
-def fit_with_power_scaling(spec, panel, *, delta: float = 0.01, **fit_kwargs) -> dict:
-    """Fit, then summarise every parameter with its power-scaling sensitivities (a batch task).
-
-    Returns ``{"summary": table, "info": info}`` as :func:`bayeslong.batch.run_task` expects:
-    the posterior summary of :func:`bayeslong.batch.summarise_draws` joined with the
-    ``prior``/``likelihood``/``diagnosis`` columns of :func:`power_scaling`.
-    """
-    from bayeslong.infer.sampling import fit as fit_fn
-
-    fit_defaults(fit_fn, fit_kwargs)
-    return _power_scaling_summary(fit_fn(spec, panel, **fit_kwargs), delta=delta)
-
-
-def _power_scaling_summary(fit, *, delta: float = 0.01) -> dict:
-    """Posterior summary of every parameter of ``fit`` joined with its power-scaling columns."""
-    table, info = summarise_draws(fit.idata, [n for n in fit.structure.names
-                                              if n in fit.idata.posterior])
-    try:
-        ps = power_scaling(fit, delta=delta)
-        table = table.join(ps.rename(columns={"prior": "psens_prior",
-                                              "likelihood": "psens_likelihood"}))
-    except SpecError as err:
-        info["power_scaling"] = str(err)
-    return {"summary": table, "info": info}
+        return tuple(categorical_structure(spec, panel).names)
+    return tuple(structure_for(spec, panel).names)
 
 
 # --- the sensitivity table -------------------------------------------------------------------
@@ -353,7 +210,9 @@ class LagSensitivity:
         Settings (task names) read from fits given to :func:`lag_sensitivity` instead of
         refitted.
     skipped : dict
-        Axes asked for but not run, with the reason (panels with categorical variables).
+        Settings asked for but not run, with the reason: on a panel with categorical
+        variables, ``"specification: <model>"`` for each model the categories do not
+        identify.
     """
 
     table: pd.DataFrame
@@ -462,9 +321,15 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
 
     Notes
     -----
-    With categorical variables in ``panel`` only the first model is refitted, along the
-    prior and first-wave axes; ``specification`` (when several models are given) and
-    ``power_scaling`` are recorded in ``.skipped`` with the reason instead of run.
+    With categorical variables in ``panel`` every fit is a categorical fit. The
+    specification axis first checks each model after the first with :func:`bayeslong.identify`
+    on the panel's categories: an identified model is fitted, one that is not is recorded in
+    ``.skipped`` under ``"specification: <model>"`` with identify's reason. The first-wave
+    axis refits the first model only. Power-scaling runs on the draws of the default fit
+    that carry the marginal log-likelihood (at most ``loglik_draws``, thinned evenly;
+    ``.power_scaling.attrs["draws"]``), with the whole prior including the thresholds' gap
+    priors (:func:`power_scaling`). The first model is fitted as given: its identification
+    is the caller's to check (a study checks every candidate before it fits it).
 
     A row is flagged when its 90% interval lies on another side of zero than the default
     fit's (above, below, or across zero), or its mean moves by more than one posterior SD
@@ -493,12 +358,10 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
         lag_of[s.name + "/" + s.options["initial"]] = name
     ref = specs[0]
     skipped = {}
-    if _has_categories(panel):  # docs/comparison.md, "Lag sensitivity with categorical variables"
-        if specification and len(specs) > 1:
-            skipped["specification"] = CATEGORICAL_SKIPS["specification"]
-        if power_scaling:
-            skipped["power-scaling"] = CATEGORICAL_SKIPS["power-scaling"]
-        specs, specification, power_scaling = specs[:1], False, False
+    categorical = _has_categories(panel)
+    if categorical:  # docs/comparison.md, "Lag sensitivity with categorical variables"
+        specs = [ref] + [s for s in specs[1:] if not specification
+                         or _identified_with_categories(s, panel, skipped)]
     grid = LAG_PRIORS if prior_grid is None else (prior_grid or ())
     scales = VARIANCE_SCALES if variance_scales is None else (variance_scales or ())
     base = dict(priors or {})
@@ -516,7 +379,7 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
             kind = "fit"
             kwargs = {**fit_kwargs, **({"priors": priors} if priors else {})}
             if key == "default" and power_scaling:
-                kind = "bayeslong.evaluate.sensitivity:fit_with_power_scaling"
+                kind = "bayeslong.evaluate.power_scaling:fit_with_power_scaling"
             tasks[key] = Task(name=key, spec=spec, panel=panel, kind=kind, kwargs=kwargs,
                               params=None if kind != "fit" else
                               (lag_parameter(spec, panel.outcomes),))
@@ -540,6 +403,8 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
             key = "default" if s is ref else f"model: {s.name} ({s.options['initial']})"
             if specification:
                 add("specification", s.name, s, base_for(s), key)
+            if categorical and s is not ref:  # first wave: the first model only (docs)
+                continue
             if initial and len(s.allowed["initial"]) > 1 and not s.initial_is_level:
                 other = "endogenous" if s.options["initial"] == "predetermined" else "predetermined"
                 add("first wave", s.options["initial"], s, base_for(s), key)
@@ -582,6 +447,8 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     if power_scaling and "psens_prior" in default.summary:
         ps_table = default.summary[["psens_prior", "psens_likelihood", "diagnosis"]].rename(
             columns={"psens_prior": "prior", "psens_likelihood": "likelihood"})
+        if "power_scaling_draws" in default.info:
+            ps_table.attrs["draws"] = default.info["power_scaling_draws"]
         for comp in ("prior", "likelihood"):
             value = float(ps_table.loc[ref_lag, comp])
             out.append({"axis": "power-scaling", "setting": comp, "model": ref.name,
@@ -596,6 +463,20 @@ def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None
     return LagSensitivity(table=table, power_scaling=ps_table, failed=batch.failed,
                           warnings={r.name: r.warnings for r in batch if r.warnings},
                           reference=ref.name, reused=tuple(given), skipped=skipped)
+
+
+def _identified_with_categories(spec: Spec, panel, skipped: dict) -> bool:
+    """Whether ``spec`` is identified with the panel's categorical variables (:func:`bl.identify
+    <bayeslong.model.identification.identify>`); if not, its reason goes into ``skipped``
+    under ``"specification: <model>"`` (:data:`CATEGORICAL_SKIPS`)."""
+    from bayeslong.model.identification import identify
+
+    ident = identify(spec, panel)
+    if not ident.identified:
+        skipped[f"specification: {spec.name}"] = CATEGORICAL_SKIPS["specification"].format(
+            model=spec.name, rank=ident.rank, n_params=ident.n_params,
+            deficient=", ".join(ident.deficient), advice=ident.advice).rstrip(" .")
+    return ident.identified
 
 
 def _deviation_grid(spec: Spec, panel, given) -> tuple[float, ...]:
@@ -670,7 +551,7 @@ def _result_of_fit(task: Task, fit) -> TaskResult:
         if task.kind == "fit":
             table, info = summarise_draws(fit.idata, task.params)
         else:  # the default setting with power-scaling: as fit_with_power_scaling gives it
-            out = _power_scaling_summary(fit)
+            out = power_scaling_summary(fit)
             table, info = out["summary"], out["info"]
     seen = warning_texts(caught)
     return TaskResult(name=task.name, status="ok", seconds=0.0, summary=table,

@@ -166,20 +166,11 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                 pm.Deterministic(structure.names[i], theta[i])
         # thresholds: tau_1 = 0, each later one the previous plus a positive gap
         tau = {}
-        for v in cat.variables:
-            table = cat.cuts[v]
-            for c in range(1, table.shape[1]):
-                for t in range(table.shape[0]):
-                    k = int(table[t, c])
-                    name = cat.thresholds[k]
-                    if name in tau:
-                        continue
-                    below = int(table[t, c - 1])
-                    family, *args = gaps[name]
-                    cls, kwargs = family_dist(family, args)
-                    gap = cls(f"{name}__gap", **kwargs)
-                    tau[name] = pm.Deterministic(name, (tau[cat.thresholds[below]] if below >= 0
-                                                        else 0.0) + gap)
+        for name, below in threshold_gaps(cat).items():
+            family, *args = gaps[name]
+            cls, kwargs = family_dist(family, args)
+            gap = cls(f"{name}__gap", **kwargs)
+            tau[name] = pm.Deterministic(name, (tau[below] if below is not None else 0.0) + gap)
         # person-level latents, non-centred, with the engine's implied moments
         m = model_matrices(structure, theta)
         alpha, Gamma, _, _ = latent_moments(structure, theta)
@@ -212,6 +203,46 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                 pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves],
                           observed=pm.Data(f"observed[{name}]", obs))
     return model
+
+
+def threshold_gaps(cat: Categorical) -> dict:
+    """``{threshold: the threshold below it, or None for the fixed first cut 0}``.
+
+    Each free threshold is the one below it plus a positive gap, whose prior is the
+    threshold's (:func:`categorical_priors`); the order is the model's, a threshold after
+    the one below it. The model (:func:`build_categorical_model`) and the log prior density
+    of its draws (:func:`gap_log_prior_terms`) both read the gaps from here.
+    """
+    out: dict = {}
+    for v in cat.variables:
+        table = cat.cuts[v]
+        for c in range(1, table.shape[1]):
+            for t in range(table.shape[0]):
+                name = cat.thresholds[int(table[t, c])]
+                if name not in out:
+                    below = int(table[t, c - 1])
+                    out[name] = cat.thresholds[below] if below >= 0 else None
+    return out
+
+
+def gap_log_prior_terms(cat: Categorical, gaps: dict, posterior) -> list:
+    """Log prior density of each threshold's gap at the draws of ``posterior``.
+
+    One PyMC log-density expression per threshold (not evaluated), over the draws flattened
+    in chain-major order: the gap prior ``gaps[name]`` at tau_name minus the threshold below
+    it (:func:`threshold_gaps`), the variable the model places that prior on.
+    """
+    import pymc as pm
+
+    terms = []
+    for name, below in threshold_gaps(cat).items():
+        tau = np.asarray(posterior[name].values, dtype=float).reshape(-1)
+        gap = tau - (np.asarray(posterior[below].values, dtype=float).reshape(-1)
+                     if below is not None else 0.0)
+        family, *args = gaps[name]
+        cls, kwargs = family_dist(family, args)
+        terms.append(pm.logp(cls.dist(**kwargs), gap))
+    return terms
 
 
 def model_inputs(cat: Categorical, panel, prior_set: PriorSet) -> dict:

@@ -1,4 +1,5 @@
-"""The report's parts for categorical variables: categories, thresholds, share checks.
+"""The report's parts for categorical variables: categories, thresholds, share checks,
+and the draws power-scaling of the lag sensitivity ran on.
 
 :mod:`bayeslong.workflow.report` calls these for a study whose panel has binary or ordinal
 variables (docs/model-family.md, "Categorical indicators"); each adds blocks to the report's
@@ -104,3 +105,14 @@ def add_category_checks(doc, label: str, value: dict) -> None:
     if stayed is not None and len(stayed):
         doc.table(stayed.set_index("variable"), "Units that stayed in their category from the "
                   "previous wave: observed count against its replicated distribution")
+
+
+def add_power_scaling_note(doc, sensitivity) -> None:
+    """On how many draws power-scaling of a categorical fit ran: those that carry the
+    marginal log-likelihood (docs/comparison.md, "Lag sensitivity with categorical
+    variables"); nothing when power-scaling did not run."""
+    ps = getattr(sensitivity, "power_scaling", None)
+    if ps is not None and len(ps) and "draws" in ps.attrs:
+        doc.para(f"Power-scaling of the default fit is computed on its {ps.attrs['draws']} "
+                 "draws that carry the marginal log-likelihood (loglik_draws, thinned evenly "
+                 "within each chain), not on every draw.", "note")

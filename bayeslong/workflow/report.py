@@ -596,6 +596,8 @@ def _section_sensitivity(doc: _Doc, results) -> None:
                        "(red: flagged; dashed: the default fit's mean; dotted: zero)")
         except Exception as err:  # the table is already shown; say why the plot is not
             doc.para(f"The sensitivity plot could not be drawn ({err}).", "warn")
+    if getattr(getattr(results, "panel", None), "categories", None):
+        category_report.add_power_scaling_note(doc, value)
     for axis, why in (getattr(value, "skipped", None) or {}).items():
         doc.para(f"Axis '{axis}' {why}.", "note")
     failed = getattr(value, "failed", None)

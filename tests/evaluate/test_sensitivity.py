@@ -453,6 +453,56 @@ def test_variance_prior_scaling_of_a_categorical_model_leaves_fixed_variances_ou
         ("level_var", "slope_var", "initial_var", "resid_var[2]", "resid_var[3]")}
 
 
+def test_log_prior_draws_of_a_categorical_fit_add_the_gap_priors_and_leave_fixed_ones_out():
+    # alt with free residual variances on one four-category variable: the categorical model
+    # fixes resid_var[4] at 0 (docs/model-family.md, "Identification"), which has no prior
+    # in the model, and has two thresholds, the second one the first plus a gap
+    # (infer/categorical.py); the reference is a sum of scipy densities at the draws
+    from bayeslong.infer.categorical import categorical_priors
+    from bayeslong.model.thresholds import categorical_structure
+
+    spec = bl.model("alt", residuals="free")
+    params = {**{k: v for k, v in BINARY_ALT.items() if k != "resid_var"},
+              "resid_var[2]": 0.5, "resid_var[3]": 0.5, "threshold[y,2]": 0.8,
+              "threshold[y,3]": 1.5}
+    panel = Simulation(spec=spec, params=params, n_units=30, n_waves=4, seed=2,
+                       categorical={"y": 4}).panel()
+    cat = categorical_structure(spec, panel)
+    assert cat.pinned == {"resid_var[4]": 0.0}
+    assert cat.thresholds == ("threshold[y,2]", "threshold[y,3]")
+    # LKJ(1) is uniform over correlation matrices (Lewandowski et al. 2009): a constant
+    prior_set, gaps = categorical_priors(cat, panel, {"threshold[y,3]": ("gamma", 2.0, 1.5),
+                                                      "lag": ("student_t", 4, 0.2, 0.3),
+                                                      "level_slope_cov": ("lkj", 1.0)})
+    S = 40
+    theta = prior_draws(prior_set, draws=S, seed=3)
+    theta[:, cat.structure.names.index("resid_var[4]")] = 0.0  # as the fit stores it
+    rng = np.random.default_rng(4)
+    gap2, gap3 = rng.uniform(0.1, 3.0, size=S), rng.uniform(0.1, 3.0, size=S)
+    tau = {"threshold[y,2]": gap2, "threshold[y,3]": gap2 + gap3}
+    posterior = {n: theta[:, j].reshape(2, S // 2) for j, n in enumerate(cat.structure.names)}
+    posterior.update({n: v.reshape(2, S // 2) for n, v in tau.items()})
+    fit = types.SimpleNamespace(structure=cat.structure, panel=panel, prior_set=prior_set,
+                                categorical=cat, gaps=gaps, theta_draws=lambda: theta,
+                                idata=az.from_dict(posterior=posterior))
+    ours = log_prior_draws(fit).ravel()
+    naive = stats.halfnorm.logpdf(gap2, scale=3.0) + stats.gamma.logpdf(gap3, 2.0, scale=1 / 1.5)
+    for j, (name, p) in enumerate(zip(cat.structure.names, prior_set.priors)):
+        x = theta[:, j]
+        if name in cat.pinned or p.family == "lkj":
+            continue
+        if p.family == "normal":
+            naive += stats.norm.logpdf(x, *p.args)
+        elif p.family == "student_t":
+            naive += stats.t.logpdf(x, p.args[0], p.args[1], p.args[2])
+        else:  # the prior is on the SD
+            assert p.family == "halfnormal", p
+            naive += stats.halfnorm.logpdf(np.sqrt(x), scale=p.args[0])
+    diff = ours - naive
+    assert np.all(np.isfinite(ours))
+    np.testing.assert_allclose(diff, diff[0], atol=1e-8)
+
+
 def _binary_alt_panel():
     spec = bl.model("alt", residuals="equal")
     return spec, Simulation(spec=spec, params=BINARY_ALT, n_units=40, n_waves=4, seed=5,
@@ -473,14 +523,14 @@ def test_lag_sensitivity_of_a_binary_panel_refits_and_reads_categorical_fits():
     # the default setting is refitted through the categorical path (bl.fit dispatches; the
     # continuous fit would fail on categories), the tight-prior setting is read from the
     # categorical fit given, whose thresholds' gap priors are the defaults
-    result = bl.lag_sensitivity(panel, models=[spec, bl.model("level-lag")],
-                                prior_grid=[("normal", 0.0, 0.1)], variance_scales=False,
-                                initial=False, fit_kwargs=kwargs, fits=[tight])
+    result = bl.lag_sensitivity(panel, models=[spec], prior_grid=[("normal", 0.0, 0.1)],
+                                variance_scales=False, initial=False, specification=False,
+                                power_scaling=False,
+                                fit_kwargs=kwargs, fits=[tight])
     assert result.failed == {}, result.failed
     assert result.reused == ("prior: lag ~ normal(0, 0.1)",)
     assert list(result.table["axis"]) == ["default", "prior"]
-    assert set(result.skipped) == {"specification", "power-scaling"}
-    assert "marginal log-likelihood on a thinned subset" in result.skipped["power-scaling"]
+    assert result.skipped == {}
     row = result.table.set_index("setting").loc["lag ~ normal(0, 0.1)"]
     assert row["mean"] == pytest.approx(float(tight.idata.posterior["lag"].mean()), rel=1e-12)
     assert np.isfinite(result.table["mean"]).all() and (result.table["sd"] > 0).all()
@@ -494,8 +544,11 @@ def test_lag_sensitivity_of_a_binary_panel_refits_prior_and_first_wave_axes():
                                 variance_scales=[2.0], fit_kwargs=kwargs)
     table = result.table.set_index("setting")
     assert result.failed == {}, result.failed
-    assert list(result.table["axis"]) == ["default", "prior", "prior", "first wave", "first wave"]
-    assert set(result.skipped) == {"power-scaling"}
+    assert list(result.table["axis"]) == ["default", "prior", "prior", "first wave", "first wave",
+                                          "specification", "power-scaling", "power-scaling"]
+    assert result.skipped == {}
+    # power-scaling on the default fit's draws that carry the marginal log-likelihood
+    assert result.power_scaling.attrs["draws"] == 10
     # each row is the categorical fit of its setting: a direct bl.fit under the same prior
     # and seed gives the same draws (person-level latents, thresholds; infer/categorical.py)
     import warnings
@@ -511,3 +564,79 @@ def test_lag_sensitivity_of_a_binary_panel_refits_prior_and_first_wave_axes():
         other.idata.posterior["lag"].values.mean(), rel=1e-12)
     # the SD-scale row is a different prior, so a different posterior from the default
     assert table.loc["variance priors: SD scale x2", "mean"] != table.loc["default priors", "mean"]
+
+
+# the binary ar and level-lag are identified on four waves, binary alt with equal residual
+# variances is not (bl.identify: rank 10 of 11 parameters)
+BINARY_AR = {"intercept": 0.0, "lag": 0.5, "initial_mean": 0.0, "initial_var": 1.0,
+             "resid_var": 1.0}
+
+
+def test_power_scaling_of_a_categorical_fit_uses_its_thinned_draws_and_flags_a_tight_prior():
+    # a three-category ar (one threshold, so one gap prior) under a lag prior of N(-0.5,
+    # 0.05) far from the simulated 0.5; the marginal log-likelihood is stored on every
+    # second draw (loglik_draws = 200 of 2 x 200), and power-scaling must use exactly those.
+    # References: scipy densities for the log prior and the re-implementation from the
+    # paper (Kallioinen et al. 2024) for both sensitivities, on the same thinned draws
+    import warnings
+
+    spec = bl.model("ar", residuals="equal")
+    panel = Simulation(spec=spec, params={**BINARY_AR, "threshold[y,2]": 1.0}, n_units=40,
+                       n_waves=4, seed=5, categorical={"y": 3}).panel()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+        fit = bl.fit(spec, panel, priors={"lag": ("normal", -0.5, 0.05)}, draws=200, tune=200,
+                     chains=2, sampler="pymc", seed=4, loglik_draws=200, progressbar=False)
+    assert type(fit).__name__ == "CategoricalFit" and fit.categorical.thresholds == ("threshold[y,2]",)
+    table = power_scaling(fit)
+    ll = fit.idata.log_likelihood
+    assert ll.attrs["thin"] == 2 and table.attrs["draws"] == ll.sizes["chain"] * ll.sizes["draw"] == 200
+    assert list(table.index) == list(fit.categorical.names)
+    thinned = fit.idata.posterior.sel(draw=ll["draw"].values)
+    lp = np.zeros(200)
+    for name, p in zip(fit.structure.names, fit.prior_set.priors):
+        if name in fit.categorical.pinned:
+            continue
+        x = thinned[name].values.ravel()
+        if p.family == "normal":
+            lp += stats.norm.logpdf(x, *p.args)
+        else:  # a variance's prior is on its SD
+            assert p.family == "halfnormal", p
+            lp += stats.halfnorm.logpdf(np.sqrt(x), scale=p.args[0])
+    lp += stats.halfnorm.logpdf(thinned["threshold[y,2]"].values.ravel(), scale=3.0)  # gap prior
+    lag = thinned["lag"].values.ravel()
+    assert table.loc["lag", "prior"] == pytest.approx(_naive_psens(lag, lp), rel=0.05)
+    assert table.loc["lag", "likelihood"] == pytest.approx(
+        _naive_psens(lag, ll["y"].values.sum(-1).ravel()), rel=0.05)
+    # the tight prior is what holds the lag: prior-sensitive (0.05: the paper's threshold)
+    assert table.loc["lag", "prior"] >= 0.05
+    assert table.loc["lag", "diagnosis"] in ("strong prior / weak likelihood", "prior-data conflict")
+
+
+def test_lag_sensitivity_of_a_binary_panel_fits_the_identified_models_and_skips_the_others():
+    spec = bl.model("ar", residuals="equal")
+    panel = Simulation(spec=spec, params=BINARY_AR, n_units=40, n_waves=4, seed=5,
+                       categorical={"y": "binary"}).panel()
+    kwargs = dict(draws=100, tune=150, chains=2, sampler="pymc", seed=4, loglik_draws=100)
+    models = [spec, bl.model("level-lag"), bl.model("alt", residuals="equal")]
+    result = bl.lag_sensitivity(panel, models=models, prior_grid=False, variance_scales=False,
+                                initial=False, fit_kwargs=kwargs)
+    assert result.failed == {}, result.failed
+    # alt is not fitted: bl.identify's reason is kept and shown
+    why = bl.identify(models[2], panel)
+    assert not why.identified and bl.identify(models[1], panel).identified
+    assert list(result.skipped) == ["specification: alt"]
+    assert f"rank {why.rank} of {why.n_params} parameters" in result.skipped["specification: alt"]
+    assert "not identified with these categorical variables" in result.skipped["specification: alt"]
+    table = result.table
+    assert list(table["axis"]) == ["default", "specification", "specification", "power-scaling",
+                                   "power-scaling"]
+    spec_rows = table[table["axis"] == "specification"].set_index("model")
+    assert list(spec_rows.index) == ["ar", "level-lag"]
+    # the ar row is the default fit itself; level-lag a categorical fit of its own
+    assert spec_rows.loc["ar", "mean"] == table.loc[0, "mean"]
+    assert np.isfinite(spec_rows["mean"]).all() and (spec_rows["sd"] > 0).all()
+    # power-scaling of the default fit on its 100 draws with a marginal log-likelihood
+    assert result.power_scaling.attrs["draws"] == 100
+    ps = table[table["axis"] == "power-scaling"]
+    assert list(ps["setting"]) == ["prior", "likelihood"] and np.isfinite(ps["psens"]).all()

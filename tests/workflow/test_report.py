@@ -528,3 +528,38 @@ def test_measurement_section_opens_in_headless_chromium(rendered_measurement, tm
     parser.feed(dom)
     h2 = [attrs.get("id") for tag, attrs in parser.tags if tag == "h2"]
     assert h2.index("measurement") == h2.index("models") + 1  # right after the candidates
+
+
+def test_sensitivity_section_of_a_categorical_panel_says_how_power_scaling_and_skips_ran():
+    # the lag-sensitivity section names the thinned draws power-scaling used and each model
+    # the specification axis skipped with its reason (evaluate/sensitivity.py); a result
+    # made by hand, the section's input, so no fit is needed
+    import types
+
+    from bayeslong.evaluate.sensitivity import LagSensitivity
+    from bayeslong.workflow.report import _Doc, _section_sensitivity
+
+    table = pd.DataFrame({"axis": ["default", "power-scaling"], "setting": ["default priors", "prior"],
+                          "model": ["ar", "ar"], "parameter": ["lag", "lag"], "mean": [0.4, 0.4],
+                          "sd": [0.1, 0.1], "q5": [0.2, 0.2], "q95": [0.6, 0.6],
+                          "shift": [0.0, 0.0], "sign_change": [False, False],
+                          "flag": [False, True], "psens": [np.nan, 0.08], "diagnosis": ["", ""]})
+    ps = pd.DataFrame({"prior": [0.08], "likelihood": [0.01], "diagnosis": [""]},
+                      index=pd.Index(["lag"], name="parameter"))
+    ps.attrs["draws"] = 250
+    value = LagSensitivity(table=table, power_scaling=ps, reference="ar",
+                           skipped={"specification: alt": "not run for model 'alt': it is not "
+                                                           "identified"})
+    panels = {"categorical": types.SimpleNamespace(categories={"y": (1, 2)}),
+              "continuous": types.SimpleNamespace(categories={})}
+    texts = {}
+    for kind, panel in panels.items():
+        doc = _Doc()
+        _section_sensitivity(doc, types.SimpleNamespace(sensitivity=Step(ran=True, value=value),
+                                                        panel=panel))
+        texts[kind] = [b.text for b in doc.blocks if b.kind == "para"]
+    note = ("Power-scaling of the default fit is computed on its 250 draws that carry the "
+            "marginal log-likelihood")
+    assert any(t.startswith(note) for t in texts["categorical"])
+    assert not any(t.startswith(note) for t in texts["continuous"])
+    assert "Axis 'specification: alt' not run for model 'alt': it is not identified." in texts["categorical"]
