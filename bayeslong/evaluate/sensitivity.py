@@ -260,7 +260,7 @@ def _side(q5: float, q95: float) -> str:
 
 def lag_sensitivity(panel, *, models=None, prior_grid=None, variance_scales=None,
                     deviation_sds=None, initial: bool = True, specification: bool = True,
-                    power_scaling: bool = True,
+                    power_scaling: bool = True,  # noqa: F811 (the axis switch)
                     fit_kwargs: dict | None = None, executor=None,
                     progress: bool = False, priors: dict | None = None,
                     fits=None) -> LagSensitivity:
