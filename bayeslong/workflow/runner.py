@@ -8,7 +8,6 @@ them while the study and the data are unchanged (the content hashes of
 
 from __future__ import annotations
 
-import atexit
 import contextlib
 import dataclasses
 import json
@@ -42,6 +41,7 @@ from bayeslong.workflow.study_file import (
     nearest_hint,
     software_versions,
 )
+from bayeslong.workflow.workers import drop_pool, get_pool, sample_job, worker_count
 
 
 def _installed(package: str) -> bool:
@@ -195,7 +195,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     jobs, pool = {}, None
     to_sample = ({c.label for c in study.models if _needs_sampling(study, panel, c, fits_dir)}
                  if fit and fit_module is not None else set())
-    workers = _worker_count(study.sampling["workers"] if workers is None else workers,
+    workers = worker_count(study.sampling["workers"] if workers is None else workers,
                             len(to_sample))
     models = []
     fitted = reused = 0
@@ -204,7 +204,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
     try:
         if workers > 1:
             queue = stack.enter_context(live.listening()) if live is not None else None
-            pool = _pool(workers)
+            pool = get_pool(workers)
             future_kwargs = _future_kwargs(study, panel, fits_dir)
             for i, cand in enumerate(study.models, start=1):
                 if cand.label in to_sample:
@@ -219,7 +219,7 @@ def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None]
             models.append(result)
     except BaseException:  # an interrupted run leaves no worker busy with its fits
         if pool is not None:
-            _drop_pool(pool)
+            drop_pool(pool)
         raise
     finally:
         stack.close()
@@ -293,44 +293,6 @@ def _needs_sampling(study, panel, cand, fits_dir: Path) -> bool:
     return not (fits_dir / f"{_stem(study, cand)}.nc").exists()
 
 
-def _worker_count(asked: int, n_jobs: int) -> int:
-    """Worker processes for ``n_jobs`` candidate fits (1: sample here, one after another)."""
-    from bayeslong.infer.batch import default_workers
-
-    if isinstance(asked, bool) or not isinstance(asked, int) or asked < 0:
-        raise SpecError(f"`workers` must be a whole number >= 0 (0: one per CPU core); "
-                        f"got {asked!r}")
-    return max(1, min(asked or default_workers(), n_jobs))
-
-
-#: Worker pools by size, kept for the next study run in this process (``bayeslong demo``
-#: runs two studies): their workers have imported the libraries and loaded the compiled
-#: kernel already, which a new pool's workers spend seconds on.
-_POOLS: dict = {}
-
-
-def _pool(workers: int):
-    from bayeslong.infer.batch import default_executor
-
-    pool = _POOLS.get(workers)
-    if pool is None or pool._broken or pool._shutdown_thread:  # a dead pool is replaced
-        pool = _POOLS[workers] = default_executor(workers)
-        if len(_POOLS) == 1:
-            atexit.register(_close_pools)
-    return pool
-
-
-def _drop_pool(pool) -> None:
-    pool.shutdown(wait=True, cancel_futures=True)
-    for k in [k for k, v in _POOLS.items() if v is pool]:
-        del _POOLS[k]
-
-
-def _close_pools() -> None:
-    for pool in list(_POOLS.values()):
-        _drop_pool(pool)
-
-
 def _future_kwargs(study, panel, fits_dir: Path) -> dict | None:
     """Settings of the workers' leave-future-out refits; None when none is needed.
 
@@ -362,34 +324,7 @@ def _submit(pool, study, panel, cand, fits_dir, future_kwargs, say, workers, que
     if future is not None and queue is not None:
         future["progressbar"] = QueueForwarder(queue, f"{cand.label} (leave-future-out refit)")
     path = fits_dir / f"{_stem(study, cand)}.nc"
-    return pool.submit(_sample_job, cand.spec, panel, kwargs, str(path), future)
-
-
-def _sample_job(spec, panel, kwargs: dict, path: str, future_kwargs: dict | None) -> dict:
-    """Sample one candidate and save it to ``path`` (in a worker process).
-
-    With ``future_kwargs``, also make its leave-future-out score while its model is
-    compiled in this process. Returns the fit's timing and the score (or why not).
-    """
-    from bayeslong.errors import ConvergenceWarning
-    from bayeslong.infer.fitting import fit
-
-    t0 = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)  # recorded from the saved fit
-        result = fit(spec, panel, **kwargs)
-    result.save(path)
-    out = {"timing": dict(result.timing), "seconds": time.perf_counter() - t0, "forecast": None}
-    if future_kwargs is not None:
-        from bayeslong.evaluate.comparison import forecast_score
-
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", ConvergenceWarning)  # kept in score.problems
-                out["forecast"] = forecast_score(spec, panel, **future_kwargs)
-        except BayeslongError:
-            pass  # the comparison meets the same error and says so
-    return out
+    return pool.submit(sample_job, cand.spec, panel, kwargs, str(path), future)
 
 
 def _fit_failed(err: Exception, cand, notes: list, say, strict: bool) -> None:

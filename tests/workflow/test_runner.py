@@ -119,15 +119,15 @@ def test_a_second_study_in_one_process_reuses_the_worker_pool():
     # have imported the libraries and loaded the compiled kernel, instead of starting new ones
     import os
 
-    from bayeslong.workflow import runner
+    from bayeslong.workflow import workers
 
-    first = runner._pool(2)
+    first = workers.get_pool(2)
     before = {first.submit(os.getpid).result() for _ in range(6)}
-    assert runner._pool(2) is first
-    after = {runner._pool(2).submit(os.getpid).result() for _ in range(6)}
+    assert workers.get_pool(2) is first
+    after = {workers.get_pool(2).submit(os.getpid).result() for _ in range(6)}
     assert after <= set(first._processes) and before <= set(first._processes)
-    runner._drop_pool(first)  # an interrupted run drops its pool ...
-    second = runner._pool(2)
+    workers.drop_pool(first)  # an interrupted run drops its pool ...
+    second = workers.get_pool(2)
     assert second is not first and not first._processes  # ... and the next run gets a new one
-    runner._drop_pool(second)
-    assert runner._POOLS == {}
+    workers.drop_pool(second)
+    assert workers._POOLS == {}
