@@ -45,9 +45,22 @@ from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import PARAMETER, UNIT
 from bayeslong.errors import SpecError
 from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
-from bayeslong.infer.priors import FAMILIES, PriorSet, assemble_theta, family_dist, resolve_priors
+from bayeslong.infer.priors import (
+    FAMILIES,
+    PriorSet,
+    assemble_theta,
+    family_dist,
+    resolve_priors,
+)
 from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
-from bayeslong.infer.sampling import SAMPLERS, Fit, diagnose, inference_data, warn_convergence
+from bayeslong.infer.sampling import (
+    FIRST_TARGET_ACCEPT,
+    SAMPLERS,
+    Fit,
+    diagnose,
+    inference_data,
+    warn_convergence,
+)
 from bayeslong.model.structure import structure_for
 from bayeslong.model.thresholds import Categorical, categorical_structure
 
@@ -389,7 +402,7 @@ class CategoricalFit(Fit):
 def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
                     seed: int = 1, priors: dict | None = None, sampler: str = "auto",
                     progressbar: bool = True, cores: int | None = None,
-                    loglik_draws: int = LOGLIK_DRAWS, points: int = POINTS,
+                    target_accept: float | None = None, loglik_draws: int = LOGLIK_DRAWS, points: int = POINTS,
                     replicates: int = REPLICATES) -> CategoricalFit:
     """Fit ``spec`` to a panel with categorical variables by NUTS with person-level latents.
 
@@ -399,6 +412,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
     ``progressbar``: True shows the sampler's own bar, a callable receives a
     :class:`bayeslong.infer.progress.SamplingProgress` as for continuous fits.
+    ``target_accept``: the NUTS step-size target (default 0.8; no careful re-run here, as a
+    categorical fit costs minutes: give 0.9 or 0.95 yourself when the fit reports
+    divergences).
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 
@@ -410,6 +426,10 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
                               ("loglik_draws", loglik_draws, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
+    accept = FIRST_TARGET_ACCEPT if target_accept is None else target_accept
+    if not (isinstance(accept, (int, float)) and 0.0 < float(accept) < 1.0):
+        raise SpecError(f"fit: target_accept={target_accept!r}; give a number between 0 and 1 "
+                        f"(e.g. 0.9), or leave it out for {FIRST_TARGET_ACCEPT}")
     if sampler not in SAMPLERS:
         raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
     from importlib.util import find_spec
@@ -445,7 +465,7 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
             # callable progressbar gets the draws per chain (infer/progress.py)
             raw = run_nutpie(compiled, draws=int(draws), tune=int(tune), chains=int(chains),
                              cores=cores, seed=int(seed), init_mean=np.zeros(compiled.n_dim),
-                             progressbar=progressbar)
+                             progressbar=progressbar, target_accept=float(accept))
         else:
             import pymc as pm
 
@@ -455,13 +475,15 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
                 pm.set_data(model_inputs(cat, panel, prior_set))
                 raw = pm.sample(draws=int(draws), tune=int(tune), chains=int(chains), cores=1,
                                 random_seed=int(seed), progressbar=progressbar is True,
-                                var_names=keep, compute_convergence_checks=False, callback=counter)
+                                var_names=keep, compute_convergence_checks=False, callback=counter,
+                                target_accept=float(accept))
             if counter is not None:
                 counter.finish()
         sample_s = time.perf_counter() - t0
         t0 = time.perf_counter()
         idata = _tidy(raw, cat, panel, keep, int(loglik_draws), int(points), int(replicates), int(seed))
         loglik_s = time.perf_counter() - t0
+    idata.posterior.attrs.update({"bayeslong_target_accept": float(accept), "bayeslong_rerun": ""})
     result = CategoricalFit(spec=spec, panel=panel, structure=cat.structure, seed=int(seed),
                             idata=idata, prior_set=prior_set, sampler=which, categorical=cat,
                             gaps=gaps,

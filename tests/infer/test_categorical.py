@@ -209,14 +209,18 @@ def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_pat
         warnings.simplefilter("ignore", bl.ConvergenceWarning)
         seen = []  # a callable progressbar gets the draws per chain (infer/progress.py)
         fit = bl.fit(spec, panel, draws=100, tune=100, chains=2, sampler="pymc", cores=1,
-                     progressbar=seen.append, priors=priors, loglik_draws=40)
+                     progressbar=seen.append, priors=priors, loglik_draws=40,
+                     target_accept=0.9)
+    assert fit.target_accept == 0.9 and fit.rerun == ""  # passed to the sampler, recorded
+    with pytest.raises(bl.SpecError, match="target_accept=1.5"):
+        bl.fit(spec, panel, draws=10, tune=10, chains=1, sampler="pymc", target_accept=1.5)
     assert seen[0].stage == "compiling" and seen[-1].stage == "done"
     assert seen[-1].done == (200, 200)  # tune + draws per chain
     path = fit.save(tmp_path / "fit.nc")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", bl.ConvergenceWarning)
         back = bl.load_fit(path)
-    assert isinstance(back, bl.CategoricalFit)
+    assert isinstance(back, bl.CategoricalFit) and back.target_accept == 0.9
     assert back.panel == panel and back.panel.categories == {"y": ("low", "middle", "high")}
     assert back.categorical.thresholds == fit.categorical.thresholds == ("threshold[y,2]",)
     assert back.categorical.pinned == fit.categorical.pinned
