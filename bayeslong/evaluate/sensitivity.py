@@ -64,6 +64,7 @@ from bayeslong.infer.batch import (
     run_many,
     summarise_draws,
 )
+from bayeslong.infer.pooling import POOLING_KEY, residual_groups
 from bayeslong.model.spec import Spec, catalog, check_spec, model
 from bayeslong.model.structure import structure_for
 
@@ -180,7 +181,10 @@ def _prior_names(spec: Spec, panel) -> tuple[str, ...]:
         from bayeslong.model.thresholds import categorical_structure
 
         return tuple(categorical_structure(spec, panel).names)
-    return tuple(structure_for(spec, panel).names)
+    structure = structure_for(spec, panel)
+    # the pooling's scale, where the model has residual variances to pool (infer/pooling.py)
+    pooled = (POOLING_KEY,) if residual_groups(structure) else ()
+    return tuple(structure.names) + pooled
 
 
 # --- the sensitivity table -------------------------------------------------------------------
