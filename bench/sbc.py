@@ -190,7 +190,8 @@ def main(argv=None):
     base_values = {"level_mean": 0, "slope_mean": 0, "lag": 0.3, "initial_mean": 0,
                    "level_var": 1, "level_slope_cov": 0, "slope_var": 0.1,
                    "initial_level_cov": 0, "initial_slope_cov": 0, "initial_var": 1,
-                   "resid_var": 0.5, **{f"resid_var[{t}]": 0.5 for t in range(2, N_WAVES + 1)}}
+                   **({f"resid_var[{t}]": 0.5 for t in range(2, N_WAVES + 1)} if free
+                      else {"resid_var": 0.5})}
     if args.indicators:  # the measurement part's values for the reference panel
         design = Simulation(spec=spec, params={}, n_units=2, n_waves=N_WAVES, seed=0,
                             indicators=indicators).structure
