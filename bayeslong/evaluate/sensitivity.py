@@ -510,6 +510,7 @@ def _matching_fit(task: Task, fits, fit_kwargs: dict):
     """
     import inspect
 
+    from bayeslong.infer.sampling import CAREFUL_DRAWS_FACTOR
     from bayeslong.infer.sampling import fit as fit_fn
 
     defaults = {k: v.default for k, v in inspect.signature(fit_fn).parameters.items()}
@@ -522,7 +523,9 @@ def _matching_fit(task: Task, fits, fit_kwargs: dict):
                 and _same_priors(fit, priors)
                 and int(fit.seed) == int(want["seed"])
                 and int(post.sizes["chain"]) == int(want["chains"])
-                and int(post.sizes["draw"]) == int(want["draws"])):
+                # a careful re-run keeps CAREFUL_DRAWS_FACTOR times the draws asked for
+                and int(post.sizes["draw"]) == int(want["draws"]) * (
+                    CAREFUL_DRAWS_FACTOR if fit.rerun else 1)):
             return fit
     return None
 
