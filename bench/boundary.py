@@ -8,7 +8,7 @@ is clean when it has no divergent transition, R-hat < 1.01 and bulk and tail ESS
 for every parameter (the thresholds ``Fit.diagnostics`` flags at 4 chains).
 
 Command:  cd /work/main && PYTHONPATH=. .venv/bin/python bench/boundary.py [--panels 20]
-          [--no-lfo | --lfo-only]
+          [--seed-offset 0] [--no-lfo | --lfo-only] [--tau TAU | --tau off]
 Prints:   the load before and after, one line per panel (divergences, worst R-hat, lowest
           bulk and tail ESS and the parameter, and whether the leave-future-out refit was
           clean), then the counts of clean fits and clean refits. ``--lfo-only`` skips the
@@ -16,9 +16,11 @@ Prints:   the load before and after, one line per panel (divergences, worst R-ha
           which parameters), what the first run at the default target acceptance failed
           when it was re-run, and where the divergent transitions sit (the median of the
           divergent draws of the lag and the variances beside the posterior median).
-          ``--pool-residuals TAU``, ``--gamma-sds``, ``--draws`` and ``--rerun-draws`` are
-          probes of that mode, not defaults (docs/engine.md, "Leave-future-out refits on four
-          waves"); ``--whole`` makes the same fits on all waves.
+          ``--gamma-sds``, ``--draws`` and ``--rerun-draws`` are probes of that mode, not
+          defaults (docs/engine.md, "Leave-future-out refits on four waves"); ``--whole``
+          makes the same fits on all waves. ``--tau TAU`` (or ``off``) sets the library's
+          pooling of residual log-SDs (a default since it was validated here) by the prior
+          override ``residual_pooling``; ``--seed-offset 20`` draws 20 fresh panels.
 """
 
 import argparse
@@ -96,33 +98,6 @@ def where_divergent(f) -> str:
     return "divergent draws at median (posterior median): " + ", ".join(cells)
 
 
-def pool_residuals(tau: float) -> None:
-    """Probe: partial pooling of the per-wave residual variances, added to the PyMC model.
-
-    Adds log p += -1/2 sum_t (l_t - mean(l))^2 / tau^2 with l_t = log SD of resid_var[t]
-    (the residual log-SDs shrunk towards their common value; a factor <= 1 on the default
-    priors, so the prior stays proper). The generic kernel has no such term, so fits run on
-    the PyMC model (sampler "nutpie"). Not a default of the package (docs/engine.md).
-    """
-    import pymc as pm
-    import pytensor.tensor as pt
-
-    import bayeslong.infer.pymc_model as pymc_model
-
-    build = pymc_model.build_model
-
-    def pooled(spec, panel, priors=None):
-        model = build(spec, panel, priors)
-        names = [n for n in model.named_vars if n.startswith("resid_var[") and "__" not in n]
-        with model:
-            logsd = pt.stack([0.5 * pt.log(model[n]) for n in names])
-            pm.Potential("residual_pooling",
-                         -0.5 * pt.sum((logsd - pt.mean(logsd)) ** 2) / tau ** 2)
-        return model
-
-    pymc_model.build_model = pooled
-
-
 def gamma_sds(spec, panel, person_only: bool = False) -> dict:
     """Probe: Gamma(2, rate) on variances' SDs, with the mean of the default HalfNormal(s).
 
@@ -139,7 +114,16 @@ def gamma_sds(spec, panel, person_only: bool = False) -> dict:
             if n in person or (not person_only and n.startswith("resid_var"))}
 
 
-def refits_only(panels: int, pool: float | None = None, draws: int = 1000,
+def pooling_override(tau) -> dict:
+    """``priors=`` that set the library's pooling of residual log-SDs (None: the default)."""
+    return {} if tau is None else {"residual_pooling": tau}
+
+
+def seeds(args) -> range:
+    return range(args.seed_offset + 1, args.seed_offset + args.panels + 1)
+
+
+def refits_only(panels: range, tau=None, draws: int = 1000,
                 rerun_draws: int | None = None, whole: bool = False,
                 gamma: str | None = None) -> None:
     """The leave-future-out refits alone: the same fit ``forecast_score`` makes.
@@ -150,19 +134,17 @@ def refits_only(panels: int, pool: float | None = None, draws: int = 1000,
     """
     print("command: PYTHONPATH=. .venv/bin/python bench/boundary.py " + " ".join(sys.argv[1:]))
     print(f"before: load average {os.getloadavg()}", flush=True)
-    kwargs = {"draws": draws}
-    if pool is not None:
-        pool_residuals(pool)
-        kwargs["sampler"] = "nutpie"
+    kwargs = {"draws": draws, "priors": pooling_override(tau)}
     t0 = time.perf_counter()
     clean = reruns = 0
-    for seed in range(1, panels + 1):
+    for seed in panels:
         spec, panel = panel_for(seed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             data = panel if whole else panel.head(panel.n_waves - 1)
             if gamma:
-                kwargs["priors"] = gamma_sds(spec, data, person_only=gamma == "person")
+                kwargs["priors"] = {**gamma_sds(spec, data, person_only=gamma == "person"),
+                                    **pooling_override(tau)}
             f = bl.fit(spec, data, progressbar=False, **kwargs)
             if rerun_draws and f.rerun:  # as if the careful re-run took rerun_draws draws
                 rerun = f.rerun
@@ -185,7 +167,7 @@ def refits_only(panels: int, pool: float | None = None, draws: int = 1000,
               + (f"\n    {where_divergent(f)}" if diag.attrs.get("divergences", 0) else ""),
               flush=True)
     what = "fits of all waves" if whole else "leave-future-out refits"
-    print(f"clean {what}: {clean} of {panels} ({reruns} sampled again at the careful target "
+    print(f"clean {what}: {clean} of {len(panels)} ({reruns} sampled again at the careful target "
           "acceptance)")
     print(f"wall {time.perf_counter() - t0:.0f} s; after: load average {os.getloadavg()}")
 
@@ -196,9 +178,12 @@ def main():
     ap.add_argument("--no-lfo", action="store_true", help="skip the leave-future-out refits")
     ap.add_argument("--lfo-only", action="store_true",
                     help="only the leave-future-out refits, with the cause of each flag")
-    ap.add_argument("--pool-residuals", type=float, default=None, metavar="TAU",
-                    help="probe, not a default: shrink the residual log-SDs towards their "
-                         "mean with scale TAU (PyMC model, sampler 'nutpie'); --lfo-only only")
+    ap.add_argument("--seed-offset", type=int, default=0,
+                    help="panels use seeds OFFSET+1..OFFSET+PANELS (default 0: seeds 1..20; "
+                         "20 gives 20 fresh panels, seeds 21..40)")
+    ap.add_argument("--tau", type=lambda v: v if v == "off" else float(v), default=None,
+                    help="the library's pooling of residual log-SDs: its scale tau, or 'off' "
+                         "(priors={'residual_pooling': ...}); default: the library's default")
     ap.add_argument("--draws", type=int, default=1000, help="draws per chain (--lfo-only only)")
     ap.add_argument("--rerun-draws", type=int, default=None, metavar="N",
                     help="probe: a fit that the default sampler re-ran is sampled again at "
@@ -212,24 +197,25 @@ def main():
                     help="with --lfo-only: fit all waves instead (the probes on full fits)")
     args = ap.parse_args()
     if args.lfo_only:
-        return refits_only(args.panels, pool=args.pool_residuals, draws=args.draws,
+        return refits_only(seeds(args), tau=args.tau, draws=args.draws,
                            rerun_draws=args.rerun_draws, whole=args.whole, gamma=args.gamma_sds)
     print("command: PYTHONPATH=. .venv/bin/python bench/boundary.py " + " ".join(sys.argv[1:]))
     print(f"before: load average {os.getloadavg()}", flush=True)
     t0 = time.perf_counter()
     clean_fits = clean_refits = reruns = 0
-    for seed in range(1, args.panels + 1):
+    priors = pooling_override(args.tau)
+    for seed in seeds(args):
         spec, panel = panel_for(seed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            f = bl.fit(spec, panel, progressbar=False)
+            f = bl.fit(spec, panel, progressbar=False, priors=priors)
             ok, text = verdict(f.diagnostics())
             clean_fits += ok
             reruns += bool(f.rerun)
             line = (f"panel {seed:2d} [{f.sampler}, target_accept {f.target_accept}]: "
                     f"{'clean  ' if ok else 'FLAGGED'} {text}")
             if not args.no_lfo:
-                score = bl.forecast_score(spec, panel, progressbar=False)
+                score = bl.forecast_score(spec, panel, progressbar=False, priors=priors)
                 refit_ok = not score.problems
                 clean_refits += refit_ok
                 line += "  | LFO refit " + ("clean" if refit_ok else

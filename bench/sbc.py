@@ -81,6 +81,21 @@ BINARY_PRIORS = {
     "initial_var": ("halfnormal", 0.7), "resid_var": ("halfnormal", 0.7),
 }
 
+#: ``--free-residuals``: the parameters checked.
+FREE_PARAMS = ("lag", "slope_mean", "resid_var[2]", "resid_var[5]")
+
+
+def free_priors(structure) -> dict:
+    """``PRIORS`` with each wave's residual variance given the prior of ``resid_var``, and
+    the pooling of their log-SDs at the library's default tau, given explicitly."""
+    from bayeslong.infer.pooling import DEFAULT_TAU, POOLING_KEY
+
+    out = {k: v for k, v in PRIORS.items() if k in structure.names}
+    out.update({n: PRIORS["resid_var"] for n in structure.names if n.startswith("resid_var[")})
+    out[POOLING_KEY] = DEFAULT_TAU
+    return out
+
+
 INDICATORS = ("y_a", "y_b", "y_c")
 INDICATOR_PARAMS = ("lag", "loading[y_b]")
 
@@ -141,6 +156,10 @@ def main(argv=None):
     kind = ap.add_mutually_exclusive_group()
     kind.add_argument("--indicators", action="store_true",
                       help="the ALT with three indicators per wave (see the module notes)")
+    kind.add_argument("--free-residuals", action="store_true",
+                      help="ALT with residual variances free over waves: the default pooling "
+                           "of their log-SDs (infer/pooling.py); checks the lag, the slope "
+                           "mean and the first and last residual variances")
     kind.add_argument("--binary", action="store_true",
                       help="the ALT of one binary outcome (see the module notes)")
     ap.add_argument("--units", type=int, default=None, help="N (default 100; --binary: 120)")
@@ -155,11 +174,12 @@ def main(argv=None):
     n_units = args.units or (120 if binary else N_UNITS)
     sampler = args.sampler
 
-    spec = bl.model("alt", residuals="equal")
+    free = args.free_residuals
+    spec = bl.model("alt", residuals="free" if free else "equal")
     indicators = {"y": list(INDICATORS)} if args.indicators else None
     categorical = {"y": "binary"} if binary else None
-    params = INDICATOR_PARAMS if args.indicators else PARAMS
-    stem = ("sbc_indicators_ranks" if args.indicators else
+    params = INDICATOR_PARAMS if args.indicators else FREE_PARAMS if free else PARAMS
+    stem = ("sbc_indicators_ranks" if args.indicators else "sbc_free_ranks" if free else
             "sbc_binary_ranks" if binary else "sbc_ranks")
     out = ROOT / "bench" / "out"
     out.mkdir(parents=True, exist_ok=True)
@@ -170,7 +190,8 @@ def main(argv=None):
     base_values = {"level_mean": 0, "slope_mean": 0, "lag": 0.3, "initial_mean": 0,
                    "level_var": 1, "level_slope_cov": 0, "slope_var": 0.1,
                    "initial_level_cov": 0, "initial_slope_cov": 0, "initial_var": 1,
-                   "resid_var": 0.5}
+                   **({f"resid_var[{t}]": 0.5 for t in range(2, N_WAVES + 1)} if free
+                      else {"resid_var": 0.5})}
     if args.indicators:  # the measurement part's values for the reference panel
         design = Simulation(spec=spec, params={}, n_units=2, n_waves=N_WAVES, seed=0,
                             indicators=indicators).structure
@@ -193,7 +214,8 @@ def main(argv=None):
         prior_set, _ = categorical_priors(cat, ref, priors)
     else:
         structure = structure_for(spec, ref)
-        priors = indicator_priors(structure) if args.indicators else PRIORS
+        priors = (indicator_priors(structure) if args.indicators else
+                  free_priors(structure) if free else PRIORS)
         prior_set = resolve_priors(structure, ref, priors)
     thetas = prior_draws(prior_set, draws=args.replications, seed=args.seed)
     seeds = np.random.SeedSequence(args.seed).generate_state(2 * args.replications)
@@ -245,9 +267,10 @@ def rank_test(ranks: pd.DataFrame, params, bins: int, png: Path) -> pd.DataFrame
     fig, axes = plt.subplots(1, len(params), figsize=(4.5 * len(params), 3.2))
     rows = []
     for ax, name in zip(np.atleast_1d(axes), params):
-        L = int(ranks[f"{name}__L"].iloc[0])
+        Ls = ranks[f"{name}__L"].to_numpy(int)  # per fit: a careful re-run keeps more draws
+        L = int(Ls.min())
         # B bins of the L + 1 possible ranks 0..L (L + 1 divisible by B, see sbc_ranks)
-        counts = np.bincount(ranks[name].to_numpy(int) * bins // (L + 1), minlength=bins)
+        counts = np.bincount(ranks[name].to_numpy(int) * bins // (Ls + 1), minlength=bins)
         R = len(ranks)
         chi2, p = stats.chisquare(counts)
         lo, hi = stats.binom.ppf([0.005, 0.995], R, 1 / bins)

@@ -47,6 +47,7 @@ from bayeslong.evaluate.checks import conditional_normal
 from bayeslong.infer.diagnostics import convergence_problems
 from bayeslong.infer.likelihood import mvn_logpdf
 from bayeslong.infer.marginal import treatment_conflict
+from bayeslong.infer.pooling import POOLING_KEY
 from bayeslong.model.moments import moment_draws, unit_means
 from bayeslong.model.spec import Spec, check_spec
 from bayeslong.model.structure import structure_for
@@ -660,6 +661,8 @@ def forecast_score(spec: Spec, panel, **fit_kwargs) -> ForecastScore:
         if not prior_set.has_callable and np.isfinite(starts).all():
             data = hidden
             kwargs["priors"] = {p.parameter: (p.family, *p.args) for p in prior_set.priors}
+            kwargs["priors"].update({k: v for k, v in prior_set.user_spec().items()
+                                     if k == POOLING_KEY})
     # convergence problems are kept with the score; the start values' "mean of empty slice"
     # over the hidden wave is dropped (checked finite above), every other warning passed on
     drop = (lambda w: data is not past and str(w.message) == "Mean of empty slice")

@@ -23,6 +23,7 @@ import pandas as pd
 
 from bayeslong.errors import SpecError
 from bayeslong.evaluate.checks import check_fit
+from bayeslong.infer import pooling as pool_terms
 from bayeslong.infer.batch import fit_defaults, summarise_draws
 
 #: Power-scaling sensitivity at or above this value is flagged (Kallioinen et al. 2024,
@@ -37,7 +38,9 @@ def log_prior_draws(fit) -> np.ndarray:
     own prior set, in the variables the priors are placed on: each ``value`` prior at the
     parameter, each variance's prior at its standard deviation, and each covariance
     block's LKJ(eta) correlation prior through its kernel (eta - 1) log det C
-    (Lewandowski, Kurowicka & Joe 2009, eq. 16). Densities come from the PyMC
+    (Lewandowski, Kurowicka & Joe 2009, eq. 16), and the pooling of the residual log-SDs
+    over waves (:func:`bayeslong.infer.pooling.log_density`; part of the prior, so it is
+    scaled with it). Densities come from the PyMC
     distributions of :func:`bayeslong.priors.family_dist`; constants do not matter because
     power-scaling weights are normalised.
 
@@ -89,6 +92,8 @@ def log_prior_draws(fit) -> np.ndarray:
         sd = np.sqrt(np.einsum("sii->si", S))
         C = S / (sd[:, :, None] * sd[:, None, :])
         total += (prior_set.lkj_eta(b) - 1.0) * np.linalg.slogdet(C)[1]
+    with np.errstate(divide="ignore"):  # a variance draw of 0: -inf, as in the model
+        total += pool_terms.log_density(prior_set.pooling, theta)
     return total.reshape(shape)
 
 

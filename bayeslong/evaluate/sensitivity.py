@@ -64,6 +64,7 @@ from bayeslong.infer.batch import (
     run_many,
     summarise_draws,
 )
+from bayeslong.infer.pooling import POOLING_KEY, residual_groups
 from bayeslong.model.spec import Spec, catalog, check_spec, model
 from bayeslong.model.structure import structure_for
 
@@ -180,7 +181,10 @@ def _prior_names(spec: Spec, panel) -> tuple[str, ...]:
         from bayeslong.model.thresholds import categorical_structure
 
         return tuple(categorical_structure(spec, panel).names)
-    return tuple(structure_for(spec, panel).names)
+    structure = structure_for(spec, panel)
+    # the pooling's scale, where the model has residual variances to pool (infer/pooling.py)
+    pooled = (POOLING_KEY,) if residual_groups(structure) else ()
+    return tuple(structure.names) + pooled
 
 
 # --- the sensitivity table -------------------------------------------------------------------
@@ -506,6 +510,7 @@ def _matching_fit(task: Task, fits, fit_kwargs: dict):
     """
     import inspect
 
+    from bayeslong.infer.sampling import CAREFUL_DRAWS_FACTOR
     from bayeslong.infer.sampling import fit as fit_fn
 
     defaults = {k: v.default for k, v in inspect.signature(fit_fn).parameters.items()}
@@ -518,7 +523,9 @@ def _matching_fit(task: Task, fits, fit_kwargs: dict):
                 and _same_priors(fit, priors)
                 and int(fit.seed) == int(want["seed"])
                 and int(post.sizes["chain"]) == int(want["chains"])
-                and int(post.sizes["draw"]) == int(want["draws"])):
+                # a careful re-run keeps CAREFUL_DRAWS_FACTOR times the draws asked for
+                and int(post.sizes["draw"]) == int(want["draws"]) * (
+                    CAREFUL_DRAWS_FACTOR if fit.rerun else 1)):
             return fit
     return None
 

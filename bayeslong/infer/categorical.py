@@ -121,7 +121,9 @@ def categorical_priors(cat: Categorical, panel, priors: dict | None = None):
         raise SpecError(f"`priors` names {fixed[0]!r}, which the categorical model fixes at "
                         f"{cat.pinned[fixed[0]]:g} (docs/model-family.md, 'Categorical "
                         "indicators'); leave it out")
-    return resolve_priors(cat.structure, _LatentScale(panel, cat), priors), gaps
+    # no pooling of residual log-SDs here: the categorical model's latent scale pins
+    # variances and its PyMC model does not carry the term (docs/priors.md)
+    return resolve_priors(cat.structure, _LatentScale(panel, cat), priors, pooling=False), gaps
 
 
 def _observed_parts(cat: Categorical, panel):

@@ -16,7 +16,8 @@ coefficient: effects coding, approximate invariance; docs/engine.md, "Matrix for
 a table of scalar random variables (x position, parameter, family, target, transform)
 with three hyperparameters each; a table of LKJ covariance blocks (x offset, q, family,
 offset of the members' parameter indices) with each member's hyperparameters, the LKJ
-shape and the normalising constant; the pattern counts, cross-products and masks.
+shape and the normalising constant; the pooling terms of residual log-SDs (members, tau);
+the pattern counts, cross-products and masks.
 
 The log density is term for term that of :func:`bayeslong.infer.pymc_model.build_model`
 at the same unconstrained point (PyMC's default transforms and their log-Jacobians
@@ -57,7 +58,10 @@ H_MASKS = 29
 H_NTERMS = 30    # number of linear-combination entries (Matrix.terms of model/structure.py)
 H_TERMS = 31     # their table in ints (3 per row: matrix, flat position, parameter)
 H_TERMS_F = 32   # their coefficients in floats
-HEADER_SIZE = 33
+H_NPOOL = 33     # number of pooling terms of residual log-SDs (infer/pooling.py)
+H_POOL = 34      # their table in ints (per term: number of members m, then m parameters)
+H_POOL_F = 35    # their tau in floats (one per term)
+HEADER_SIZE = 36
 BLOCK_ROW = 6    # x offset, q, SD family, member table offset, SD transform, number of SDs
 
 # family codes (generic_logp.FAMILY_CODES maps the names of priors.FAMILIES to these)
@@ -328,8 +332,8 @@ def _block_put(ints, mo, q, S, theta):
 def logp_grad(x, ints, floats):
     """Log posterior density at the unconstrained point ``x`` and its gradient.
 
-    log p = sum of the priors (with the log-Jacobians of PyMC's transforms) + the pattern
-    log-likelihood at the implied moments. The gradient is analytic: the likelihood's
+    log p = sum of the priors (with the log-Jacobians of PyMC's transforms) + the pooling
+    of residual log-SDs + the pattern log-likelihood at the implied moments. The gradient is analytic: the likelihood's
     derivatives in (c, D, Sigma) (:func:`pattern_kernel`) are chained to the model matrices
     by matrix calculus (Magnus & Neudecker 1999), with T = (I - B)^-1, Phi = T Psi T':
 
@@ -389,6 +393,27 @@ def logp_grad(x, ints, floats):
                 grad[pos] += -2.0 * coef * math.tanh(x[pos])
                 pos += 1
         fpos += 2 + 3 * q
+    # --- residual log-SDs pooled over waves: -1/2 sum_t (l_t - mean l)^2 / tau^2 with
+    # l_t = log(theta_k) / 2 (infer/pooling.py); d/dtheta_k = -(l_k - mean l) / (2 tau^2 theta_k)
+    # (the deviations sum to zero, so the mean's own derivative drops out)
+    gtheta = np.zeros(n_par)
+    po = ints[H_POOL]
+    for g in range(ints[H_NPOOL]):
+        m = ints[po]
+        tau2 = floats[ints[H_POOL_F] + g] ** 2
+        mean = 0.0
+        for j in range(m):
+            v = theta[ints[po + 1 + j]]
+            if not v > 0.0:
+                return -np.inf, np.zeros(n_x)
+            mean += 0.5 * math.log(v)
+        mean /= m
+        for j in range(m):
+            k = ints[po + 1 + j]
+            d = 0.5 * math.log(theta[k]) - mean
+            lp += -0.5 * d * d / tau2
+            gtheta[k] += -d / (2.0 * tau2 * theta[k])
+        po += 1 + m
     if not np.isfinite(lp):
         return -np.inf, np.zeros(n_x)
     # --- likelihood at the implied moments ------------------------------------------------
@@ -435,7 +460,6 @@ def logp_grad(x, ints, floats):
     gPsi = T.T @ gPhi @ T
     gT = v @ a.T + LgD @ G.T + 2.0 * (gPhi @ TPsi)
     gB = T.T @ gT @ T.T
-    gtheta = np.zeros(n_par)
     _scatter(ints, floats, 0, nL, 1, ga, gtheta)
     _scatter(ints, floats, 1, nL, nL, gB, gtheta)
     _scatter(ints, floats, 2, nL, nW, gG, gtheta)

@@ -35,7 +35,7 @@ FAMILY_CODES = {"normal": 0, "student_t": 1, "uniform": 2, "halfnormal": 3, "hal
                 "exponential": 5, "lognormal": 6, "gamma": 7}
 _IDENTITY, _LOG, _INTERVAL = range(3)
 _MATRICES = ("a", "B", "G", "Psi", "nu", "Lam", "Theta")
-HEADER_SIZE = 33  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
+HEADER_SIZE = 36  # generic_kernel.HEADER_SIZE (that module imports numba; this one need not)
 BLOCK_ROW = 6     # generic_kernel.BLOCK_ROW
 
 
@@ -234,6 +234,12 @@ def _build_layout(structure: Structure, prior_set: PriorSet) -> Layout:
         ints.extend(mem)
     ints[26] = len(floats)
     floats.extend(bfloats)
+    # pooling of residual log-SDs (header 33-35): per term its members, then the taus
+    ints[33], ints[34] = len(prior_set.pooling), len(ints)
+    for g in prior_set.pooling:
+        ints.extend([len(g.members), *g.members])
+    ints[35] = len(floats)
+    floats.extend(g.tau for g in prior_set.pooling)
     ints[0] = n_x
     return Layout(structure=structure, prior_set=prior_set, ints=np.asarray(ints, dtype=np.int64),
                   floats=np.asarray(floats, dtype=float), n_x=n_x, value_names=tuple(names))

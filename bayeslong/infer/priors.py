@@ -28,6 +28,7 @@ import pandas as pd
 from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import SpecError
+from bayeslong.infer import pooling as pool_terms
 from bayeslong.model.structure import Structure, structure_for
 
 #: Prior families: argument names and the support they cover.
@@ -105,6 +106,11 @@ class PriorSet:
     structure: Structure
     priors: tuple[Prior, ...]
     blocks: tuple[int, ...] = field(default=())  # indices of covariance blocks with q > 1 (LKJ)
+    #: the partial pooling of residual log-SDs over waves, one term per process that has
+    #: two or more free residual variances (infer/pooling.py; empty when switched off)
+    pooling: tuple = field(default=())
+    #: what ``priors`` gave for the pooling, ``(tau,)`` or ``("off",)``; None: the default
+    pooling_user: tuple | None = None
 
     def __getitem__(self, name: str) -> Prior:
         for p in self.priors:
@@ -126,13 +132,14 @@ class PriorSet:
     @property
     def key(self) -> str:
         """Equal for two prior sets that build the same model graph (families, not values)."""
-        return json.dumps([(p.parameter, p.family, p.target) for p in self.priors])
+        return json.dumps([(p.parameter, p.family, p.target) for p in self.priors]
+                          + [(g.name, list(g.members)) for g in self.pooling])
 
     @property
     def hyper(self) -> np.ndarray:
         """All numeric hyperparameters, concatenated in parameter order (a model input)."""
         vals = [a for p in self.priors if p.family != "callable" for a in p.args]
-        return np.asarray(vals, dtype=float)
+        return np.asarray(vals + [g.tau for g in self.pooling], dtype=float)
 
     def hyper_slices(self) -> dict[str, slice]:
         """Where each parameter's arguments sit in :attr:`hyper`."""
@@ -142,6 +149,9 @@ class PriorSet:
                 continue
             out[p.parameter] = slice(pos, pos + len(p.args))
             pos += len(p.args)
+        for g in self.pooling:  # after every parameter's arguments
+            out[g.name] = slice(pos, pos + 1)
+            pos += 1
         return out
 
     def table(self) -> pd.DataFrame:
@@ -154,17 +164,29 @@ class PriorSet:
                   + ")" if p.block >= 0 else "correlation"}[p.target]
             rows.append({"parameter": p.parameter, "family": p.family, "arguments": p.describe(),
                          "on": on, "source": p.source})
+        for g in self.pooling:  # joint terms over several variances, after the parameters
+            rows.append({"parameter": g.name, "family": pool_terms.FAMILY,
+                         "arguments": f"tau={_fmt(g.tau)}",
+                         "on": pool_terms.describe(g, self.structure), "source": g.source})
         return pd.DataFrame(rows).set_index("parameter")
 
     def to_dict(self) -> dict:
         """Plain data (JSON safe); user factories are recorded by name only."""
-        return {p.parameter: {"family": p.family, "args": list(p.args), "target": p.target,
-                              "source": p.source, "describe": p.describe()} for p in self.priors}
+        out = {p.parameter: {"family": p.family, "args": list(p.args), "target": p.target,
+                             "source": p.source, "describe": p.describe()} for p in self.priors}
+        for g in self.pooling:
+            out[g.name] = {"family": pool_terms.FAMILY, "args": [g.tau], "target": "log_sd",
+                           "source": g.source, "describe": f"tau={_fmt(g.tau)}",
+                           "members": [self.structure.names[k] for k in g.members]}
+        return out
 
     def user_spec(self) -> dict:
         """The ``priors=`` argument that rebuilds this set (factories cannot be restored)."""
-        return {p.parameter: (p.family, *p.args) for p in self.priors
-                if p.source == "user" and p.family != "callable"}
+        out = {p.parameter: (p.family, *p.args) for p in self.priors
+               if p.source == "user" and p.family != "callable"}
+        if self.pooling_user is not None:  # the pooling's scale, or ("off",)
+            out[pool_terms.POOLING_KEY] = self.pooling_user
+        return out
 
 
 #: Name of the transform of a block's correlation matrix to its canonical partial
@@ -427,7 +449,8 @@ def _user_prior(default: Prior, value: Any, structure: Structure) -> Prior:
                  block=default.block)
 
 
-def resolve_priors(structure: Structure, panel, priors: dict | None = None) -> PriorSet:
+def resolve_priors(structure: Structure, panel, priors: dict | None = None, *,
+                   pooling: bool = True) -> PriorSet:
     """Merge user overrides into the defaults and validate them.
 
     Parameters
@@ -438,7 +461,13 @@ def resolve_priors(structure: Structure, panel, priors: dict | None = None) -> P
         Parameter name -> ``(family, *args)`` or a callable ``name -> PyMC variable``.
         For a variance the prior is on its standard deviation (the factory receives the name
         ``"<parameter>__sd"``); for a covariance ``("lkj", eta)`` sets the LKJ shape of its
-        whole block.
+        whole block. ``"residual_pooling"``: the scale tau of the partial pooling of the
+        residual log-SDs over waves (a positive number; default
+        :data:`~bayeslong.infer.pooling.DEFAULT_TAU`), or None / "off" to switch it off
+        (:mod:`bayeslong.infer.pooling`; docs/priors.md, "Pooled residual variances").
+    pooling : bool, default True
+        False for a model that cannot take the pooling (the categorical model): none, and a
+        tau given in ``priors`` is an error.
 
     Returns
     -------
@@ -451,9 +480,17 @@ def resolve_priors(structure: Structure, panel, priors: dict | None = None) -> P
         the families), wrong number or range of arguments, or conflicting LKJ shapes.
     """
     defaults = default_priors(structure, panel)
-    priors = dict(priors or {})
-    if not isinstance(priors, dict):
+    if priors is not None and not isinstance(priors, dict):
         raise SpecError(f"`priors` must be a dict of parameter name -> prior; got {type(priors).__name__}")
+    priors = dict(priors or {})
+    given = pool_terms.POOLING_KEY in priors
+    tau = priors.pop(pool_terms.POOLING_KEY, pool_terms.DEFAULT_TAU)
+    if not pooling:
+        if given and pool_terms.parse_tau(tau) is not None:
+            raise SpecError(f"priors[{pool_terms.POOLING_KEY!r}]: this model (categorical "
+                            "variables) has no pooling of residual variances; leave it out")
+        tau = None
+    pools = pool_terms.poolings(structure, tau, "user" if given else "default")
     unknown = [k for k in priors if k not in structure.names]
     if unknown:
         import difflib
@@ -489,7 +526,10 @@ def resolve_priors(structure: Structure, panel, priors: dict | None = None) -> P
                 f"(they form the scales of an LKJ covariance prior); got {listed}. Give "
                 f"{', '.join(m.parameter for m in members)} the same family, e.g. "
                 + ", ".join(f"{m.parameter!r}: ('halfnormal', <sigma>)" for m in members))
-    return PriorSet(structure=structure, priors=tuple(out), blocks=lkj_blocks)
+    user_tau = pool_terms.parse_tau(tau) if given else None
+    given = given and bool(pool_terms.residual_groups(structure))  # else nothing to record
+    return PriorSet(structure=structure, priors=tuple(out), blocks=lkj_blocks, pooling=pools,
+                    pooling_user=None if not given else (user_tau,) if user_tau else ("off",))
 
 
 # --- one assembly of the parameter vector (used by build and by prior draws) ---------------
@@ -581,7 +621,11 @@ def prior_draws(prior_set: PriorSet, *, draws: int, seed: int = 0) -> np.ndarray
     drawn = dict(zip(names, (np.asarray(o, dtype=float) for o in out)))
     values = {k: v for k, v in drawn.items() if isinstance(k, str)}
     corr = {k: v for k, v in drawn.items() if not isinstance(k, str)}
+    if prior_set.pooling:  # the pooled SDs are independent of the rest a priori
+        values.update(pool_terms.sd_draws(prior_set.pooling, prior_set.priors, int(draws), rng,
+                                           family_dist))
     return assemble_theta(prior_set, values, corr, np.stack)
+
 
 
 def prior_predictive(spec, panel, *, draws: int = 500, seed: int = 0, priors: dict | None = None):

@@ -23,6 +23,7 @@ from pymc.logprob.transforms import Transform
 
 from bayeslong.dims import PARAMETER
 from bayeslong.errors import SpecError
+from bayeslong.infer import pooling as pool_terms
 from bayeslong.infer.likelihood import pattern_arrays
 from bayeslong.infer.loglik_op import pattern_loglik
 from bayeslong.infer.priors import (
@@ -75,7 +76,9 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
 
     Notes
     -----
-    log p(theta | y) = sum_p loglik_p(c, D, Sigma) + log p(theta) + const, where
+    log p(theta | y) = sum_p loglik_p(c, D, Sigma) + log p(theta) + const, where log p(theta)
+    includes the pooling of residual log-SDs over waves (a potential named
+    ``residual_pooling``; :mod:`bayeslong.infer.pooling`), and
     ``loglik_p`` is :func:`bayeslong.infer.loglik_op.pattern_loglik` at the implied moments
     (c, D, Sigma) of :func:`bayeslong.moments.implied_moments` (docs/engine.md).
     """
@@ -109,6 +112,10 @@ def build_model(spec, panel, priors: dict | PriorSet | None = None) -> pm.Model:
         for i, p in enumerate(prior_set.priors):
             if p.target != "value":  # variances and covariances are not themselves RVs
                 pm.Deterministic(p.parameter, theta[i])
+        if prior_set.pooling:  # residual log-SDs pooled over waves (infer/pooling.py)
+            taus = [hyper[slices[g.name].start] for g in prior_set.pooling]
+            pm.Potential(pool_terms.POOLING_KEY,
+                         pool_terms.log_density(prior_set.pooling, theta, taus, pt))
         c, D, Sigma = implied_moments(structure, theta)
         pm.Potential("loglik", pattern_loglik(c, D, Sigma, data["counts"], data["cross"],
                                               data["masks"]))

@@ -28,6 +28,7 @@ import pandas as pd
 from bayeslong.arguments import seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import SpecError
+from bayeslong.infer import pooling as pool_terms
 from bayeslong.infer.diagnostics import (  # noqa: F401  (their home before; imported from here)
     EBFMI_MIN,
     ESS_PER_CHAIN,
@@ -50,6 +51,9 @@ SAMPLERS = ("auto", "generic", "nutpie", "pymc")
 #: re-run's after a first run that failed a convergence check (docs/engine.md).
 FIRST_TARGET_ACCEPT = 0.8
 CAREFUL_TARGET_ACCEPT = 0.95
+#: The careful re-run keeps this many times the draws per chain (the ESS thresholds are
+#: absolute: a posterior that mixes slowly but correctly needs more draws; docs/engine.md)
+CAREFUL_DRAWS_FACTOR = 2
 
 # --------------------------------------------------------------------------------------------
 # the Fit object
@@ -246,6 +250,10 @@ def stored_priors(attrs, path) -> dict:
     """The user's prior overrides stored by :meth:`Fit.save` (warns about lost factories)."""
     user = {k: tuple(v) for k, v in json.loads(attrs["bayeslong_priors"]).items()}
     table = json.loads(attrs["bayeslong_prior_table"])
+    if not any(v["family"] == pool_terms.FAMILY for v in table.values()):
+        # saved before the pooling of residual log-SDs was a default (or without it): keep
+        # the prior the fit was made under; a model without pooled variances ignores this
+        user.setdefault(pool_terms.POOLING_KEY, ("off",))
     lost = [k for k, v in table.items() if v["family"] == "callable"]
     if lost:
         warnings.warn(f"the fit in {str(path)!r} used prior factories for {', '.join(lost)}; "
@@ -511,9 +519,11 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
         Chains run in parallel (default: min(chains, CPU count)); each uses one BLAS thread.
     target_accept : float, optional
         The sampler's target acceptance rate (0 < value < 1). By default the fit samples at
-        0.8 and, when that run fails a convergence check, samples once more at 0.95 and
-        keeps that run (a smaller step follows curved or narrow posteriors that the first
-        run could not; docs/engine.md, "The careful re-run"). A value given here is used
+        0.8 and, when that run fails a convergence check, samples once more at 0.95 with
+        twice the draws per chain (``CAREFUL_DRAWS_FACTOR``) and keeps that run (a smaller
+        step follows curved or narrow posteriors that the first run could not, and the
+        extra draws reach the absolute ESS thresholds where mixing is slow; docs/engine.md,
+        "The careful re-run"). A re-run fit so has 2 x ``draws`` draws per chain. A value given here is used
         as it is, without a re-run. ``Fit.target_accept`` and ``Fit.rerun`` say what ran.
 
     Returns
@@ -603,9 +613,12 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
         if target_accept is None:
             problems = flagged(diagnose(raw, structure.names))
             if problems:  # docs/engine.md, "The careful re-run"
+                more = CAREFUL_DRAWS_FACTOR * settings["draws"]
                 rerun = (f"the run at target_accept {accept} failed the convergence checks "
-                         f"({problems}); sampled again at {CAREFUL_TARGET_ACCEPT}")
+                         f"({problems}); sampled again at {CAREFUL_TARGET_ACCEPT} with {more} "
+                         "draws per chain")
                 accept = CAREFUL_TARGET_ACCEPT
+                settings["draws"] = more
                 raw, more_compile, more_sample = run(which, accept)
                 compile_s, sample_s = compile_s + more_compile, sample_s + more_sample
     build_s = state.get("build", 0.0)

@@ -288,8 +288,11 @@ def study_findings(results) -> dict:
 # --------------------------------------------------------------------------------------------
 
 
-def _prior_text(prior) -> str:
+def prior_text(prior) -> str:
+    """A prior override as the report writes it: family(arguments), or the pooling's tau."""
     family, *args = prior
+    if not isinstance(family, str) or (family == "off" and not args):  # residual_pooling
+        return f"tau {family:g}" if not isinstance(family, str) else "off"
     return f"{family}({', '.join(f'{a:g}' for a in args)})"
 
 
@@ -371,7 +374,7 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
              "random " + cite("fiml", "(Arbuckle 1996)") + ", with covariates treated as fixed.")
     facts = _sampling_facts(results) if results.method == "bayes" else None
     if facts is not None:
-        over = "; ".join(f"{k} ~ {_prior_text(v)}" for k, v in study.priors.items())
+        over = "; ".join(f"{k} ~ {prior_text(v)}" for k, v in study.priors.items())
         m.append("Every parameter had a weakly informative default prior scaled to the data "
                  "(listed per model in the supplementary report)"
                  + (f", except the prior(s) set for this study: {over}" if over else "") + ".")

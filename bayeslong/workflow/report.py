@@ -24,7 +24,7 @@ from typing import Any
 
 from bayeslong.evaluate.comparison import LFO_COLUMNS
 from bayeslong.workflow import category_report
-from bayeslong.workflow.findings import add_findings, add_manuscript_text
+from bayeslong.workflow.findings import add_findings, add_manuscript_text, prior_text
 from bayeslong.workflow.measurement_section import add_measurement_section
 from bayeslong.workflow.results import slug, table_of
 
@@ -306,7 +306,7 @@ def _section_header(doc: _Doc, results) -> None:
              ("predictive checks", f"on ({study.checks['ppc_draws']} draws)"
               if study.checks["ppc"] else "off"),
              ("lag sensitivity axes", ", ".join(axes) or "none"),
-             ("prior overrides", "; ".join(f"{k} ~ {v[0]}({', '.join(f'{a:g}' for a in v[1:])})"
+             ("prior overrides", "; ".join(f"{k} ~ {prior_text(v)}"
                                            for k, v in study.priors.items()) or "none"),
              ("seed", str(s["seed"])), ("output folder", str(study.output))]
     import pandas as pd

@@ -19,6 +19,7 @@ from typing import Callable
 
 from bayeslong.errors import BayeslongError, SpecError
 from bayeslong.evaluate.comparison import LFO_COLUMNS
+from bayeslong.infer.pooling import POOLING_KEY
 from bayeslong.model.measurement import nearest_exact
 from bayeslong.workflow.category_run import (
     NO_ML,
@@ -83,12 +84,12 @@ def check_priors(study: Study, panel) -> None:
     structures = {c.label: structure_for(c.spec, panel) for c in study.models}
     every = sorted({n for s in structures.values() for n in s.names})
     for name in study.priors:
-        if not any(name in s.names for s in structures.values()):
+        if name != POOLING_KEY and not any(name in s.names for s in structures.values()):
             raise SpecError(
                 f"study file {study.source.name}: `priors.{name}` names no parameter of any "
                 f"candidate{nearest_hint(name, every)} (the candidates' parameters: {', '.join(every)})")
     for label, structure in structures.items():
-        mine = {k: v for k, v in study.priors.items() if k in structure.names}
+        mine = {k: v for k, v in study.priors.items() if k in structure.names or k == POOLING_KEY}
         try:
             resolve_priors(structure, panel, mine)
         except SpecError as err:
@@ -99,7 +100,7 @@ def _priors_for(study: Study, spec, panel) -> dict:
     from bayeslong.model.structure import structure_for
 
     names = structure_for(spec, panel).names
-    return {k: v for k, v in study.priors.items() if k in names}
+    return {k: v for k, v in study.priors.items() if k in names or k == POOLING_KEY}
 
 
 def run_study(study: Study, *, fit: bool = True, progress: Callable[[str], None] | None = _stderr,

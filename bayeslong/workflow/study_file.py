@@ -87,6 +87,11 @@ Top level
     A prior override by parameter name, e.g. ``lag = ["normal", 0.3, 0.1]``. It applies to
     every candidate that has the parameter; a name no candidate has is an error.
 
+``residual_pooling = 0.5`` or ``"off"``
+    The scale tau of the default pooling of the residual log-SDs over waves (default
+    0.35), or off, for every candidate with two or more free residual variances of one
+    process (docs/priors.md, "Pooled residual variances").
+
 ``[sampling]``
 
 ``method`` (``"bayes"`` or ``"ml"``, default ``"bayes"``)
@@ -211,6 +216,7 @@ from typing import Any
 
 from bayeslong.data.validation import SOURCE
 from bayeslong.errors import DataError, SpecError
+from bayeslong.infer.pooling import POOLING_KEY, parse_tau
 from bayeslong.workflow.study_data import DataSource, nearest_hint, read_data_table
 
 __all__ = ["Study", "Candidate", "DataSource", "load_study"]
@@ -623,6 +629,13 @@ def _read_priors(r: _Reader, raw: dict) -> dict:
     priors = {}
     for name, value in raw.items():
         where = f"priors.{name}"
+        if name == POOLING_KEY:  # a number (tau) or "off": every candidate it applies to
+            try:
+                tau = parse_tau(value)
+            except SpecError as err:
+                r.fail(f"`{where}`: {err}")
+            priors[name] = (tau,) if tau is not None else ("off",)
+            continue
         if (not isinstance(value, list) or not value or not isinstance(value[0], str)
                 or not all(isinstance(v, numbers.Real) and not isinstance(v, bool)
                            for v in value[1:])):

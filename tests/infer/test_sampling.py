@@ -12,7 +12,7 @@ from scipy import stats
 
 import bayeslong as bl
 from bayeslong.errors import ConvergenceWarning, SpecError
-from bayeslong.infer.sampling import fit, load_fit
+from bayeslong.infer.sampling import CAREFUL_DRAWS_FACTOR, fit, load_fit
 from bayeslong.model.moments import moments_at
 from bayeslong.model.structure import build_structure
 
@@ -120,7 +120,10 @@ def test_posterior_names_dims_and_draw_matrix(sleep_fit):
     assert set(post.data_vars) == set(sleep_fit.structure.names)
     assert all(post[n].dims == ("chain", "draw") for n in post.data_vars)
     theta = sleep_fit.theta_draws()
-    assert theta.shape == (600, sleep_fit.structure.n_params)
+    # a careful re-run keeps twice the draws per chain (infer/sampling.py)
+    per_chain = post.sizes["draw"]
+    assert per_chain == 300 * (CAREFUL_DRAWS_FACTOR if sleep_fit.rerun else 1)
+    assert theta.shape == (post.sizes["chain"] * per_chain, sleep_fit.structure.n_params)
     j = sleep_fit.structure.names.index("slope_var")
     np.testing.assert_array_equal(theta[:, j], post["slope_var"].values.reshape(-1))
     # a covariance is sd_level * sd_slope * r with |r| <= 1 (LKJ block)
