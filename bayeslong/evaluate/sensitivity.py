@@ -52,9 +52,9 @@ from bayeslong.errors import SpecError
 # log_prior_draws and power_scaling are re-exported: they were this module's public names
 from bayeslong.evaluate.power_scaling import (  # noqa: F401
     PSENS_THRESHOLD,
-    power_scaling_summary,
     log_prior_draws,
     power_scaling,
+    power_scaling_summary,
 )
 from bayeslong.infer.batch import (
     BatchResult,
