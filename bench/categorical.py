@@ -10,13 +10,14 @@ does: the parameters with the lowest bulk ESS, leapfrog steps per draw and tree 
 E-BFMI per chain, sampling seconds per leapfrog step, and the posterior correlations of the
 lag (docs/engine.md, "Categorical fits: cost and mixing").
 
-Command:  .venv/bin/python bench/categorical.py [sampler] [N]      (sampler: nutpie | pymc)
+Command:  .venv/bin/python bench/categorical.py [sampler] [N] [--draws D] [--target-accept A]
+          (sampler: nutpie | pymc; defaults 200 units, 1000 draws per chain, and the fit's
+          default target acceptance 0.8)
 Machine:  2-core Linux VM shared with other jobs; read the timings with the load average
           printed at the start.
 """
 
 import os
-import sys
 import time
 import warnings
 
@@ -34,21 +35,22 @@ TRUE = {"level_mean": 0.0, "slope_mean": 0.1, "lag": 0.4, "initial_mean": 0.0,
         "initial_level_cov": 0.3, "initial_slope_cov": 0.0, "resid_var": 0.5}
 
 
-def main(sampler="nutpie", n=200):
+def main(sampler="nutpie", n=200, draws=1000, target_accept=None):
     print("load average:", os.getloadavg())
     spec = bl.model("alt", residuals="equal")
     panel = bl.Simulation(spec=spec, params=TRUE, n_units=n, n_waves=5, seed=11,
                           categorical={"y": "binary"}).panel()
     t0 = time.perf_counter()
-    fit = bl.fit(spec, panel, draws=1000, tune=1000, chains=4, seed=2, sampler=sampler,
-                 progressbar=False, loglik_draws=1000)
+    fit = bl.fit(spec, panel, draws=draws, tune=1000, chains=4, seed=2, sampler=sampler,
+                 progressbar=False, loglik_draws=1000, target_accept=target_accept)
     total = time.perf_counter() - t0
     ess = float(az.ess(fit.idata.posterior[["lag"]])["lag"])
     rhat = float(az.rhat(fit.idata.posterior[["lag"]])["lag"])
     sample_s = fit.timing["sample"]
     print(f"sampler {fit.sampler}: build {fit.timing['build']:.1f} s, compile "
-          f"{fit.timing['compile']:.1f} s, sampling {sample_s:.1f} s (4 x 1000 after 1000 "
-          f"warm-up), total with log-likelihood {total:.1f} s")
+          f"{fit.timing['compile']:.1f} s, sampling {sample_s:.1f} s (4 x {draws} after 1000 "
+          f"warm-up, target acceptance {fit.target_accept}), total with log-likelihood "
+          f"{total:.1f} s")
     print(f"lag: mean {float(fit.idata.posterior['lag'].mean()):.3f} (true {TRUE['lag']}), "
           f"ESS bulk {ess:.0f}, R-hat {rhat:.3f}, ESS/s (sampling) {ess / sample_s:.1f}; "
           f"divergences {fit.diagnostics().attrs['divergences']}")
@@ -89,4 +91,12 @@ def main(sampler="nutpie", n=200):
 
 
 if __name__ == "__main__":
-    main(*(sys.argv[1:2] or ["nutpie"]), *([int(sys.argv[2])] if len(sys.argv) > 2 else []))
+    import argparse
+
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("sampler", nargs="?", default="nutpie", choices=("nutpie", "pymc"))
+    ap.add_argument("n", nargs="?", type=int, default=200)
+    ap.add_argument("--draws", type=int, default=1000)
+    ap.add_argument("--target-accept", type=float, default=None)
+    a = ap.parse_args()
+    main(a.sampler, a.n, a.draws, a.target_accept)

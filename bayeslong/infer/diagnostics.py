@@ -143,12 +143,17 @@ def flagged(table: pd.DataFrame) -> str:
     return "; ".join(parts)
 
 
-def warn_convergence(table: pd.DataFrame, *, stacklevel: int = 3) -> None:
-    """Emit one ConvergenceWarning naming each flagged parameter and threshold."""
+def warn_convergence(table: pd.DataFrame, *, stacklevel: int = 3,
+                     advice: str = "Run more draws or chains (draws=, chains=), or check the "
+                                   "model and priors.") -> None:
+    """Emit one ConvergenceWarning naming each flagged parameter and threshold.
+
+    ``advice`` ends the message: what to try (a kind of fit may know better than the
+    generic default, e.g. a categorical fit).
+    """
     problems = flagged(table)
     if problems:
         warnings.warn(
             "the fit has not converged by the criteria of Vehtari et al. (2021) (R-hat < "
             f"{RHAT_MAX}, bulk and tail ESS > {ESS_PER_CHAIN} per chain): " + problems
-            + ". Run more draws or chains (draws=, chains=), or check the model and priors.",
-            ConvergenceWarning, stacklevel=stacklevel)
+            + ". " + advice, ConvergenceWarning, stacklevel=stacklevel)

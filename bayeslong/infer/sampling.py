@@ -53,7 +53,7 @@ FIRST_TARGET_ACCEPT = 0.8
 CAREFUL_TARGET_ACCEPT = 0.95
 #: The careful re-run keeps this many times the draws per chain (the ESS thresholds are
 #: absolute: a posterior that mixes slowly but correctly needs more draws; docs/engine.md)
-CAREFUL_DRAWS_FACTOR = 2
+CAREFUL_DRAWS_FACTOR = 3
 
 # --------------------------------------------------------------------------------------------
 # the Fit object
@@ -520,10 +520,10 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     target_accept : float, optional
         The sampler's target acceptance rate (0 < value < 1). By default the fit samples at
         0.8 and, when that run fails a convergence check, samples once more at 0.95 with
-        twice the draws per chain (``CAREFUL_DRAWS_FACTOR``) and keeps that run (a smaller
+        three times the draws per chain (``CAREFUL_DRAWS_FACTOR``) and keeps that run (a smaller
         step follows curved or narrow posteriors that the first run could not, and the
         extra draws reach the absolute ESS thresholds where mixing is slow; docs/engine.md,
-        "The careful re-run"). A re-run fit so has 2 x ``draws`` draws per chain. A value given here is used
+        "The careful re-run"). A re-run fit so has 3 x ``draws`` draws per chain. A value given here is used
         as it is, without a re-run. ``Fit.target_accept`` and ``Fit.rerun`` say what ran.
 
     Returns

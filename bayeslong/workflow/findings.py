@@ -312,8 +312,13 @@ def _sampling_facts(results) -> dict | None:
         ess = min(ess, float(d[["ess_bulk", "ess_tail"]].min().min()))
         div += int(d.attrs.get("divergences", 0) or 0)
         thresholds = d.attrs.get("thresholds", {})
-    post = fits[0].idata.posterior
+    # a re-run fit has more draws per chain than asked for (infer/sampling.py, the careful
+    # re-run): the draws asked for are read from a fit that was not re-run
+    plain = [f for f in fits if not getattr(f, "rerun", "")] or fits
+    again = [f for f in fits if getattr(f, "rerun", "")]
+    post = plain[0].idata.posterior
     return {"chains": int(post.sizes["chain"]), "draws": int(post.sizes["draw"]),
+            "rerun_draws": int(again[0].idata.posterior.sizes["draw"]) if again else None,
             "samplers": sorted({str(getattr(f, "sampler", "") or "") for f in fits} - {""}),
             "max_rhat": rhat, "min_ess": ess, "divergences": div,
             "thresholds": thresholds, "fits": len(fits), "reruns": reruns}
@@ -394,7 +399,8 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
         if facts["reruns"]:
             m.append(f"The sampler's target acceptance rate was 0.8; {facts['reruns']} of the "
                      f"{facts['fits']} candidate fits failed a convergence check at 0.8 and were "
-                     "sampled again at 0.95, and that second run is the one reported.")
+                     f"sampled again at 0.95 with {facts['rerun_draws']} draws per chain, and "
+                     "that second run is the one reported.")
     elif results.method != "bayes":
         m.append("The models were fitted by maximum likelihood only (no posterior sampling).")
     if f["best_loo"] is not None:

@@ -205,12 +205,15 @@ def test_save_load_round_trip_keeps_categories_thresholds_and_gap_priors(tmp_pat
     panel = bl.Panel.from_long(df, unit="unit", wave="wave", outcomes=["y"],
                                categorical={"y": ["low", "middle", "high"]})
     priors = {"threshold[y,2]": ("halfnormal", 2.0), "level_mean": ("normal", 0.0, 2.0)}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", bl.ConvergenceWarning)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", bl.ConvergenceWarning)
         seen = []  # a callable progressbar gets the draws per chain (infer/progress.py)
         fit = bl.fit(spec, panel, draws=100, tune=100, chains=2, sampler="pymc", cores=1,
                      progressbar=seen.append, priors=priors, loglik_draws=40,
                      target_accept=0.9)
+    # 2 x 100 draws against an ESS threshold of 200: flagged, with the categorical advice
+    flags = [str(w.message) for w in caught if issubclass(w.category, bl.ConvergenceWarning)]
+    assert flags and all("Categorical fits mix slowly" in m for m in flags)
     assert fit.target_accept == 0.9 and fit.rerun == ""  # passed to the sampler, recorded
     with pytest.raises(bl.SpecError, match="target_accept=1.5"):
         bl.fit(spec, panel, draws=10, tune=10, chains=1, sampler="pymc", target_accept=1.5)

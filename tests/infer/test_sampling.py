@@ -120,7 +120,7 @@ def test_posterior_names_dims_and_draw_matrix(sleep_fit):
     assert set(post.data_vars) == set(sleep_fit.structure.names)
     assert all(post[n].dims == ("chain", "draw") for n in post.data_vars)
     theta = sleep_fit.theta_draws()
-    # a careful re-run keeps twice the draws per chain (infer/sampling.py)
+    # a careful re-run keeps CAREFUL_DRAWS_FACTOR times the draws per chain (infer/sampling.py)
     per_chain = post.sizes["draw"]
     assert per_chain == 300 * (CAREFUL_DRAWS_FACTOR if sleep_fit.rerun else 1)
     assert theta.shape == (post.sizes["chain"] * per_chain, sleep_fit.structure.n_params)
