@@ -8,7 +8,8 @@ For each outcome process with two or more free per-wave residual variances
 which shrinks the residual log-SDs towards their common value. The term is at most 0, so
 it multiplies the product of the variances' own SD priors by a factor at most 1: the prior
 stays proper, and exact draws come from rejection sampling of the independent priors
-(accept a draw with probability exp(term); :func:`accept`). It only involves the
+(accept a draw with probability exp(term); :func:`accept`), or on many waves through an
+auxiliary mean (:func:`mean_draws`). It only involves the
 deviations from the mean, so the common level of the residual SDs keeps its own priors.
 Models with equal residual variances over waves have one such parameter per process and no
 term. docs/priors.md, "Pooled residual variances"; docs/engine.md, "Leave-future-out refits
@@ -138,20 +139,25 @@ def accept(pools, sds: dict, rng) -> np.ndarray:
     return np.log(rng.uniform(size=n)) < np.nan_to_num(lp, nan=-np.inf)
 
 
-#: Most candidate draws that :func:`sd_draws` tries before it gives up.
-MAX_CANDIDATES = 100_000_000
+#: When rejection would need more candidates than this for the draws asked for (estimated
+#: from a first batch), :func:`sd_draws` draws by the auxiliary mean (:func:`mean_draws`).
+REJECTION_BUDGET = 5_000_000
+
+#: Points of the grid on which :func:`mean_draws` lays out the auxiliary mean's density.
+GRID_POINTS = 3001
 
 
 def sd_draws(pools, priors, draws: int, rng, family_dist) -> dict:
-    """SD draws of the pooled residual variances (``rv_name -> (draws,)``): exact rejection.
+    """SD draws of the pooled residual variances (``rv_name -> (draws,)``).
 
-    Candidates come from the variances' own (independent) SD priors (``priors``: the prior
-    set's :class:`~bayeslong.infer.priors.Prior` list; ``family_dist`` its PyMC classes) in
-    batches; each is kept with probability exp(pooling terms) <= 1 (:func:`accept`), so the
-    kept ones follow the pooled prior exactly. The SDs of other parameters and the LKJ
-    correlations are independent of these a priori and drawn apart. The acceptance rate
-    falls with the number of pooled waves (docs/priors.md, "Pooled residual variances"):
-    past :data:`MAX_CANDIDATES` candidates it raises.
+    Rejection first: candidates come from the variances' own (independent) SD priors
+    (``priors``: the prior set's :class:`~bayeslong.infer.priors.Prior` list; ``family_dist``
+    its PyMC classes) in batches, and each is kept with probability exp(pooling terms) <= 1
+    (:func:`accept`), so the kept ones follow the pooled prior exactly. The acceptance rate
+    falls with the number of pooled waves (docs/priors.md, "Pooled residual variances");
+    when the first batch says that more than :data:`REJECTION_BUDGET` candidates would be
+    needed, every draw comes from :func:`mean_draws` instead. The SDs of other parameters
+    and the LKJ correlations are independent of these a priori and drawn apart.
     """
     import pymc as pm
 
@@ -170,19 +176,73 @@ def sd_draws(pools, priors, draws: int, rng, family_dist) -> dict:
     fn = pm.pytensorf.compile([], dists, random_seed=int(rng.integers(2**31)))
     kept, tried = [], 0
     while sum(len(v) for v in kept) < draws:
-        if tried >= MAX_CANDIDATES:
-            got = sum(len(v) for v in kept)
-            raise SpecError(
-                f"prior draws under the pooling of residual log-SDs: {got} of {draws} draws "
-                f"kept from {tried:,} candidates (acceptance {got / tried:.2g}); with this many "
-                "waves the exact rejection sampler is too slow. Raise tau or switch the pooling "
-                f"off: priors={{{POOLING_KEY!r}: None}} (docs/priors.md)")
         out = np.stack([np.asarray(o, dtype=float) for o in fn()], axis=1)  # (batch, members)
         ok = accept(pools, dict(zip(members, out.T)), rng)
         kept.append(out[ok])
         tried += batch
-    sds = np.concatenate(kept)[:draws]
+        if tried == batch and (ok.sum() + 1) / batch * REJECTION_BUDGET < draws:
+            sds = np.concatenate([mean_draws(g, priors, draws, rng, family_dist) for g in pools],
+                                 axis=1)
+            break
+    else:
+        sds = np.concatenate(kept)[:draws]
     return {priors[k].rv_name: sds[:, j] for j, k in enumerate(members)}
+
+
+def mean_draws(pool: Pooling, priors, draws: int, rng, family_dist) -> np.ndarray:
+    """SD draws of one pooling term through an auxiliary mean: shape (draws, members).
+
+    With h_t the density of the log-SD l_t under its own prior, the pooled prior is
+    prod_t h_t(l_t) exp(-sum_t (l_t - mean l)^2 / (2 tau^2)), the marginal of
+    prod_t h_t(l_t) exp(-(l_t - m)^2 / (2 tau^2)) over an auxiliary m (the integral of
+    exp(-sum_t (l_t - m)^2 / (2 tau^2)) over m is the pooling factor times a constant). So m
+    is drawn from its marginal, proportional to prod_t Z_t(m) with Z_t the convolution of h_t
+    with N(0, tau^2), laid out on a grid of :data:`GRID_POINTS` points (a draw is a grid cell
+    by its probability, then uniform within the cell: the one approximation), and then each
+    l_t independently from h_t(l) N(l; m, tau^2), exactly, by rejection from N(m, tau^2)
+    with the bound max h_t (its grid maximum times e^0.05). Any number of waves costs the
+    same; docs/priors.md, "Pooled residual variances".
+    """
+    import pymc as pm
+    import pytensor
+    import pytensor.tensor as pt
+    from scipy.special import logsumexp
+
+    x = pt.dvector("logsd")
+    logh = []
+    for k in pool.members:
+        cls, kwargs = family_dist(priors[k].family, priors[k].args)
+        logh.append(pytensor.function([x], pm.logp(cls.dist(**kwargs), pt.exp(x)) + x))
+
+    def values(f, grid):
+        with np.errstate(all="ignore"):
+            v = np.asarray(f(grid), dtype=float)
+        return np.where(np.isfinite(v), v, -np.inf)
+
+    coarse = np.linspace(-60.0, 40.0, 2001)
+    live = np.zeros(coarse.shape, dtype=bool)
+    for f in logh:
+        v = values(f, coarse)
+        live |= v > v.max() - 40.0
+    tau = pool.tau
+    grid = np.linspace(coarse[live].min() - 8 * tau, coarse[live].max() + 8 * tau, GRID_POINTS)
+    step = grid[1] - grid[0]
+    on_grid = [values(f, grid) for f in logh]
+    kernel = -0.5 * ((grid[:, None] - grid[None, :]) / tau) ** 2  # (m, l)
+    log_m = sum(logsumexp(kernel + v[None, :], axis=1) for v in on_grid)
+    prob = np.exp(log_m - log_m.max())
+    cells = rng.choice(len(grid), size=draws, p=prob / prob.sum())
+    m = grid[cells] + (rng.uniform(size=draws) - 0.5) * step
+    out = np.empty((draws, len(pool.members)))
+    for j, (f, v) in enumerate(zip(logh, on_grid)):
+        bound = v.max() + 0.05
+        todo = np.arange(draws)
+        while todo.size:
+            cand = m[todo] + tau * rng.standard_normal(todo.size)
+            ok = np.log(rng.uniform(size=todo.size)) < values(f, cand) - bound
+            out[todo[ok], j] = cand[ok]
+            todo = todo[~ok]
+    return np.exp(out)
 
 
 def describe(pool: Pooling, structure) -> str:

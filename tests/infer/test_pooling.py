@@ -162,6 +162,57 @@ def test_prior_draws_follow_the_pooled_prior(sleep_free):
     assert abs((loff[:, 0] - loff[:, 2]).var() - 2 * s ** 2) < 4 * 2 * s ** 2 * np.sqrt(2 / 6000)
 
 
+def test_auxiliary_mean_draws_follow_the_pooled_prior(sleep_free):
+    """The sampler for many waves (pooling.mean_draws) against the same closed form as the
+    test above (LogNormal SD priors: the log-SDs are jointly normal), and against the exact
+    rejection sampler under the default HalfNormal SD priors (two-sample Kolmogorov-Smirnov,
+    scipy.stats.ks_2samp; p above 0.001 for each log-SD and for their spread)."""
+    from scipy import stats
+
+    from bayeslong.infer.priors import family_dist
+
+    structure, panel = sleep_free
+    s, tau = 1.0, 0.35
+    names = [n for n in structure.names if n.startswith("resid_var[")]
+    ps = resolve_priors(structure, panel, {**{n: ("lognormal", 0.0, s) for n in names},
+                                           "residual_pooling": tau})
+    logsd = np.log(pooling.mean_draws(ps.pooling[0], ps.priors, 6000, np.random.default_rng(4),
+                                      family_dist))
+    diff = logsd[:, 0] - logsd[:, 2]
+    want = 2.0 / (1.0 / s ** 2 + 1.0 / tau ** 2)
+    assert abs(diff.var() - want) < 4 * want * np.sqrt(2.0 / len(diff))
+    assert abs(logsd.mean(axis=1).var() - s ** 2 / len(names)) < 4 * (s ** 2 / 4) * np.sqrt(2 / 6000)
+
+    ps = resolve_priors(structure, panel, None)  # HalfNormal SD priors, tau 0.25
+    aux = np.log(pooling.mean_draws(ps.pooling[0], ps.priors, 4000, np.random.default_rng(1),
+                                    family_dist))
+    rej = pooling.sd_draws(ps.pooling, ps.priors, 4000, np.random.default_rng(2), family_dist)
+    rej = np.log(np.column_stack([rej[ps.priors[k].rv_name] for k in ps.pooling[0].members]))
+    for j in range(aux.shape[1]):
+        assert stats.ks_2samp(aux[:, j], rej[:, j]).pvalue > 1e-3
+    assert stats.ks_2samp(aux.std(axis=1), rej.std(axis=1)).pvalue > 1e-3
+
+
+def test_prior_draws_on_many_waves():
+    # 13 pooled residual variances: rejection would need about 1e10 candidates for 300
+    # draws at tau 0.25, so the auxiliary mean draws them
+    rng = np.random.default_rng(3)
+    panel = bl.Panel(units=tuple(range(30)), waves=tuple(range(1, 15)), outcomes=("y",),
+                     y=rng.normal(size=(30, 14, 1)) + np.arange(14)[None, :, None])
+    structure = structure_for(bl.model("alt"), panel)
+    ps = resolve_priors(structure, panel, None)
+    assert len(ps.pooling[0].members) == 13
+    theta = prior_draws(ps, draws=300, seed=1)
+    logsd = 0.5 * np.log(theta[:, list(ps.pooling[0].members)])
+    assert np.isfinite(logsd).all()
+    # the pooling shrinks the log-SDs towards their mean: the within-draw spread is far
+    # below that of the independent HalfNormal priors (log-SD SD about 0.76 each)
+    off = prior_draws(resolve_priors(structure, panel, {"residual_pooling": None}), draws=300,
+                      seed=1)
+    loff = 0.5 * np.log(off[:, list(ps.pooling[0].members)])
+    assert logsd.std(axis=1).mean() < 0.5 * loff.std(axis=1).mean()
+
+
 def test_log_prior_draws_include_the_term(sleep_free):
     from bayeslong.evaluate.power_scaling import log_prior_draws
 
