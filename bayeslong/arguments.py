@@ -33,6 +33,19 @@ def seed_value(seed: Any, name: str = "seed", *, where: str = "") -> int | None:
     return whole_number(seed, name, least=0, where=where)
 
 
+def acceptance_rate(value: Any, *, where: str, left_out: str) -> float | None:
+    """A NUTS target acceptance rate: None (the caller's default) or a number in (0, 1).
+
+    ``left_out`` says in the message what leaving the argument out gives.
+    """
+    if value is None:
+        return None
+    if not (isinstance(value, (int, float)) and 0.0 < float(value) < 1.0):
+        raise SpecError(f"{where}: target_accept={value!r}; give a number between 0 and 1 "
+                        f"(e.g. 0.9), or leave it out for {left_out}")
+    return float(value)
+
+
 def number_grid(values: Any, name: str, *, least: int = 1, where: str = "") -> tuple[int, ...]:
     """A non-empty sequence of whole numbers of at least ``least`` (a design grid)."""
     at = f" of {where}" if where else ""

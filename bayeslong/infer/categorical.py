@@ -41,7 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from bayeslong.arguments import seed_value, whole_number
+from bayeslong.arguments import acceptance_rate, seed_value, whole_number
 from bayeslong.dims import PARAMETER, UNIT
 from bayeslong.errors import SpecError
 from bayeslong.infer.marginal import POINTS, REPLICATES, unit_marginal_loglik
@@ -413,8 +413,8 @@ CATEGORICAL_ADVICE = (
 def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
                     seed: int = 1, priors: dict | None = None, sampler: str = "auto",
                     progressbar: bool = True, cores: int | None = None,
-                    target_accept: float | None = None, loglik_draws: int = LOGLIK_DRAWS, points: int = POINTS,
-                    replicates: int = REPLICATES) -> CategoricalFit:
+                    target_accept: float | None = None, loglik_draws: int = LOGLIK_DRAWS,
+                    points: int = POINTS, replicates: int = REPLICATES) -> CategoricalFit:
     """Fit ``spec`` to a panel with categorical variables by NUTS with person-level latents.
 
     Parameters are those of :func:`bayeslong.fit`, plus ``loglik_draws`` (the per-unit
@@ -437,10 +437,8 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
                               ("loglik_draws", loglik_draws, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
-    accept = FIRST_TARGET_ACCEPT if target_accept is None else target_accept
-    if not (isinstance(accept, (int, float)) and 0.0 < float(accept) < 1.0):
-        raise SpecError(f"fit: target_accept={target_accept!r}; give a number between 0 and 1 "
-                        f"(e.g. 0.9), or leave it out for {FIRST_TARGET_ACCEPT}")
+    accept = acceptance_rate(target_accept, where="fit", left_out=str(FIRST_TARGET_ACCEPT))
+    accept = FIRST_TARGET_ACCEPT if accept is None else accept
     if sampler not in SAMPLERS:
         raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
     from importlib.util import find_spec

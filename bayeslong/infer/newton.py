@@ -312,8 +312,7 @@ def _newton(structure, f, u, data, tr, *, max_iter: int, exact_after: int, tol: 
                 if polished is not None and polished[0] >= ll - 1e-9 * max(1.0, abs(ll)):
                     u = u + step
                     ll, g, M, H, g_theta, info = polished
-                    out.update(u=u, loglik=ll, hessian=H,
-                               decrement=_trust_step(M, g, radius)[1])
+                    out["decrement"] = _trust_step(M, g, radius)[1]
             break
         if exact:
             history.append(decrement)

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from bayeslong.arguments import seed_value, whole_number
+from bayeslong.arguments import acceptance_rate, seed_value, whole_number
 from bayeslong.dims import UNIT, WAVE
 from bayeslong.errors import SpecError
 from bayeslong.infer import pooling as pool_terms
@@ -559,11 +559,9 @@ def fit(spec: Spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int =
     for label, value, low in (("draws", draws, 1), ("tune", tune, 0), ("chains", chains, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
-    if target_accept is not None and not (isinstance(target_accept, (int, float))
-                                          and 0.0 < float(target_accept) < 1.0):
-        raise SpecError(f"fit: target_accept={target_accept!r}; give a number between 0 and 1 "
-                        f"(e.g. 0.9), or leave it out for {FIRST_TARGET_ACCEPT} with a careful "
-                        f"re-run at {CAREFUL_TARGET_ACCEPT} when needed")
+    acceptance_rate(target_accept, where="fit",
+                    left_out=f"{FIRST_TARGET_ACCEPT} with a careful re-run at "
+                             f"{CAREFUL_TARGET_ACCEPT} when needed")
     structure = structure_for(spec, panel)
     prior_set = resolve_priors(structure, panel, priors)
     which = _choose(sampler, prior_set)

@@ -302,7 +302,10 @@ def _sampling_facts(results) -> dict | None:
     if not fits:
         return None
     rhat, ess, div, thresholds = 0.0, math.inf, 0, {}
-    reruns = sum(bool(getattr(f, "rerun", "")) for f in fits)
+    # a re-run fit has more draws per chain than asked for (infer/sampling.py, the careful
+    # re-run): the draws asked for are read from a fit that was not re-run
+    again = [f for f in fits if getattr(f, "rerun", "")]
+    plain = [f for f in fits if not getattr(f, "rerun", "")] or fits
     for f in fits:
         try:
             d = f.diagnostics()
@@ -312,16 +315,12 @@ def _sampling_facts(results) -> dict | None:
         ess = min(ess, float(d[["ess_bulk", "ess_tail"]].min().min()))
         div += int(d.attrs.get("divergences", 0) or 0)
         thresholds = d.attrs.get("thresholds", {})
-    # a re-run fit has more draws per chain than asked for (infer/sampling.py, the careful
-    # re-run): the draws asked for are read from a fit that was not re-run
-    plain = [f for f in fits if not getattr(f, "rerun", "")] or fits
-    again = [f for f in fits if getattr(f, "rerun", "")]
     post = plain[0].idata.posterior
     return {"chains": int(post.sizes["chain"]), "draws": int(post.sizes["draw"]),
             "rerun_draws": int(again[0].idata.posterior.sizes["draw"]) if again else None,
             "samplers": sorted({str(getattr(f, "sampler", "") or "") for f in fits} - {""}),
             "max_rhat": rhat, "min_ess": ess, "divergences": div,
-            "thresholds": thresholds, "fits": len(fits), "reruns": reruns}
+            "thresholds": thresholds, "fits": len(fits), "reruns": len(again)}
 
 
 def manuscript_text(results, findings: dict | None = None) -> dict:

@@ -206,7 +206,8 @@ def test_prior_draws_on_many_waves():
     logsd = 0.5 * np.log(theta[:, list(ps.pooling[0].members)])
     assert np.isfinite(logsd).all()
     # the pooling shrinks the log-SDs towards their mean: the within-draw spread is far
-    # below that of the independent HalfNormal priors (log-SD SD about 0.76 each)
+    # below that of the independent HalfNormal priors (a HalfNormal SD's log has SD
+    # sqrt(pi^2 / 8) = 1.11, the variance of log|Z| for a standard normal Z: a closed form)
     off = prior_draws(resolve_priors(structure, panel, {"residual_pooling": None}), draws=300,
                       seed=1)
     loff = 0.5 * np.log(off[:, list(ps.pooling[0].members)])
