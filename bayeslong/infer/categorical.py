@@ -4,15 +4,23 @@ A continuous panel is fitted on its marginal likelihood (pattern cross-products,
 latents); a categorical variable has no such closed form, so here every unit's latents are
 parameters of the PyMC model (docs/model-family.md, "Categorical indicators"):
 
-    eta_i = E[eta | w_i] + (I - B)^-1 zeta_i,   zeta_i = chol(Psi_a) z_i,   z_i ~ N(0, I)
+    implied form:      eta_l,i = E[eta_l | w_i] + chol(Phi_ll + M) z_i,   z_i ~ N(0, I)
+    disturbance form:  eta_i = E[eta | w_i] + (I - B)^-1 zeta_i,   zeta_i = chol(Psi_a) z_i
     y*_i  = nu + Lam eta_i (+ eps_i, integrated out by the link)
 
-E[eta | w_i] = alpha + Gamma w_i comes from :func:`bayeslong.model.moments.latent_moments`
-and the disturbances are carried through the structure's own B, so the latents have the
-engine's implied mean and covariance Phi; the parameterisation is non-centred (the z_i are
+E[eta | w_i] = alpha + Gamma w_i and Phi = Cov[eta | w] come from
+:func:`bayeslong.model.moments.latent_moments`, so the latents have the engine's implied
+mean and covariance in either form. The implied form draws only the latents that load on
+observed rows (l), through their implied covariance, so that structural parameters which
+trade off without changing Phi_ll (the lag against the person-level covariances) move
+without moving the units' latents; M takes a tenth of the probit error of a latent
+measured by one categorical response into the latent, and the link keeps the rest
+(``LINK_SHARE``). The disturbance form carries the disturbances with a free or non-zero
+variance (Psi_a) through the structure's own B; :func:`latent_layout` uses it where Phi_ll
+is singular (fewer disturbances than loaded latents). Both are non-centred (the z_i are
 standard normal a priori whatever the variances), which keeps the sampler away from the
 funnel between a variance and the latents it scales (Papaspiliopoulos, Roberts & Sköld
-2007). Only disturbances with a free or non-zero variance are drawn (Psi_a: Psi on those).
+2007).
 Observed categories add their ordered probit / logit log probability at their thresholds
 (:func:`category_loglik`; a binary variable is the case of one threshold, fixed at 0);
 continuous indicators of a mixed model are normal around their latent response with their
@@ -188,14 +196,19 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
             tau[name] = pm.Deterministic(name, (tau[below] if below is not None else 0.0) + gap)
         # person-level latents, non-centred, with the engine's implied moments
         m = model_matrices(structure, theta)
-        alpha, Gamma, _, _ = latent_moments(structure, theta)
+        alpha, Gamma, Phi, _ = latent_moments(structure, theta)
         w = pm.Data("covariates", panel.covariate_matrix())
         eta_mean = alpha[None, :] + pt.dot(w, Gamma.T)
-        active = _active_disturbances(cat)
-        if active:
-            root = pt.linalg.cholesky(m["Psi"][active][:, active])
-            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(active)))
-            zeta = pt.set_subtensor(pt.zeros((N, L))[:, active], pt.dot(z, root.T))
+        layout = latent_layout(cat, prior_set)
+        which = list(layout.latents)
+        if layout.form == "implied":  # the loaded latents through their implied covariance
+            root = pt.linalg.cholesky(Phi[which][:, which] + np.diag(layout.moved))
+            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(which)))
+            eta_i = pt.inc_subtensor(eta_mean[:, which], pt.dot(z, root.T))
+        elif layout.form == "disturbances":  # each disturbance carried through B
+            root = pt.linalg.cholesky(m["Psi"][which][:, which])
+            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(which)))
+            zeta = pt.set_subtensor(pt.zeros((N, L))[:, which], pt.dot(z, root.T))
             dev = zeta
             for _ in range(structure.path_depth - 1):  # (I - B)^-1 zeta: B is nilpotent
                 dev = zeta + pt.dot(dev, m["B"].T)
@@ -212,7 +225,8 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                                 for k in table.ravel()])
                 codes = pm.Data(f"observed[{name}]", obs.astype(np.int64))
                 pm.Potential(f"y[{name}]", category_loglik(
-                    mean, cut, codes, waves, table.shape[1] + 1, cat.link).sum())
+                    mean, cut, codes, waves, table.shape[1] + 1, cat.link,
+                    scale=layout.link_scale[rows[waves]]).sum())
             else:
                 sd = pt.sqrt(pt.diagonal(_unique_variances(cat, Theta, m, name, rows)))
                 pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves],
@@ -296,7 +310,8 @@ def _entry(spec, cat: Categorical, panel, prior_set: PriorSet, gaps: dict) -> di
     return entry
 
 
-def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link: str):
+def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link: str,
+                    scale=None):
     """Log probability of each observed category given its latent response's mean (PyTensor).
 
     ``cut`` holds the inner cuts, wave-major ((T, C-1) flattened); ``codes`` the categories
@@ -311,7 +326,9 @@ def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link
     given a harmless interval where it is not chosen, so that no infinite value reaches the
     gradient. PyMC's ordered distributions evaluate all C probabilities and renormalise them:
     the same likelihood at about 1.5 times the cost per gradient (docs/engine.md,
-    "Categorical fits: cost and mixing").
+    "Categorical fits: cost and mixing"). ``scale`` (per observation, default 1) is the SD
+    of the error left in the link, in units of the link's standard error, when part of its
+    variance is drawn with the latents (:func:`latent_layout`).
     """
     import pytensor.tensor as pt
     from pymc.distributions.dist_math import log_diff_normal_cdf, normal_lcdf
@@ -322,8 +339,9 @@ def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link
     width = n_categories - 1
     codes = pt.as_tensor_variable(codes)
     base = np.asarray(waves, dtype=np.int64) * width
-    upper = cut[base + pt.minimum(codes, width - 1)] - mean  # tau_c+1 - mean for c < C-1
-    lower = cut[base + pt.maximum(codes - 1, 0)] - mean      # tau_c - mean for c > 0
+    scale = 1.0 if scale is None else np.asarray(scale, dtype=float)
+    upper = (cut[base + pt.minimum(codes, width - 1)] - mean) / scale  # tau_c+1 - mean, c < C-1
+    lower = (cut[base + pt.maximum(codes - 1, 0)] - mean) / scale      # tau_c - mean, c > 0
     first, last = log_cdf(upper), log_cdf(-lower)
     if width == 1:  # binary: no middle category
         return pt.switch(pt.eq(codes, 0), first, last)
@@ -332,6 +350,76 @@ def category_loglik(mean, cut, codes, waves: np.ndarray, n_categories: int, link
     middle = (log_diff_normal_cdf(0.0, 1.0, upper, lower_in) if link == "probit" else
               log_cdf(upper) + log_cdf(-lower_in) + pt.log1mexp(lower_in - upper))
     return pt.switch(pt.eq(codes, 0), first, pt.switch(pt.eq(codes, width), last, middle))
+
+
+#: Share of a probit response's error variance left in the link when the latents are drawn
+#: through their implied covariance; the rest (0.1) is drawn with the latents
+#: (:func:`latent_layout`, docs/engine.md "Categorical fits: cost and mixing").
+LINK_SHARE = 0.9
+
+
+@dataclass(frozen=True)
+class LatentLayout:
+    """How a categorical fit draws each unit's latents (:func:`latent_layout`).
+
+    ``form``: "implied" (z_i scaled by the Cholesky factor of the loaded latents' implied
+    covariance), "disturbances" (z_i scaled by that of the disturbances, then carried
+    through B) or "none" (no person-level variance). ``latents``: positions in
+    ``structure.latents`` of the latents (implied) or disturbances drawn. ``moved``: per
+    drawn latent, the error variance moved from the link into it. ``link_scale``: per
+    observed row, the SD of the error left in the link relative to the link's own.
+    """
+
+    form: str
+    latents: tuple
+    moved: np.ndarray
+    link_scale: np.ndarray
+
+
+def latent_layout(cat: Categorical, prior_set: PriorSet) -> LatentLayout:
+    """Choose how the person-level latents are drawn (module notes).
+
+    The implied form draws the latents that load on observed rows, eta_l, as
+    E[eta_l | w] + chol(Phi_ll + M) z with Phi from
+    :func:`bayeslong.model.moments.latent_moments`: a change of the structural parameters
+    that leaves Phi_ll unchanged (the lag against the person-level covariances) then leaves
+    every unit's latents where they are. It needs Phi_ll positive definite for generic
+    parameter values, so that a model with fewer disturbances than loaded latents (random
+    intercepts, growth without wave disturbances) keeps the disturbance form, which is then
+    also the smaller one. M moves 1 - LINK_SHARE of the probit error of a latent measured by
+    one categorical response alone (loading fixed at 1) into the latent: the link keeps
+    LINK_SHARE of it, which is the same model (normal errors add), and Phi_ll + M stays
+    positive definite when a variance of the process nears zero.
+    """
+    from bayeslong.model.moments import NUMPY, latent_moments
+
+    structure = cat.structure
+    active = _active_disturbances(cat)
+    scale = np.ones(len(structure.observed))
+    if not active:
+        return LatentLayout("none", (), np.zeros(0), scale)
+    Lam = structure.matrices["Lam"]
+    nonzero = (Lam.index >= 0) | (Lam.fixed != 0)
+    loaded = [l for l in range(nonzero.shape[1]) if nonzero[:, l].any()]
+    rng = np.random.default_rng(0)  # generic values: variances 1, the rest small and non-zero
+    theta = np.array([1.0 if p.target == "sd" else rng.uniform(-0.05, 0.05)
+                      if p.target == "correlation" else rng.uniform(0.1, 0.4)
+                      for p in prior_set.priors])
+    for i, name in enumerate(structure.names):
+        theta[i] = cat.pinned.get(name, theta[i])
+    Phi = latent_moments(structure, theta, NUMPY)[2][np.ix_(loaded, loaded)]
+    eig = np.linalg.eigvalsh(0.5 * (Phi + Phi.T))
+    if len(loaded) > len(active) or not eig[0] > 1e-9 * max(eig[-1], 1e-300):
+        return LatentLayout("disturbances", tuple(active), np.zeros(len(active)), scale)
+    moved = np.zeros(len(loaded))
+    categorical_rows = {int(r) for v in cat.variables for r in cat.rows[v]}
+    for j, l in enumerate(loaded):
+        r = int(np.flatnonzero(nonzero[:, l])[0]) if nonzero[:, l].sum() == 1 else -1
+        if (cat.link == "probit" and r in categorical_rows and nonzero[r].sum() == 1
+                and Lam.index[r, l] < 0 and Lam.fixed[r, l] == 1.0):
+            moved[j] = (1.0 - LINK_SHARE) * cat.error_variance
+            scale[r] = np.sqrt(LINK_SHARE)
+    return LatentLayout("implied", tuple(loaded), moved, scale)
 
 
 def _active_disturbances(cat: Categorical) -> list[int]:
@@ -405,9 +493,9 @@ class CategoricalFit(Fit):
 #: docs/engine.md, "Categorical fits: cost and mixing").
 CATEGORICAL_ADVICE = (
     "Categorical fits mix slowly; more draws at a higher target acceptance help the lag most "
-    "(binary alt, 200 units, 5 waves: draws=3000, target_accept=0.9 gave the lag an ESS of "
-    "417 and no divergence in 93 s of sampling, while person-level variances stayed below "
-    "400), and so do more indicators per wave, ordinal answers, more waves or units.")
+    "(binary alt, 200 units, 5 waves: draws=2000, target_accept=0.9 gave the lag an ESS of "
+    "656 and no divergence in 69 s of sampling, while the wave disturbance variance stayed "
+    "near ESS 100), and so do more indicators per wave, ordinal answers, more waves or units.")
 
 
 def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4,

@@ -264,9 +264,12 @@ def test_second_panel_of_one_design_reuses_the_model_with_its_own_data():
                                       fresh.idata.posterior[name].values)
 
 
-@pytest.mark.parametrize("n_categories,link", [(2, "probit"), (2, "logit"), (4, "probit"), (4, "logit")],
-                         ids=["binary-probit", "binary-logit", "four-probit", "four-logit"])
-def test_category_loglik_matches_scipy_interval_probabilities(n_categories, link):
+@pytest.mark.parametrize("n_categories,link,scaled",
+                         [(2, "probit", False), (2, "logit", False), (4, "probit", False),
+                          (4, "logit", False), (2, "probit", True), (4, "probit", True)],
+                         ids=["binary-probit", "binary-logit", "four-probit", "four-logit",
+                              "binary-probit-scaled", "four-probit-scaled"])
+def test_category_loglik_matches_scipy_interval_probabilities(n_categories, link, scaled):
     import pytensor
     import pytensor.tensor as pt
     from scipy import stats
@@ -278,26 +281,74 @@ def test_category_loglik_matches_scipy_interval_probabilities(n_categories, link
     cuts = np.concatenate([np.zeros((T, 1)), np.cumsum(rng.gamma(2, 0.7, (T, C - 2)), 1)], 1)
     waves, codes = rng.integers(0, T, n), rng.integers(0, C, n)
     mean = rng.normal(0, 6, n)  # wide: many terms far in a tail, where log(F(u) - F(l)) is delicate
+    # the error's SD left in the link (latent_layout moves part of its variance to the latents)
+    scale = rng.uniform(0.5, 1.5, n) if scaled else None
     m, c = pt.vector(), pt.vector()
-    got = pytensor.function([m, c], category_loglik(m, c, codes, waves, C, link))(mean, cuts.ravel())
+    got = pytensor.function([m, c], category_loglik(m, c, codes, waves, C, link, scale))(
+        mean, cuts.ravel())
     # reference: P(y = c) = F(tau_c+1 - mean) - F(tau_c - mean) with scipy's cdf and survival
     # function (the difference of survival functions above the median, where cdfs round to 1)
     F = stats.norm if link == "probit" else stats.logistic
     ext = np.concatenate([np.full((T, 1), -np.inf), cuts, np.full((T, 1), np.inf)], 1)
-    u, lo = ext[waves, codes + 1] - mean, ext[waves, codes] - mean
+    s = 1.0 if scale is None else scale
+    u, lo = (ext[waves, codes + 1] - mean) / s, (ext[waves, codes] - mean) / s
     with np.errstate(divide="ignore"):  # np.where evaluates every branch; unchosen ones may be log 0
         want = np.where(np.isinf(lo), F.logcdf(u), np.where(
             np.isinf(u), F.logsf(lo), np.where(lo > 0, np.log(F.sf(lo) - F.sf(u)),
                                                np.log(F.cdf(u) - F.cdf(lo)))))
     # relative 1e-6: PyMC's log-cdf of the normal in the far tail (logp down to about -300
-    # here) agrees with scipy's log_ndtr to about 1e-8 relative, not to rounding
-    np.testing.assert_allclose(got, want, rtol=1e-6, atol=1e-10)
+    # here) agrees with scipy's log_ndtr to about 1e-8 relative, not to rounding; absolute
+    # 1e-8: PyMC's log of a difference of normal cdfs near probability 1 (log p about -1e-3)
+    # was 1.6e-9 from scipy's log(cdf(u) - cdf(l)) in the scaled case
+    np.testing.assert_allclose(got, want, rtol=1e-6, atol=1e-8)
     # the gradient in the means is finite for every category (the unchosen branches get a
     # harmless interval) and equals central differences of the same function
-    total = category_loglik(m, c, codes, waves, C, link).sum()
+    total = category_loglik(m, c, codes, waves, C, link, scale).sum()
     grad = pytensor.function([m, c], pytensor.grad(total, m))(mean, cuts.ravel())
     assert np.isfinite(grad).all()
-    f = pytensor.function([m, c], category_loglik(m, c, codes, waves, C, link))
+    f = pytensor.function([m, c], category_loglik(m, c, codes, waves, C, link, scale))
     h = 1e-6
     numeric = (f(mean + h, cuts.ravel()) - f(mean - h, cuts.ravel())) / (2 * h)
     np.testing.assert_allclose(grad, numeric, rtol=1e-4, atol=1e-6)  # differencing error
+
+
+@pytest.mark.parametrize("name,options,form", [
+    ("alt", {"residuals": "equal"}, "implied"), ("alt", {"link": "logit"}, "implied"),
+    ("waves-free", {}, "implied"), ("random-effects", {}, "disturbances"),
+    ("waves-apart", {}, "none")])
+def test_latent_layout_with_the_link_error_gives_the_models_moments(name, options, form):
+    """The latents a categorical fit draws, plus the error left in the link, have the
+    latent responses' covariance that moments.py implies (the engine's one source of the
+    implied moments): Lam_l (Phi_ll + M) Lam_l' + diag(link_scale^2 x error variance)
+    equals implied_moments' Sigma on the categorical structure (whose Theta holds the
+    errors) at a random parameter point, to rounding. A model with fewer disturbances than
+    loaded latents (random intercepts) keeps the disturbance form."""
+    from bayeslong.infer.categorical import categorical_priors, latent_layout
+    from bayeslong.model.moments import NUMPY, implied_moments, latent_moments
+    from bayeslong.model.thresholds import categorical_structure
+
+    spec = bl.model(name, **options)
+    panel = bl.Simulation(spec=bl.model("random-effects"), params={
+        "level_mean": 0.2, "level_var": 0.8}, n_units=30, n_waves=4, seed=3,
+        categorical={"y": "binary"}).panel()
+    cat = categorical_structure(spec, panel)
+    layout = latent_layout(cat, categorical_priors(cat, panel)[0])
+    assert layout.form == form
+    if form != "implied":
+        return
+    rng = np.random.default_rng(8)
+    theta = np.array([rng.uniform(0.5, 1.5) if p.target == "sd" else rng.uniform(-0.1, 0.1)
+                      if p.target == "correlation" else rng.uniform(0.1, 0.5)
+                      for p in categorical_priors(cat, panel)[0].priors])
+    theta = cat.full_theta(theta[list(cat.free)])
+    structure, idx = cat.structure, list(layout.latents)
+    Phi = latent_moments(structure, theta, NUMPY)[2][np.ix_(idx, idx)]
+    Lam = structure.matrices["Lam"].fixed.copy()
+    free = structure.matrices["Lam"].index >= 0
+    Lam[free] = theta[structure.matrices["Lam"].index[free]]
+    drawn = Lam[:, idx] @ (Phi + np.diag(layout.moved)) @ Lam[:, idx].T
+    link = np.diag(layout.link_scale ** 2 * cat.error_variance)
+    Sigma = implied_moments(structure, theta, NUMPY)[2]
+    np.testing.assert_allclose(drawn + link, Sigma, rtol=1e-12, atol=1e-12)
+    probit = cat.link == "probit"
+    assert (layout.moved > 0).all() == probit and (layout.link_scale < 1).all() == probit
