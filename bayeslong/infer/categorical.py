@@ -405,8 +405,7 @@ def latent_layout(cat: Categorical, prior_set: PriorSet) -> LatentLayout:
     theta = np.array([1.0 if p.target == "sd" else rng.uniform(-0.05, 0.05)
                       if p.target == "correlation" else rng.uniform(0.1, 0.4)
                       for p in prior_set.priors])
-    for i, name in enumerate(structure.names):
-        theta[i] = cat.pinned.get(name, theta[i])
+    theta = cat.full_theta(theta[list(cat.free)])  # the pinned values in their places
     Phi = latent_moments(structure, theta, NUMPY)[2][np.ix_(loaded, loaded)]
     eig = np.linalg.eigvalsh(0.5 * (Phi + Phi.T))
     if len(loaded) > len(active) or not eig[0] > 1e-9 * max(eig[-1], 1e-300):
