@@ -62,7 +62,6 @@ from bayeslong.infer.priors import (
 )
 from bayeslong.infer.progress import PymcCounter, SamplingProgress, run_nutpie
 from bayeslong.infer.sampling import (
-    FIRST_TARGET_ACCEPT,
     SAMPLERS,
     Fit,
     diagnose,
@@ -488,16 +487,25 @@ class CategoricalFit(Fit):
             if self.categorical.thresholds else np.empty((post.sizes["chain"] * post.sizes["draw"], 0))
 
 
+#: A categorical fit's defaults: draws per chain and the NUTS target acceptance. Measured on
+#: binary alt, N = 200, T = 5, fit seeds 2-9 (docs/engine.md, "Categorical fits: cost and
+#: mixing"): 4 x 1000 at 0.8 gave ESS(lag) median 306 (400 or more in one seed of eight),
+#: 4 x 2000 at 0.9 median 529 (six of eight) in about 70 s of sampling.
+CATEGORICAL_DRAWS = 2000
+CATEGORICAL_TARGET_ACCEPT = 0.9
+
 #: What a flagged categorical fit's warning advises (measured on binary alt, N = 200, T = 5:
 #: docs/engine.md, "Categorical fits: cost and mixing").
 CATEGORICAL_ADVICE = (
-    "Categorical fits mix slowly; more draws at a higher target acceptance help the lag most "
-    "(binary alt, 200 units, 5 waves: draws=2000, target_accept=0.9 gave the lag an ESS of "
-    "656 and no divergence in 69 s of sampling, while the wave disturbance variance stayed "
-    "near ESS 100), and so do more indicators per wave, ordinal answers, more waves or units.")
+    "Categorical fits mix slowly: with one binary or ordinal variable per wave the data say "
+    "little about the disturbance variance (its ESS stayed at 90-210 of 8,000 draws in the "
+    "measured case, binary alt, 200 units, 5 waves), and the lag's ESS varies between fit "
+    "seeds (190-660 at the defaults, 4 x 2000 draws at target_accept 0.9). More draws "
+    "(e.g. draws=4000) raise every ESS in proportion; more indicators per wave, ordinal "
+    "answers, more waves or units inform the variances themselves.")
 
 
-def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains: int = 4,
+def fit_categorical(spec, panel, *, draws: int = CATEGORICAL_DRAWS, tune: int = 1000, chains: int = 4,
                     seed: int = 1, priors: dict | None = None, sampler: str = "auto",
                     progressbar: bool = True, cores: int | None = None,
                     target_accept: float | None = None, loglik_draws: int = LOGLIK_DRAWS,
@@ -510,9 +518,10 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
     ``progressbar``: True shows the sampler's own bar, a callable receives a
     :class:`bayeslong.infer.progress.SamplingProgress` as for continuous fits.
-    ``target_accept``: the NUTS step-size target (default 0.8; no careful re-run here, as a
-    categorical fit costs minutes: give 0.9 or 0.95 yourself when the fit reports
-    divergences).
+    ``draws`` defaults to 2000 per chain and ``target_accept`` (the NUTS step-size target)
+    to 0.9, not the continuous fit's 1000 and 0.8: the lag mixes slowly here
+    (``CATEGORICAL_DRAWS``). There is no careful re-run, as a categorical fit costs minutes:
+    give 0.95 yourself when the fit reports divergences.
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 
@@ -524,8 +533,9 @@ def fit_categorical(spec, panel, *, draws: int = 1000, tune: int = 1000, chains:
                               ("loglik_draws", loglik_draws, 1)):
         whole_number(value, label, least=low, where="fit")
     seed_value(seed, where="fit")
-    accept = acceptance_rate(target_accept, where="fit", left_out=str(FIRST_TARGET_ACCEPT))
-    accept = FIRST_TARGET_ACCEPT if accept is None else accept
+    accept = acceptance_rate(target_accept, where="fit",
+                             left_out=f"{CATEGORICAL_TARGET_ACCEPT}, a categorical fit's default")
+    accept = CATEGORICAL_TARGET_ACCEPT if accept is None else accept
     if sampler not in SAMPLERS:
         raise SpecError(f"`sampler` must be one of {', '.join(SAMPLERS)}; got {sampler!r}")
     from importlib.util import find_spec

@@ -305,7 +305,8 @@ def _sampling_facts(results) -> dict | None:
     # a re-run fit has more draws per chain than asked for (infer/sampling.py, the careful
     # re-run): the draws asked for are read from a fit that was not re-run
     again = [f for f in fits if getattr(f, "rerun", "")]
-    plain = [f for f in fits if not getattr(f, "rerun", "")] or fits
+    first = [f for f in fits if not getattr(f, "rerun", "")]
+    plain = first or fits
     for f in fits:
         try:
             d = f.diagnostics()
@@ -319,6 +320,8 @@ def _sampling_facts(results) -> dict | None:
     return {"chains": int(post.sizes["chain"]), "draws": int(post.sizes["draw"]),
             "rerun_draws": int(again[0].idata.posterior.sizes["draw"]) if again else None,
             "samplers": sorted({str(getattr(f, "sampler", "") or "") for f in fits} - {""}),
+            "accepts": sorted({float(a) for a in (getattr(f, "target_accept", None) for f in first)
+                               if a is not None}),
             "max_rhat": rhat, "min_ess": ess, "divergences": div,
             "thresholds": thresholds, "fits": len(fits), "reruns": len(again)}
 
@@ -390,7 +393,9 @@ def manuscript_text(results, findings: dict | None = None) -> dict:
         m.append("Posteriors were sampled with the No-U-Turn sampler "
                  + cite("nuts", "(Hoffman & Gelman 2014)") + f" in {samplers}: "
                  f"{facts['chains']} chains of {facts['draws']} draws after "
-                 f"{study.sampling['tune']} warm-up iterations each (seed {study.sampling['seed']}). "
+                 f"{study.sampling['tune']} warm-up iterations each (seed {study.sampling['seed']}"
+                 + (f", target acceptance rate {' and '.join(f'{a:g}' for a in facts['accepts'])}"
+                    if facts["accepts"] else "") + "). "
                  "Convergence was judged by rank-normalised R-hat below "
                  f"{t.get('r_hat', 1.01)} and bulk and tail effective sample sizes above "
                  f"{t.get('ess_bulk', 400)} " + cite("rhat", "(Vehtari et al. 2021)")

@@ -668,4 +668,6 @@ def _fit_settings(study: Study) -> dict:
     kwargs = {"draws": s["draws"], "tune": s["tune"], "chains": s["chains"], "seed": s["seed"]}
     if s["sampler"] != "auto":
         kwargs["sampler"] = s["sampler"]
+    if s.get("target_accept") is not None:
+        kwargs["target_accept"] = s["target_accept"]
     return kwargs

@@ -100,6 +100,12 @@ Top level
 ``draws`` (whole number, default 1000), ``tune`` (default 1000), ``chains`` (default 4),
 ``seed`` (default 1)
     Posterior draws kept per chain, warm-up draws per chain, chains, and the random seed.
+    A study with categorical variables (``[data] categorical``) has 2000 draws by default,
+    as :func:`bayeslong.fit` has for them.
+``target_accept`` (number between 0 and 1, optional)
+    The NUTS target acceptance rate. Left out, each fit uses its default: 0.8 with a
+    careful re-run at 0.95 for continuous data, 0.9 for categorical data. A value given
+    here is used as it is, without a re-run.
 ``sampler`` (text, default ``"auto"``)
     Passed to :func:`bayeslong.fit` (``"auto"`` lets it choose).
 ``workers`` (whole number, default 1)
@@ -227,8 +233,10 @@ DEFAULT_OUTPUT = "bayeslong-output"
 _TOP = ("title", "output", "data", "models", "priors", "sampling", "checks", "comparison",
         "sensitivity")
 _MODEL = ("model", "label", "options")
+#: ``target_accept`` None and, with categorical variables, ``draws`` left out are the fit's
+#: own defaults (infer/categorical.py: CATEGORICAL_DRAWS, CATEGORICAL_TARGET_ACCEPT).
 _SAMPLING = {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4, "seed": 1,
-             "sampler": "auto", "workers": 1}
+             "sampler": "auto", "workers": 1, "target_accept": None}
 _CHECKS = {"ppc": True, "ppc_draws": 200, "ml": False}
 _COMPARISON = {"future": False}
 _SENSITIVITY = {"prior_grid": False, "initial": False, "specification": False,
@@ -290,6 +298,13 @@ class _Reader:
             self.fail(f"`{where}` must be true or false (no quotes); got {value!r}")
         return value
 
+    def acceptance(self, value: Any, where: str) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value < 1:
+            self.fail(f"`{where}` must be a number between 0 and 1, e.g. 0.9 (the NUTS "
+                      f"target acceptance rate; leave it out for the fit's default); got "
+                      f"{value!r}")
+        return float(value)
+
     def choice(self, value: Any, choices, where: str) -> str:
         if value not in choices:
             self.fail(f"`{where}` must be one of {', '.join(repr(c) for c in choices)}; "
@@ -309,7 +324,9 @@ class _Reader:
         for key, value in table.items():
             where = f"{name}.{key}"
             default = defaults[key]
-            if isinstance(default, bool):
+            if key == "target_accept":
+                out[key] = self.acceptance(value, where)
+            elif isinstance(default, bool):
                 out[key] = self.flag(value, where)
             elif isinstance(default, int):
                 out[key] = self.whole(value, where, 0 if key in ("tune", "seed", "workers") else 1)
@@ -462,7 +479,10 @@ class Study:
         content = {
             "data": self.data.settings(),
             "data_sha256": self._digest(),
-            "sampling": self.sampling,
+            # a target acceptance left out is not written, so that keys made before the
+            # setting existed still match
+            "sampling": {k: v for k, v in self.sampling.items()
+                         if not (k == "target_accept" and v is None)},
             "priors": {k: list(v) for k, v in sorted(self.priors.items())},
             "spec": candidate.spec.to_dict(),
             "version": package_version(),
@@ -558,6 +578,10 @@ def load_study(path) -> Study:
     priors = _read_priors(r, r.table(raw.get("priors", {}), "priors"))
     sampling = r.settings(raw, "sampling", _SAMPLING)
     r.choice(sampling["method"], _METHODS, "sampling.method")
+    if data.categorical and "draws" not in raw.get("sampling", {}):
+        from bayeslong.infer.categorical import CATEGORICAL_DRAWS
+
+        sampling["draws"] = CATEGORICAL_DRAWS
     checks = r.settings(raw, "checks", _CHECKS)
     comparison = r.settings(raw, "comparison", _COMPARISON)
     sensitivity = r.settings(raw, "sensitivity", _SENSITIVITY)

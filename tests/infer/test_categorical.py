@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 
 import bayeslong as bl
+from bayeslong.infer.categorical import CATEGORICAL_TARGET_ACCEPT
 
 
 def test_mixed_model_fit_has_thresholds_and_marginal_loglik():
@@ -32,6 +33,8 @@ def test_mixed_model_fit_has_thresholds_and_marginal_loglik():
         fit = bl.fit(spec, panel, draws=200, tune=200, chains=1, sampler="pymc",
                      progressbar=False, loglik_draws=50)
     assert isinstance(fit, bl.CategoricalFit)
+    # a categorical fit's own default step-size target (infer/categorical.py)
+    assert fit.target_accept == CATEGORICAL_TARGET_ACCEPT == 0.9
     post = fit.idata.posterior
     assert "threshold[c,2]" in post and float(post["threshold[c,2]"].min()) > 0
     np.testing.assert_array_equal(post["unique_var[b,1]"].values, 1.0)  # fixed: probit scale

@@ -264,6 +264,26 @@ def test_findings_are_the_first_section_and_name_the_best_model_and_lag(rendered
     assert "leave-future-out" not in page[page.index('id="manuscript"'):page.index('id="identification"')]
 
 
+def test_sampling_facts_read_the_target_acceptance_of_first_runs():
+    from types import SimpleNamespace
+
+    import xarray as xr
+
+    from bayeslong.workflow.findings import _sampling_facts
+
+    def stand_in(draws, accept, rerun):
+        post = xr.Dataset({"lag": (("chain", "draw"), np.zeros((2, draws)))})
+        return SimpleNamespace(idata=SimpleNamespace(posterior=post), target_accept=accept,
+                               rerun=rerun, sampler="nutpie")  # no diagnostics(): skipped
+
+    fits = [stand_in(100, 0.9, ""), stand_in(300, 0.95, "failed at 0.8"), stand_in(100, 0.8, "")]
+    results = SimpleNamespace(models=[SimpleNamespace(fit=f) for f in fits])
+    facts = _sampling_facts(results)
+    # a re-run's 0.95 is told apart (its own sentence); the first runs' values are listed
+    assert facts["accepts"] == [0.8, 0.9] and facts["reruns"] == 1
+    assert facts["draws"] == 100 and facts["rerun_draws"] == 300
+
+
 def test_findings_read_a_difference_under_two_se_as_no_clear_preference(tmp_path):
     import dataclasses
 

@@ -76,7 +76,8 @@ def test_defaults_fill_what_the_file_leaves_out(tmp_path):
     study = load_study(_write(tmp_path))
     # defaults documented in the module docstring of bayeslong.study
     assert study.sampling == {"method": "bayes", "draws": 1000, "tune": 1000, "chains": 4,
-                              "seed": 1, "sampler": "auto", "workers": 1}
+                              "seed": 1, "sampler": "auto", "workers": 1,
+                              "target_accept": None}
     assert study.data.layout == "long"
     assert study.output == tmp_path.resolve() / "bayeslong-output"
     assert not any(study.sensitivity.values())
@@ -143,6 +144,8 @@ BAD = [
      r"\(the catalog has: alt, ar,"),
     ("wrong-type-draws", lambda s: s + '[sampling]\ndraws = "many"\n', SpecError,
      "`sampling.draws` must be a whole number; got 'many'"),
+    ("bad-target-accept", lambda s: s + "[sampling]\ntarget_accept = 1.5\n", SpecError,
+     r"`sampling.target_accept` must be a number between 0 and 1, e.g. 0.9 .*got 1.5"),
     ("wrong-type-flag", lambda s: s + '[comparison]\nfuture = "yes"\n', SpecError,
      "`comparison.future` must be true or false"),
     ("wrong-type-outcomes", lambda s: s.replace('outcomes = ["score"]', "outcomes = 3"),
@@ -195,7 +198,8 @@ def test_fit_key_follows_content_not_cosmetics(tmp_path):
     same = load_study(path)
     assert same.fit_key(same.models[0]) == key
     # priors, sampling, model options and data bytes each change it
-    for extra in ('[priors]\nlag = ["normal", 0, 1]\n', "[sampling]\ndraws = 7\n"):
+    for extra in ('[priors]\nlag = ["normal", 0, 1]\n', "[sampling]\ndraws = 7\n",
+                  "[sampling]\ntarget_accept = 0.9\n"):
         path.write_text(STUDY + extra)
         s = load_study(path)
         assert s.fit_key(s.models[0]) != key, extra
@@ -287,6 +291,22 @@ def test_categorical_changes_the_fit_key_and_its_absence_does_not(tmp_path):
         'woke = ["no", "yes"]', 'woke = "binary"'), _ordinal_frame().assign(
             woke=lambda d: (d["woke"] == "yes").astype(int))))
     assert study.fit_key(study.models[0]) != changed.fit_key(changed.models[0])
+
+
+def test_sampling_defaults_follow_the_data_and_target_accept_reaches_the_fit(tmp_path):
+    from bayeslong.infer.categorical import CATEGORICAL_DRAWS
+    from bayeslong.workflow.runner import _fit_settings
+
+    plain = load_study(_write(tmp_path, STUDY))
+    assert plain.sampling["draws"] == 1000 and "target_accept" not in _fit_settings(plain)
+    other = tmp_path / "other"
+    other.mkdir()
+    study = load_study(_write(other, CATEGORICAL_STUDY, _ordinal_frame()))
+    assert study.sampling["draws"] == CATEGORICAL_DRAWS == 2000  # bl.fit's own for them
+    given = load_study(_write(other, CATEGORICAL_STUDY + "[sampling]\ndraws = 300\n"
+                              "target_accept = 0.95\n", _ordinal_frame()))
+    assert given.sampling["draws"] == 300
+    assert _fit_settings(given)["target_accept"] == 0.95
 
 
 def test_wide_categorical_names_the_indicator(tmp_path):
