@@ -1,9 +1,10 @@
 """Categorical indicators: sampling speed of the lag and the per-unit marginal likelihood.
 
 Measures, on binary ``alt`` data (residuals equal over waves; N = 200, T = 5, simulated
-with a fixed seed from the parameters below): the wall time of 4 chains x 1000 draws
-(1000 warm-up) with person-level latents after compilation, the effective sample size of
-the lag and its ESS per second (target: ESS(lag) >= 400 within 3 minutes); then the
+with a fixed seed from the parameters below): the wall time of 4 chains (1000 warm-up, then
+a categorical fit's default 2000 draws, or --draws) with person-level latents after
+compilation, the effective sample size of the lag and its ESS per second (target:
+ESS(lag) >= 400 within 3 minutes); then the
 per-unit marginal log-likelihood (latents integrated out) for 200 units x 1000 draws
 (target: under 60 s), with its numerical error. It also prints why the lag mixes as it
 does: the parameters with the lowest bulk ESS, leapfrog steps per draw and tree depths,
@@ -12,8 +13,9 @@ lag (docs/engine.md, "Categorical fits: cost and mixing").
 
 Command:  .venv/bin/python bench/categorical.py [sampler] [N] [--draws D] [--target-accept A]
           [--seed S]
-          (sampler: nutpie | pymc; defaults 200 units, 1000 draws per chain, the fit's
-          default target acceptance 0.8 and the fit's seed 2; the data keep seed 11)
+          (sampler: nutpie | pymc; defaults 200 units, and the categorical fit's defaults
+          of 2000 draws per chain and target acceptance 0.9; the fit's seed 2, the data
+          keep seed 11; `--draws 1000 --target-accept 0.8` is the continuous fit's setting)
 Machine:  2-core Linux VM shared with other jobs; read the timings with the load average
           printed at the start.
 """
@@ -36,14 +38,16 @@ TRUE = {"level_mean": 0.0, "slope_mean": 0.1, "lag": 0.4, "initial_mean": 0.0,
         "initial_level_cov": 0.3, "initial_slope_cov": 0.0, "resid_var": 0.5}
 
 
-def main(sampler="nutpie", n=200, draws=1000, target_accept=None, seed=2):
+def main(sampler="nutpie", n=200, draws=None, target_accept=None, seed=2):
     print("load average:", os.getloadavg())
     spec = bl.model("alt", residuals="equal")
     panel = bl.Simulation(spec=spec, params=TRUE, n_units=n, n_waves=5, seed=11,
                           categorical={"y": "binary"}).panel()
     t0 = time.perf_counter()
-    fit = bl.fit(spec, panel, draws=draws, tune=1000, chains=4, seed=seed, sampler=sampler,
-                 progressbar=False, loglik_draws=1000, target_accept=target_accept)
+    settings = {} if draws is None else {"draws": draws}
+    fit = bl.fit(spec, panel, tune=1000, chains=4, seed=seed, sampler=sampler,
+                 progressbar=False, loglik_draws=1000, target_accept=target_accept, **settings)
+    draws = fit.idata.posterior.sizes["draw"]
     total = time.perf_counter() - t0
     ess = float(az.ess(fit.idata.posterior[["lag"]])["lag"])
     rhat = float(az.rhat(fit.idata.posterior[["lag"]])["lag"])
@@ -97,7 +101,8 @@ if __name__ == "__main__":
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("sampler", nargs="?", default="nutpie", choices=("nutpie", "pymc"))
     ap.add_argument("n", nargs="?", type=int, default=200)
-    ap.add_argument("--draws", type=int, default=1000)
+    ap.add_argument("--draws", type=int, default=None,
+                    help="draws per chain (default: the categorical fit's, 2000)")
     ap.add_argument("--target-accept", type=float, default=None)
     ap.add_argument("--seed", type=int, default=2, help="the fit's seed (the data keep seed 11)")
     a = ap.parse_args()
