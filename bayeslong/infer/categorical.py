@@ -195,25 +195,26 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
             tau[name] = pm.Deterministic(name, (tau[below] if below is not None else 0.0) + gap)
         # person-level latents, non-centred, with the engine's implied moments
         m = model_matrices(structure, theta)
-        alpha, Gamma, Phi, _ = latent_moments(structure, theta)
+        alpha, Gamma, Phi, _ = latent_moments(structure, theta, matrices=m)
         w = pm.Data("covariates", panel.covariate_matrix())
         eta_mean = alpha[None, :] + pt.dot(w, Gamma.T)
         layout = latent_layout(cat, prior_set)
         which = list(layout.latents)
-        if layout.form == "implied":  # the loaded latents through their implied covariance
-            root = pt.linalg.cholesky(Phi[which][:, which] + np.diag(layout.moved))
-            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(which)))
-            eta_i = pt.inc_subtensor(eta_mean[:, which], pt.dot(z, root.T))
-        elif layout.form == "disturbances":  # each disturbance carried through B
-            root = pt.linalg.cholesky(m["Psi"][which][:, which])
-            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(which)))
-            zeta = pt.set_subtensor(pt.zeros((N, L))[:, which], pt.dot(z, root.T))
-            dev = zeta
-            for _ in range(structure.path_depth - 1):  # (I - B)^-1 zeta: B is nilpotent
-                dev = zeta + pt.dot(dev, m["B"].T)
-            eta_i = eta_mean + dev
-        else:
+        if layout.form == "none":
             eta_i = eta_mean
+        else:  # implied: the loaded latents' covariance; disturbances: Psi, carried through B
+            cov = Phi if layout.form == "implied" else m["Psi"]
+            root = pt.linalg.cholesky(cov[which][:, which] + np.diag(layout.moved))
+            z = pm.Normal("z", 0.0, 1.0, shape=(N, len(which)))
+            draw = pt.dot(z, root.T)
+            if layout.form == "implied":
+                eta_i = pt.inc_subtensor(eta_mean[:, which], draw)
+            else:
+                zeta = pt.set_subtensor(pt.zeros((N, L))[:, which], draw)
+                dev = zeta
+                for _ in range(structure.path_depth - 1):  # (I - B)^-1 zeta: B is nilpotent
+                    dev = zeta + pt.dot(dev, m["B"].T)
+                eta_i = eta_mean + dev
         ystar = pt.flatten(m["nu"][None, :] + pt.dot(eta_i, m["Lam"].T))
         Y = len(structure.observed)
         for name, rows, units, waves, obs in _observed_parts(cat, panel):

@@ -171,7 +171,7 @@ def implied_moments(structure: Structure, theta, xp=PYTENSOR):
     return c, D, 0.5 * (Sigma + xp.t(Sigma))
 
 
-def latent_moments(structure: Structure, theta, xp=PYTENSOR):
+def latent_moments(structure: Structure, theta, xp=PYTENSOR, matrices=None):
     """Return the latents' moments given w and their covariance with the outcomes.
 
     Parameters
@@ -180,6 +180,8 @@ def latent_moments(structure: Structure, theta, xp=PYTENSOR):
     theta : pytensor vector, or numpy array (..., n_params) with ``xp=NUMPY``
         Free parameters in ``structure.names`` order.
     xp : backend, default PYTENSOR
+    matrices : dict, optional
+        ``model_matrices(structure, theta, xp)`` when the caller has them already.
 
     Returns
     -------
@@ -199,7 +201,7 @@ def latent_moments(structure: Structure, theta, xp=PYTENSOR):
     conditional distribution of a unit's latent trajectory given its outcomes (Gaussian
     conditioning on the joint of (eta, y)) can never disagree with the likelihood.
     """
-    m = model_matrices(structure, theta, xp)
+    m = model_matrices(structure, theta, xp) if matrices is None else matrices
     alpha, Gamma, Phi = _latent_part(m, structure, xp)
     Phi = 0.5 * (Phi + xp.t(Phi))
     return alpha, Gamma, Phi, Phi @ xp.t(m["Lam"])
