@@ -2,8 +2,8 @@
 
 Measures, on binary ``alt`` data (residuals equal over waves; N = 200, T = 5, simulated
 with a fixed seed from the parameters below): the wall time of 4 chains (1000 warm-up, then
-a categorical fit's default 2000 draws, or --draws) with person-level latents after
-compilation, the effective sample size of the lag and its ESS per second (target:
+a categorical fit's default 1000 draws, or --draws) with the latent responses sampled
+(infer/categorical.py: response_likelihood) after compilation, the effective sample size of the lag and its ESS per second (target:
 ESS(lag) >= 400 within 3 minutes); then the
 per-unit marginal log-likelihood (latents integrated out) for 200 units x 1000 draws
 (target: under 60 s), with its numerical error. It also prints why the lag mixes as it
@@ -14,8 +14,8 @@ lag (docs/engine.md, "Categorical fits: cost and mixing").
 Command:  .venv/bin/python bench/categorical.py [sampler] [N] [--draws D] [--target-accept A]
           [--seed S]
           (sampler: nutpie | pymc; defaults 200 units, and the categorical fit's defaults
-          of 2000 draws per chain and target acceptance 0.9; the fit's seed 2, the data
-          keep seed 11; `--draws 1000 --target-accept 0.8` is the continuous fit's setting)
+          of 1000 draws per chain and target acceptance 0.8; the fit's seed 2, the data
+          keep seed 11)
 Machine:  2-core Linux VM shared with other jobs; read the timings with the load average
           printed at the start.
 """
@@ -102,7 +102,7 @@ if __name__ == "__main__":
     ap.add_argument("sampler", nargs="?", default="nutpie", choices=("nutpie", "pymc"))
     ap.add_argument("n", nargs="?", type=int, default=200)
     ap.add_argument("--draws", type=int, default=None,
-                    help="draws per chain (default: the categorical fit's, 2000)")
+                    help="draws per chain (default: the categorical fit's, 1000)")
     ap.add_argument("--target-accept", type=float, default=None)
     ap.add_argument("--seed", type=int, default=2, help="the fit's seed (the data keep seed 11)")
     a = ap.parse_args()

@@ -1,8 +1,12 @@
-"""Bayesian fits of models with categorical indicators: person-level latents and thresholds.
+"""Bayesian fits of models with categorical indicators: latent responses and thresholds.
 
 A continuous panel is fitted on its marginal likelihood (pattern cross-products, no
-latents); a categorical variable has no such closed form, so here every unit's latents are
-parameters of the PyMC model (docs/model-family.md, "Categorical indicators"):
+latents); a categorical variable has no such closed form, so here latent variables are
+parameters of the PyMC model (docs/model-family.md, "Categorical indicators"). With the
+probit link (the default) they are the latent responses y* of the observed answers, each
+confined to its category's interval, with the engine's implied normal distribution
+(:func:`response_likelihood`); the person-level latents are then integrated out exactly.
+With the logit link, whose error is not normal, they are the person-level latents:
 
     implied form:      eta_l,i = E[eta_l | w_i] + chol(Phi_ll + M) z_i,   z_i ~ N(0, I)
     disturbance form:  eta_i = E[eta | w_i] + (I - B)^-1 zeta_i,   zeta_i = chol(Psi_a) z_i
@@ -146,8 +150,13 @@ def _observed_parts(cat: Categorical, panel):
     return parts
 
 
-def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: dict):
+def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: dict,
+                            responses: bool | None = None):
     """The PyMC model of a categorical fit (module notes).
+
+    ``responses``: sample the latent responses (:func:`response_likelihood`) rather than
+    the person-level latents; by default where the link is probit and the model has
+    person-level variance (with none, the categories' likelihood needs no latent at all).
 
     The priors' hyperparameters, the covariates and the observed values are model data
     (``prior_hyper``, ``covariates``, ``observed[<variable>]``; :func:`model_inputs`), so one
@@ -193,12 +202,17 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
             cls, kwargs = family_dist(family, args)
             gap = cls(f"{name}__gap", **kwargs)
             tau[name] = pm.Deterministic(name, (tau[below] if below is not None else 0.0) + gap)
+        w = pm.Data("covariates", panel.covariate_matrix())
+        layout = latent_layout(cat, prior_set)
+        if responses is None:
+            responses = layout.form != "none" and cat.link == "probit"
+        if responses:  # the latent responses themselves, the latents integrated out
+            response_likelihood(cat, panel, theta, tau, w)
+            return model
         # person-level latents, non-centred, with the engine's implied moments
         m = model_matrices(structure, theta)
         alpha, Gamma, Phi, _ = latent_moments(structure, theta, matrices=m)
-        w = pm.Data("covariates", panel.covariate_matrix())
         eta_mean = alpha[None, :] + pt.dot(w, Gamma.T)
-        layout = latent_layout(cat, prior_set)
         which = list(layout.latents)
         if layout.form == "none":
             eta_i = eta_mean
@@ -232,6 +246,65 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
                 pm.Normal(f"y[{name}]", mu=mean, sigma=sd[waves],
                           observed=pm.Data(f"observed[{name}]", obs))
     return model
+
+
+def response_likelihood(cat: Categorical, panel, theta, tau: dict, w) -> None:
+    """Add the latent responses and their normal log density to the model in context.
+
+    Every observed category becomes its latent response y*, confined to its interval:
+    y* = tau_1 - exp(u) in the lowest category, tau_(C-1) + exp(u) in the highest, and
+    tau_c + (tau_(c+1) - tau_c) logistic(u) in between, with the log Jacobian of each map
+    added. A missing value's y* is free (``v``). Each unit's y* (continuous indicators as
+    observed) then has the engine's implied normal distribution, N(c + D w_i, Sigma) from
+    :func:`bayeslong.model.moments.implied_moments` with the probit errors in Sigma, so
+    the person-level latents are integrated out exactly. Why the log scale for the open
+    intervals: a larger latent variance spreads the y* of a half-line category outwards by
+    a common factor, which is a common shift of their u, a straight line the sampler's
+    mass matrix can follow (docs/engine.md, "Categorical fits: cost and mixing").
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    from bayeslong.model.moments import implied_moments
+
+    c, D, Sigma = implied_moments(cat.structure, theta)
+    mean = c[None, :] + pt.dot(w, D.T)
+    N, Y = panel.n_units, len(cat.structure.observed)
+    flat = pt.zeros(N * Y)
+    seen = np.zeros(N * Y, dtype=bool)
+    for name, rows, units, waves, obs in _observed_parts(cat, panel):
+        at = units * Y + rows[waves]
+        seen[at] = True
+        values = pm.Data(f"observed[{name}]", obs.astype(np.int64) if name in cat.rows else obs)
+        if name not in cat.rows:
+            flat = pt.set_subtensor(flat[at], values)
+            continue
+        table = cat.cuts[name]
+        width = table.shape[1]
+        cut = pt.stack([tau[cat.thresholds[k]] if k >= 0 else pt.constant(0.0)
+                        for k in table.ravel()])
+        base = waves.astype(np.int64) * width
+        upper = cut[base + pt.minimum(values, width - 1)]  # tau_(c+1), c < C-1
+        lower = cut[base + pt.maximum(values - 1, 0)]      # tau_c, c > 0
+        u = pm.Flat(f"u[{name}]", shape=len(obs))
+        if width == 1:  # binary: the half-line below or above the one threshold
+            pm.Potential(f"jacobian[{name}]", u.sum())
+            flat = pt.set_subtensor(flat[at], lower + (2 * values - 1) * pt.exp(u))
+            continue
+        gap = pt.switch(pt.lt(upper - lower, 1e-12), 1.0, upper - lower)  # the ends: unused
+        inner = lower + gap * pt.sigmoid(u)
+        inner_jac = pt.log(gap) - pt.softplus(-u) - pt.softplus(u)
+        ystar = pt.switch(pt.eq(values, 0), upper - pt.exp(u),
+                          pt.switch(pt.eq(values, width), lower + pt.exp(u), inner))
+        jac = pt.switch(pt.eq(values, 0) | pt.eq(values, width), u, inner_jac)
+        pm.Potential(f"jacobian[{name}]", jac.sum())
+        flat = pt.set_subtensor(flat[at], ystar)
+    missing = np.flatnonzero(~seen)
+    if len(missing):
+        flat = pt.set_subtensor(flat[missing], pm.Flat("v", shape=len(missing)))
+    ystar = flat.reshape((N, Y))
+    dist = pm.MvNormal.dist(mu=mean, chol=pt.linalg.cholesky(Sigma))
+    pm.Potential("y*", pm.logp(dist, ystar).sum())
 
 
 def threshold_gaps(cat: Categorical) -> dict:
@@ -488,26 +561,24 @@ class CategoricalFit(Fit):
             if self.categorical.thresholds else np.empty((post.sizes["chain"] * post.sizes["draw"], 0))
 
 
-#: A categorical fit's defaults: draws per chain and the NUTS target acceptance. Measured on
-#: binary alt, N = 200, T = 5, fit seeds 2-9 (docs/engine.md, "Categorical fits: cost and
-#: mixing"): 4 x 1000 at 0.8 gave ESS(lag) median 306 (400 or more in one seed of eight),
-#: 4 x 2000 at 0.9 median 529 (six of eight) in about 70 s of sampling.
-CATEGORICAL_DRAWS = 2000
-CATEGORICAL_TARGET_ACCEPT = 0.9
+#: A categorical fit's defaults: draws per chain and the NUTS target acceptance, those of a
+#: continuous fit. Measured on binary alt, N = 200, T = 5 (docs/engine.md, "Categorical
+#: fits: cost and mixing"): with the latent responses sampled, 4 x 1000 at 0.8 gave
+#: ESS(lag) 2157 and 2900 on fit seeds 2 and 3 and no divergence (at 0.65: three
+#: divergences); with the person-level latents sampled it had taken 4 x 2000 at 0.9 to reach
+#: a median of 529 over eight seeds.
+CATEGORICAL_DRAWS = 1000
+CATEGORICAL_TARGET_ACCEPT = 0.8
 
-#: What a flagged categorical fit's warning advises (measured on binary alt, N = 200, T = 5:
-#: docs/engine.md, "Categorical fits: cost and mixing").
+#: What a flagged categorical fit's warning advises (docs/engine.md, "Categorical fits:
+#: cost and mixing").
 CATEGORICAL_ADVICE = (
-    "Categorical fits mix slowly: with one binary or ordinal variable per wave the data say "
-    "little about the disturbance variance (its ESS stayed at 90-210 of 8,000 draws in the "
-    "measured case, binary alt, 200 units, 5 waves), and the lag's ESS varies between fit "
-    "seeds (190-660 at the defaults, 4 x 2000 draws at target_accept 0.9). More draws "
-    "(e.g. draws=4000) raise every ESS in proportion; more indicators per wave, ordinal "
-    "answers, more waves or units inform the variances themselves. An E-BFMI below 0.3 "
-    "(0.15-0.30 in every chain of the measured fits: the latents' scale moves against the "
-    "link's fixed error) did not rise with 2000 draws instead of 1000 there; it warns that "
-    "the variances are explored slowly, so read their ESS and R-hat, which more draws do "
-    "improve.")
+    "Categorical fits cost more than continuous ones: every observed answer's latent "
+    "response is sampled. With one binary or ordinal variable per wave the data say little "
+    "about how persistence divides between the lag and the person-level variances, so their "
+    "posteriors are wide. More draws (e.g. draws=2000) raise every ESS in proportion; "
+    "target_accept=0.9 or 0.95 removes divergences; more indicators per wave, ordinal "
+    "answers, more waves or units inform the variances themselves.")
 
 
 def fit_categorical(spec, panel, *, draws: int = CATEGORICAL_DRAWS, tune: int = 1000, chains: int = 4,
@@ -515,7 +586,7 @@ def fit_categorical(spec, panel, *, draws: int = CATEGORICAL_DRAWS, tune: int = 
                     progressbar: bool = True, cores: int | None = None,
                     target_accept: float | None = None, loglik_draws: int = LOGLIK_DRAWS,
                     points: int = POINTS, replicates: int = REPLICATES) -> CategoricalFit:
-    """Fit ``spec`` to a panel with categorical variables by NUTS with person-level latents.
+    """Fit ``spec`` to a panel with categorical variables by NUTS with latent responses.
 
     Parameters are those of :func:`bayeslong.fit`, plus ``loglik_draws`` (the per-unit
     marginal log-likelihood is computed on at most this many draws, thinned evenly within
@@ -523,10 +594,10 @@ def fit_categorical(spec, panel, *, draws: int = CATEGORICAL_DRAWS, tune: int = 
     ``points``/``replicates`` (its quasi-Monte Carlo points, :mod:`bayeslong.infer.marginal`).
     ``progressbar``: True shows the sampler's own bar, a callable receives a
     :class:`bayeslong.infer.progress.SamplingProgress` as for continuous fits.
-    ``draws`` defaults to 2000 per chain and ``target_accept`` (the NUTS step-size target)
-    to 0.9, not the continuous fit's 1000 and 0.8: the lag mixes slowly here
-    (``CATEGORICAL_DRAWS``). There is no careful re-run, as a categorical fit costs minutes:
-    give 0.95 yourself when the fit reports divergences.
+    ``draws`` defaults to 1000 per chain and ``target_accept`` (the NUTS step-size target)
+    to 0.8, as for a continuous fit (``CATEGORICAL_DRAWS``). There is no careful re-run, as
+    a categorical fit costs minutes: give 0.9 or 0.95 yourself when the fit reports
+    divergences.
     ``spec``'s measurement options ``link`` (probit | logit) and ``thresholds`` (equal |
     free over waves) choose the categorical model (model/thresholds.py).
 

@@ -100,12 +100,12 @@ Top level
 ``draws`` (whole number, default 1000), ``tune`` (default 1000), ``chains`` (default 4),
 ``seed`` (default 1)
     Posterior draws kept per chain, warm-up draws per chain, chains, and the random seed.
-    A study with categorical variables (``[data] categorical``) has 2000 draws by default,
-    as :func:`bayeslong.fit` has for them.
+    A study with categorical variables (``[data] categorical``) has the draws
+    :func:`bayeslong.fit` gives them by default (1000, as for continuous data).
 ``target_accept`` (number between 0 and 1, optional)
-    The NUTS target acceptance rate. Left out, each fit uses its default: 0.8 with a
-    careful re-run at 0.95 for continuous data, 0.9 for categorical data. A value given
-    here is used as it is, without a re-run.
+    The NUTS target acceptance rate. Left out, each fit uses its default: 0.8, with a
+    careful re-run at 0.95 for continuous data; no re-run for categorical data. A value
+    given here is used as it is, without a re-run.
 ``sampler`` (text, default ``"auto"``)
     Passed to :func:`bayeslong.fit` (``"auto"`` lets it choose).
 ``workers`` (whole number, default 1)

@@ -34,7 +34,7 @@ def test_mixed_model_fit_has_thresholds_and_marginal_loglik():
                      progressbar=False, loglik_draws=50)
     assert isinstance(fit, bl.CategoricalFit)
     # a categorical fit's own default step-size target (infer/categorical.py)
-    assert fit.target_accept == CATEGORICAL_TARGET_ACCEPT == 0.9
+    assert fit.target_accept == CATEGORICAL_TARGET_ACCEPT == 0.8
     post = fit.idata.posterior
     assert "threshold[c,2]" in post and float(post["threshold[c,2]"].min()) > 0
     np.testing.assert_array_equal(post["unique_var[b,1]"].values, 1.0)  # fixed: probit scale

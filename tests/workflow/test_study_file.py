@@ -302,7 +302,7 @@ def test_sampling_defaults_follow_the_data_and_target_accept_reaches_the_fit(tmp
     other = tmp_path / "other"
     other.mkdir()
     study = load_study(_write(other, CATEGORICAL_STUDY, _ordinal_frame()))
-    assert study.sampling["draws"] == CATEGORICAL_DRAWS == 2000  # bl.fit's own for them
+    assert study.sampling["draws"] == CATEGORICAL_DRAWS == 1000  # bl.fit's own for them
     given = load_study(_write(other, CATEGORICAL_STUDY + "[sampling]\ndraws = 300\n"
                               "target_accept = 0.95\n", _ordinal_frame()))
     assert given.sampling["draws"] == 300
