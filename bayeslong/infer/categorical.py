@@ -517,8 +517,9 @@ def _unique_variances(cat: Categorical, Theta, m, name: str, rows: np.ndarray):
     if (Theta.index[rows, rows] < 0).any() and not (Theta.fixed[rows, rows] > 0).all():
         raise SpecError(
             f"{name!r} is continuous and observed without measurement error (y = eta), which a "
-            "model with categorical indicators cannot sample with person-level latents yet; "
-            "measure that process by several indicators, or treat all variables alike")
+            "model with categorical indicators cannot sample with person-level latents (the "
+            "logit link) yet; use link='probit', measure that process by several indicators, "
+            "or treat all variables alike")
     return m["Theta"][rows][:, rows]
 
 

@@ -2,7 +2,7 @@
 
 A panel of continuous variables is fitted on its marginal likelihood
 (:func:`bayeslong.infer.sampling.fit`); a panel with categorical variables, which has no
-closed-form marginal likelihood, with person-level latents
+closed-form marginal likelihood, with latent responses or person-level latents
 (:func:`bayeslong.infer.categorical.fit_categorical`). Both return a ``Fit`` with the same
 groups, so comparisons and summaries read them alike.
 """

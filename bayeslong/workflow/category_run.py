@@ -1,6 +1,6 @@
 """What a study run does differently when the panel has categorical variables.
 
-Candidates are fitted with person-level latents and thresholds (``bl.fit`` dispatches,
+Candidates are fitted with latent responses and thresholds (``bl.fit`` dispatches,
 infer/fitting.py) and compared by the per-unit marginal LOO and, when asked, by the
 marginal probability of the last wave's categories given the earlier waves
 (evaluate/category_forecast.py). The steps that have no categorical version yet are
