@@ -248,8 +248,11 @@ def build_categorical_model(cat: Categorical, panel, prior_set: PriorSet, gaps: 
     return model
 
 
-def response_likelihood(cat: Categorical, panel, theta, tau: dict, w) -> None:
-    """Add the latent responses and their normal log density to the model in context.
+def response_likelihood(cat: Categorical, panel, theta, tau: dict, w):
+    """Add the latent responses and their log density to the model in context.
+
+    Returns the (N,) per-unit log density of the unconstrained u (and ``v``), Jacobians
+    included, whose sum the model carries.
 
     Every observed category becomes its latent response y*, confined to its interval:
     y* = tau_1 - exp(u) in the lowest category, tau_(C-1) + exp(u) in the highest, and
@@ -270,7 +273,7 @@ def response_likelihood(cat: Categorical, panel, theta, tau: dict, w) -> None:
     c, D, Sigma = implied_moments(cat.structure, theta)
     mean = c[None, :] + pt.dot(w, D.T)
     N, Y = panel.n_units, len(cat.structure.observed)
-    flat = pt.zeros(N * Y)
+    flat, jac = pt.zeros(N * Y), pt.zeros(N * Y)
     seen = np.zeros(N * Y, dtype=bool)
     for name, rows, units, waves, obs in _observed_parts(cat, panel):
         at = units * Y + rows[waves]
@@ -288,23 +291,23 @@ def response_likelihood(cat: Categorical, panel, theta, tau: dict, w) -> None:
         lower = cut[base + pt.maximum(values - 1, 0)]      # tau_c, c > 0
         u = pm.Flat(f"u[{name}]", shape=len(obs))
         if width == 1:  # binary: the half-line below or above the one threshold
-            pm.Potential(f"jacobian[{name}]", u.sum())
-            flat = pt.set_subtensor(flat[at], lower + (2 * values - 1) * pt.exp(u))
-            continue
-        gap = pt.switch(pt.lt(upper - lower, 1e-12), 1.0, upper - lower)  # the ends: unused
-        inner = lower + gap * pt.sigmoid(u)
-        inner_jac = pt.log(gap) - pt.softplus(-u) - pt.softplus(u)
-        ystar = pt.switch(pt.eq(values, 0), upper - pt.exp(u),
-                          pt.switch(pt.eq(values, width), lower + pt.exp(u), inner))
-        jac = pt.switch(pt.eq(values, 0) | pt.eq(values, width), u, inner_jac)
-        pm.Potential(f"jacobian[{name}]", jac.sum())
+            ystar, log_jac = lower + (2 * values - 1) * pt.exp(u), u
+        else:
+            gap = pt.switch(pt.lt(upper - lower, 1e-12), 1.0, upper - lower)  # ends: unused
+            end = pt.eq(values, 0) | pt.eq(values, width)
+            ystar = pt.switch(pt.eq(values, 0), upper - pt.exp(u),
+                              pt.switch(pt.eq(values, width), lower + pt.exp(u),
+                                        lower + gap * pt.sigmoid(u)))
+            log_jac = pt.switch(end, u, pt.log(gap) - pt.softplus(-u) - pt.softplus(u))
         flat = pt.set_subtensor(flat[at], ystar)
+        jac = pt.set_subtensor(jac[at], log_jac)
     missing = np.flatnonzero(~seen)
     if len(missing):
         flat = pt.set_subtensor(flat[missing], pm.Flat("v", shape=len(missing)))
-    ystar = flat.reshape((N, Y))
     dist = pm.MvNormal.dist(mu=mean, chol=pt.linalg.cholesky(Sigma))
-    pm.Potential("y*", pm.logp(dist, ystar).sum())
+    per_unit = pm.logp(dist, flat.reshape((N, Y))) + jac.reshape((N, Y)).sum(axis=1)
+    pm.Potential("y*", per_unit.sum())
+    return per_unit
 
 
 def threshold_gaps(cat: Categorical) -> dict:
