@@ -26,7 +26,7 @@ the second indicator; every prior again given (``indicator_priors``); output fil
 ``sbc_indicators_ranks.*``.
 
 ``--binary``: the ALT of one binary outcome instead (probit, thresholds fixed at 0; fitted
-with person-level latents by ``bl.fit``, docs/model-family.md, "Categorical indicators"),
+with the latent responses by ``bl.fit``, docs/model-family.md, "Categorical indicators"),
 checking the lag and the slope mean with every prior given (``BINARY_PRIORS``, tighter
 than ``PRIORS``: the binary latent scale is set by the probit error's SD of 1, and means of
 several SDs would give panels of one category); N = ``--units`` (default 120), T = 5.
